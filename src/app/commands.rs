@@ -1,0 +1,294 @@
+//! The bodies of the CLI commands: each takes parsed arguments and the config, does its work
+//! through `store`, `extract` and `demo`, and returns the text to print. `main` parses the
+//! command line and chooses the exit code.
+
+use std::path::{Path, PathBuf};
+
+use anyhow::{Context, Result, bail};
+use chrono::{DateTime, NaiveDate, Utc};
+
+use super::ingest::{self, IngestOutcome, end_of_day};
+use crate::config::{self, Config, SourceConfig};
+use crate::model::{Field, SnapshotStatus};
+use crate::store::{Reader, Store};
+use crate::table::{Cell, OutputFormat, Table};
+
+/// Most rows `tidemark query` prints; beyond it the query is refused with advice.
+pub const QUERY_ROW_LIMIT: usize = 100_000;
+
+/// A mistake in how tidemark was called (exit code 2), as opposed to a failure (exit code 1).
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct UsageError(pub String);
+
+fn usage(message: impl Into<String>) -> anyhow::Error {
+    UsageError(message.into()).into()
+}
+
+/// Parses TIME: RFC 3339, or a plain date meaning the end of that day (UTC).
+pub fn parse_time_arg(text: &str) -> Result<DateTime<Utc>> {
+    if let Ok(time) = DateTime::parse_from_rfc3339(text) {
+        return Ok(time.with_timezone(&Utc));
+    }
+    match NaiveDate::parse_from_str(text, "%Y-%m-%d") {
+        Ok(date) => Ok(end_of_day(date)),
+        Err(_) => Err(usage(format!("{text:?} is not an RFC 3339 time or a YYYY-MM-DD date"))),
+    }
+}
+
+/// Parses FIELD: a canonical name or short form.
+pub fn parse_field_arg(text: &str) -> Result<Field> {
+    Field::parse(text).ok_or_else(|| {
+        let names: Vec<&str> = Field::ALL.iter().map(|f| f.name()).collect();
+        usage(format!("{text:?} is not a field; use one of {}", names.join(", ")))
+    })
+}
+
+fn source<'c>(config: &'c Config, name: &str) -> Result<&'c SourceConfig> {
+    config.source(name).ok_or_else(|| {
+        let names: Vec<&str> = config.sources.iter().map(|s| s.name.as_str()).collect();
+        usage(format!(
+            "no source named {name:?} in {} (sources: {})",
+            config.file.display(),
+            names.join(", ")
+        ))
+    })
+}
+
+/// `tidemark init [DIR]`
+pub fn init(dir: &Path) -> Result<String> {
+    std::fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
+    let path = dir.join("tidemark.toml");
+    if path.exists() {
+        bail!("{} already exists; not overwriting it", path.display());
+    }
+    std::fs::write(&path, config::EXAMPLE).with_context(|| format!("writing {}", path.display()))?;
+    let config = Config::load(&path)?;
+    for source in &config.sources {
+        if let config::Location::Folder { path, .. } = &source.location {
+            std::fs::create_dir_all(path).with_context(|| format!("creating {}", path.display()))?;
+        }
+    }
+    Store::open(&config.store.path)?;
+    Ok(format!(
+        "wrote {}\ncreated store {}\nedit the [[source]] tables, then: tidemark --config {} check-config\n",
+        path.display(),
+        config.store.path.display(),
+        path.display()
+    ))
+}
+
+/// `tidemark check-config`
+pub fn check_config(config: &Config) -> String {
+    format!("{}config ok\n", config.describe())
+}
+
+/// `tidemark ingest FILE --source NAME [--as-of TIME]`; the outcome decides the exit code.
+pub fn ingest(config: &Config, file: &Path, source_name: &str, as_of: Option<&str>) -> Result<IngestOutcome> {
+    let source = source(config, source_name)?;
+    let as_of = as_of.map(parse_time_arg).transpose()?;
+    let mut store = Store::open(&config.store.path)?;
+    ingest::ingest_file(&mut store, config, source, file, as_of)
+}
+
+/// Up to `max` problems of a snapshot, for printing after an ingest.
+pub fn problem_lines(config: &Config, snapshot_id: i64, max: usize) -> Result<Vec<String>> {
+    let reader = Reader::open(&config.store.path)?;
+    let table = reader.query(
+        &format!(
+            "SELECT line, field, kind, reason FROM (
+                 SELECT line, field, kind, reason FROM reject WHERE snapshot_id = {snapshot_id}
+                 UNION ALL
+                 SELECT line, field, kind, reason FROM field_problem WHERE snapshot_id = {snapshot_id})
+             ORDER BY line LIMIT {max}"
+        ),
+        max,
+    )?;
+    Ok(table
+        .rows
+        .iter()
+        .map(|row| match row.as_slice() {
+            [Cell::Int(line), Cell::Text(field), Cell::Text(kind), Cell::Text(reason)] => {
+                format!("line {line}, field {field}: {reason} ({kind})")
+            }
+            [Cell::Int(line), _, Cell::Text(kind), Cell::Text(reason)] => {
+                format!("line {line}: {reason} ({kind})")
+            }
+            _ => String::new(),
+        })
+        .collect())
+}
+
+/// `tidemark snapshots [--source NAME]`
+pub fn snapshots(config: &Config, source_name: Option<&str>, format: OutputFormat) -> Result<String> {
+    if let Some(name) = source_name {
+        source(config, name)?;
+    }
+    let reader = Reader::open(&config.store.path)?;
+    let mut table = Table::new(&[
+        "snapshot_id",
+        "source",
+        "seq",
+        "as_of",
+        "status",
+        "rows",
+        "accepted",
+        "rejected",
+        "new",
+        "changed",
+        "removed",
+        "note",
+    ]);
+    for s in reader.snapshots(source_name)? {
+        table.push(vec![
+            s.snapshot_id.into(),
+            s.source.into(),
+            s.seq.into(),
+            s.as_of.into(),
+            s.status.into(),
+            s.rows_total.into(),
+            s.rows_accepted.into(),
+            s.rows_rejected.into(),
+            s.rows_new.into(),
+            s.rows_changed.into(),
+            s.rows_removed.into(),
+            s.note.into(),
+        ]);
+    }
+    Ok(table.render(format))
+}
+
+/// `tidemark snapshots release ID`
+pub fn release(config: &Config, snapshot_id: i64) -> Result<String> {
+    let mut store = Store::open(&config.store.path)?;
+    let outcome = ingest::release(&mut store, config, snapshot_id)?;
+    let (name, _, _) = store.snapshot_origin(snapshot_id)?;
+    Ok(format!("{}\n", outcome.summary(&name)))
+}
+
+/// `tidemark snapshots reject ID`
+pub fn reject(config: &Config, snapshot_id: i64, note: Option<&str>) -> Result<String> {
+    let mut store = Store::open(&config.store.path)?;
+    store.reject_held(snapshot_id, note.unwrap_or("rejected by operator"))?;
+    Ok(format!("snapshot {snapshot_id}: rejected; nothing of it was applied\n"))
+}
+
+/// `tidemark history CASE_KEY --source NAME`
+pub fn history(config: &Config, case_key: &str, source_name: &str, format: OutputFormat) -> Result<String> {
+    source(config, source_name)?;
+    let reader = Reader::open(&config.store.path)?;
+    let Some(source_id) = reader.source_id(source_name)? else {
+        bail!("source {source_name:?} has no snapshots yet");
+    };
+    let versions = reader.history(source_id, case_key)?;
+    if versions.is_empty() {
+        bail!("no record with that key in source {source_name:?}");
+    }
+    let mut columns = vec!["version_id", "valid_from", "valid_to", "from_as_of"];
+    columns.extend(Field::ALL.iter().skip(1).map(|f| f.name()));
+    columns.push("invalid");
+    let mut table = Table::new(&columns);
+    for v in versions {
+        let mut row: Vec<Cell> =
+            vec![v.version_id.into(), v.valid_from.into(), v.valid_to.into(), v.from_as_of.into()];
+        row.extend(record_cells(&v.record));
+        table.push(row);
+    }
+    Ok(table.render(format))
+}
+
+/// The canonical fields of a record (without the key) as cells, plus its invalid fields.
+pub fn record_cells(r: &crate::model::CaseRecord) -> Vec<Cell> {
+    let list = |items: &Option<Vec<String>>| Cell::from(items.as_ref().map(|i| i.join(";")));
+    let mut cells: Vec<Cell> = vec![r.jurisdiction.clone().into()];
+    cells.extend(Field::DATES.iter().map(|f| Cell::from(r.date(*f).map(|d| d.to_string()))));
+    cells.push(r.outcome.clone().into());
+    cells.push(Cell::from(
+        r.age.map(|a| if a.lo == a.hi { format!("{}", a.lo) } else { format!("[{}, {})", a.lo, a.hi) }),
+    ));
+    cells.push(r.sex.clone().into());
+    cells.push(Cell::from(r.hospitalised.map(|h| if h { "yes" } else { "no" })));
+    cells.push(list(&r.symptoms));
+    cells.push(list(&r.conditions));
+    let invalid: Vec<&str> = r.invalid.iter().map(|f| f.name()).collect();
+    cells.push(Cell::from((!invalid.is_empty()).then(|| invalid.join(","))));
+    cells
+}
+
+/// Arguments of `tidemark curve`.
+#[derive(Debug, Clone)]
+pub struct CurveArgs<'a> {
+    pub source: &'a str,
+    pub by: &'a str,
+    pub as_of: Option<&'a str>,
+    pub stratify: Option<&'a str>,
+    pub format: OutputFormat,
+}
+
+/// `tidemark curve --source NAME --by FIELD [--as-of TIME] [--stratify FIELD]`
+pub fn curve(config: &Config, args: &CurveArgs<'_>) -> Result<String> {
+    source(config, args.source)?;
+    let by = parse_field_arg(args.by)?;
+    if !by.is_date() {
+        return Err(usage(format!("--by {by}: a curve needs a date field")));
+    }
+    let stratify = args.stratify.map(parse_field_arg).transpose()?;
+    if let Some(field) =
+        stratify.filter(|f| f.is_date() || matches!(f, Field::CaseKey | Field::Symptoms | Field::Conditions))
+    {
+        return Err(usage(format!(
+            "--stratify {field}: choose jurisdiction, age, sex, outcome or hospitalised"
+        )));
+    }
+    let as_of = args.as_of.map(parse_time_arg).transpose()?;
+    let reader = Reader::open(&config.store.path)?;
+    let snapshot = reader
+        .source_id(args.source)?
+        .map(|id| Ok::<_, anyhow::Error>((id, reader.snapshot_as_of(id, as_of)?)))
+        .transpose()?;
+    let Some((source_id, Some(snapshot_id))) = snapshot else {
+        bail!("source {:?} has no applied snapshot at that time", args.source);
+    };
+    let mut columns = vec![by.name()];
+    if let Some(field) = stratify {
+        columns.push(field.name());
+    }
+    columns.extend(["count", "snapshot_id"]);
+    let mut table = Table::new(&columns);
+    for row in reader.curve(source_id, snapshot_id, by, stratify)? {
+        let mut cells = vec![Cell::from(row.date.map(|d| d.to_string()))];
+        if stratify.is_some() {
+            cells.push(row.stratum.into());
+        }
+        cells.extend([row.count.into(), snapshot_id.into()]);
+        table.push(cells);
+    }
+    Ok(table.render(args.format))
+}
+
+/// `tidemark query SQL` on a read-only connection.
+pub fn query(config: &Config, sql: &str, format: OutputFormat) -> Result<String> {
+    let reader = Reader::open(&config.store.path)?;
+    Ok(reader.query(sql, QUERY_ROW_LIMIT)?.render(format))
+}
+
+/// Where the config comes from: `--config`, `$TIDEMARK_CONFIG`, or `./tidemark.toml`.
+pub fn config_path(flag: Option<&Path>) -> Result<PathBuf> {
+    if let Some(path) = flag {
+        return Ok(path.to_path_buf());
+    }
+    if let Some(path) = std::env::var_os("TIDEMARK_CONFIG") {
+        return Ok(PathBuf::from(path));
+    }
+    let default = PathBuf::from("tidemark.toml");
+    if default.exists() {
+        Ok(default)
+    } else {
+        Err(usage("no config: pass --config FILE, set TIDEMARK_CONFIG, or run `tidemark init` here"))
+    }
+}
+
+/// The exit code an ingest outcome deserves: a failed extract is an error.
+pub fn ingest_exit_code(outcome: &IngestOutcome) -> i32 {
+    if outcome.status == SnapshotStatus::Failed { 1 } else { 0 }
+}

@@ -1,0 +1,260 @@
+//! The one TOML config file, in two phases: `raw` is what the user wrote (serde, unknown keys
+//! refused), `Config` is what the program uses, validated once at load (durations, cron
+//! schedules, mappings compiled). Every error names its key path, e.g.
+//! `source[0].schedule: invalid cron expression`. Secrets never live in the file: only the
+//! names of environment variables that hold them.
+
+mod raw;
+mod source;
+
+use std::fmt::Write as _;
+use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use self::raw::RawConfig;
+pub use self::source::{AsOfRule, Location, SourceConfig};
+
+/// The example config that `tidemark init` writes, with comments.
+pub const EXAMPLE: &str = include_str!("../../config/example.toml");
+
+/// Default bind address of the API, dashboard and ops endpoints: loopback only, because the
+/// store holds patient-level data.
+pub const DEFAULT_BIND: &str = "127.0.0.1:8440";
+
+#[derive(Debug, Clone)]
+pub struct Config {
+    /// The file it was read from (relative paths in it are relative to its folder).
+    pub file: PathBuf,
+    pub store: StoreConfig,
+    pub sources: Vec<SourceConfig>,
+    pub email: Option<EmailConfig>,
+    pub webhook: Option<WebhookConfig>,
+    pub bind: SocketAddr,
+    pub log_json: bool,
+}
+
+#[derive(Debug, Clone)]
+pub struct StoreConfig {
+    pub path: PathBuf,
+    pub archive: PathBuf,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Tls {
+    None,
+    StartTls,
+    Implicit,
+}
+
+#[derive(Debug, Clone)]
+pub struct EmailConfig {
+    pub smtp_host: String,
+    pub smtp_port: u16,
+    pub tls: Tls,
+    pub from: String,
+    pub to: Vec<String>,
+    pub username_env: Option<String>,
+    pub password_env: Option<String>,
+}
+
+#[derive(Debug, Clone)]
+pub struct WebhookConfig {
+    pub url: String,
+    pub secret_env: Option<String>,
+}
+
+#[derive(Debug, thiserror::Error)]
+pub enum ConfigError {
+    #[error("cannot read config {path}: {source}")]
+    Read { path: PathBuf, source: std::io::Error },
+    #[error("config {path} is not valid TOML: {message}")]
+    Syntax { path: PathBuf, message: String },
+    #[error("config {path} has {} problem(s):\n  {}", problems.len(), problems.join("\n  "))]
+    Invalid { path: PathBuf, problems: Vec<String> },
+}
+
+impl Config {
+    /// Reads and validates a config file.
+    pub fn load(path: &Path) -> Result<Config, ConfigError> {
+        let text = std::fs::read_to_string(path)
+            .map_err(|source| ConfigError::Read { path: path.to_path_buf(), source })?;
+        Config::parse(&text, path)
+    }
+
+    /// Validates config text as if it had been read from `path`.
+    pub fn parse(text: &str, path: &Path) -> Result<Config, ConfigError> {
+        let raw: RawConfig = toml::from_str(text).map_err(|err| ConfigError::Syntax {
+            path: path.to_path_buf(),
+            message: err.to_string().trim_end().replace('\n', "\n  "),
+        })?;
+        let base = path.parent().unwrap_or(Path::new(".")).to_path_buf();
+        let mut problems = Vec::new();
+        let config = build(raw, path, &base, &mut problems);
+        if problems.is_empty() {
+            Ok(config)
+        } else {
+            Err(ConfigError::Invalid { path: path.to_path_buf(), problems })
+        }
+    }
+
+    pub fn source(&self, name: &str) -> Option<&SourceConfig> {
+        self.sources.iter().find(|s| s.name == name)
+    }
+
+    /// The resolved config as text, secrets redacted: environment variable names are shown
+    /// with whether they are set, never their values; webhook URLs lose their path.
+    pub fn describe(&self) -> String {
+        let mut out = String::new();
+        let _ = writeln!(out, "config: {}", self.file.display());
+        let _ = writeln!(out, "store: {}", self.store.path.display());
+        let _ = writeln!(out, "archive: {}", self.store.archive.display());
+        let _ = writeln!(out, "serve: {}", self.bind);
+        let _ = writeln!(out, "log: {}", if self.log_json { "json" } else { "text" });
+        for source in &self.sources {
+            out.push_str(&source.describe());
+        }
+        if let Some(email) = &self.email {
+            let _ = writeln!(
+                out,
+                "email: {}:{} tls={:?} from={} to={} username={} password={}",
+                email.smtp_host,
+                email.smtp_port,
+                email.tls,
+                email.from,
+                email.to.join(","),
+                env_state(email.username_env.as_deref()),
+                env_state(email.password_env.as_deref()),
+            );
+        }
+        if let Some(webhook) = &self.webhook {
+            let _ = writeln!(
+                out,
+                "webhook: {} secret={}",
+                redact_url(&webhook.url),
+                env_state(webhook.secret_env.as_deref())
+            );
+        }
+        out
+    }
+}
+
+/// `NAME (set)` / `NAME (not set)` / `-`, never the value.
+pub fn env_state(name: Option<&str>) -> String {
+    match name {
+        None => "-".into(),
+        Some(name) if std::env::var_os(name).is_some() => format!("${name} (set)"),
+        Some(name) => format!("${name} (not set)"),
+    }
+}
+
+/// Keeps scheme and host; paths and queries of hook URLs often carry tokens.
+pub fn redact_url(url: &str) -> String {
+    match url.split_once("://") {
+        Some((scheme, rest)) => {
+            let host = rest.split(['/', '?']).next().unwrap_or_default();
+            let host = host.rsplit('@').next().unwrap_or(host);
+            if rest.len() > host.len() {
+                format!("{scheme}://{host}/[redacted]")
+            } else {
+                format!("{scheme}://{host}")
+            }
+        }
+        None => "[redacted]".into(),
+    }
+}
+
+fn build(raw: RawConfig, file: &Path, base: &Path, problems: &mut Vec<String>) -> Config {
+    let resolve = |p: &str| base.join(p);
+    let store = StoreConfig {
+        path: resolve(raw.store.path.as_deref().unwrap_or("data/tidemark.db")),
+        archive: resolve(raw.store.archive.as_deref().unwrap_or("data/archive")),
+    };
+    let mut sources: Vec<SourceConfig> = Vec::new();
+    for (idx, raw_source) in raw.sources.into_iter().enumerate() {
+        let label = format!("source[{idx}]");
+        if sources.iter().any(|s| s.name == raw_source.name) {
+            problems.push(format!("{label}.name: \"{}\" is used by another source", raw_source.name));
+        }
+        if let Some(source) = source::build(raw_source, &label, base, problems) {
+            sources.push(source);
+        }
+    }
+    let bind = raw.serve.bind.as_deref().unwrap_or(DEFAULT_BIND);
+    let bind = bind.parse().unwrap_or_else(|_| {
+        problems.push(format!("serve.bind: \"{bind}\" is not an address:port"));
+        DEFAULT_BIND.parse().unwrap()
+    });
+    let log_json = match raw.log.format.as_deref() {
+        None | Some("text") => false,
+        Some("json") => true,
+        Some(other) => {
+            problems.push(format!("log.format: \"{other}\" is not one of text, json"));
+            false
+        }
+    };
+    Config {
+        file: file.to_path_buf(),
+        store,
+        sources,
+        email: raw.alert.email.and_then(|e| build_email(e, problems)),
+        webhook: raw.alert.webhook.and_then(|w| build_webhook(w, problems)),
+        bind,
+        log_json,
+    }
+}
+
+fn build_email(raw: raw::RawEmail, problems: &mut Vec<String>) -> Option<EmailConfig> {
+    let tls = match raw.tls.as_deref().unwrap_or("starttls") {
+        "none" => Tls::None,
+        "starttls" => Tls::StartTls,
+        "tls" => Tls::Implicit,
+        other => {
+            problems.push(format!("alert.email.tls: \"{other}\" is not one of none, starttls, tls"));
+            return None;
+        }
+    };
+    let Some((host, port)) = raw.smtp.rsplit_once(':').and_then(|(h, p)| Some((h, p.parse().ok()?))) else {
+        problems.push(format!("alert.email.smtp: \"{}\" is not host:port", raw.smtp));
+        return None;
+    };
+    if raw.to.is_empty() {
+        problems.push("alert.email.to: needs at least one address".into());
+    }
+    Some(EmailConfig {
+        smtp_host: host.to_string(),
+        smtp_port: port,
+        tls,
+        from: raw.from,
+        to: raw.to,
+        username_env: raw.username_env,
+        password_env: raw.password_env,
+    })
+}
+
+fn build_webhook(raw: raw::RawWebhook, problems: &mut Vec<String>) -> Option<WebhookConfig> {
+    if !(raw.url.starts_with("http://") || raw.url.starts_with("https://")) {
+        problems.push("alert.webhook.url: must start with http:// or https://".into());
+        return None;
+    }
+    Some(WebhookConfig { url: raw.url, secret_env: raw.secret_env })
+}
+
+/// Parses `90s`, `15m`, `26h`, `2d` (a number and one unit).
+pub fn parse_duration(text: &str) -> Option<Duration> {
+    let text = text.trim();
+    let split = text.find(|c: char| !c.is_ascii_digit())?;
+    let (number, unit) = text.split_at(split);
+    let number: u64 = number.parse().ok()?;
+    let seconds = match unit.trim() {
+        "s" => 1,
+        "m" => 60,
+        "h" => 3600,
+        "d" => 86_400,
+        _ => return None,
+    };
+    Some(Duration::from_secs(number.checked_mul(seconds)?))
+}
+
+#[cfg(test)]
+mod tests;

@@ -1,0 +1,96 @@
+//! The config file exactly as written: serde types with `deny_unknown_fields`, so a typo is an
+//! error naming the key rather than a silently ignored setting. Nothing is interpreted here.
+
+use std::collections::BTreeMap;
+
+use serde::{Deserialize, Serialize};
+
+#[derive(Debug, Deserialize, Default)]
+#[serde(deny_unknown_fields)]
+pub struct RawConfig {
+    #[serde(default)]
+    pub store: RawStore,
+    #[serde(default, rename = "source")]
+    pub sources: Vec<RawSource>,
+    #[serde(default)]
+    pub alert: RawAlert,
+    #[serde(default)]
+    pub serve: RawServe,
+    #[serde(default)]
+    pub log: RawLog,
+}
+
+#[derive(Debug, Deserialize, Default)]
+#[serde(deny_unknown_fields)]
+pub struct RawStore {
+    pub path: Option<String>,
+    pub archive: Option<String>,
+}
+
+/// One source. Serialised back (to JSON, keys sorted) to fingerprint the source's settings.
+#[derive(Debug, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawSource {
+    pub name: String,
+    pub kind: String,
+    pub path: Option<String>,
+    pub url: Option<String>,
+    pub pattern: Option<String>,
+    pub schedule: Option<String>,
+    pub extract: Option<String>,
+    pub format: Option<String>,
+    pub as_of: Option<String>,
+    pub key: String,
+    pub expect_every: Option<String>,
+    pub delimiter: Option<String>,
+    pub encoding_fallback: Option<String>,
+    pub missing: Option<Vec<String>>,
+    pub date_formats: Option<Vec<String>>,
+    pub list_separator: Option<String>,
+    #[serde(default)]
+    pub ignore: Vec<String>,
+    pub hold_fraction: Option<f64>,
+    pub auth_header: Option<String>,
+    pub auth_env: Option<String>,
+    #[serde(default)]
+    pub fields: BTreeMap<String, String>,
+    #[serde(default)]
+    pub values: BTreeMap<String, BTreeMap<String, String>>,
+}
+
+#[derive(Debug, Deserialize, Default)]
+#[serde(deny_unknown_fields)]
+pub struct RawAlert {
+    pub email: Option<RawEmail>,
+    pub webhook: Option<RawWebhook>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawEmail {
+    pub smtp: String,
+    pub tls: Option<String>,
+    pub from: String,
+    pub to: Vec<String>,
+    pub username_env: Option<String>,
+    pub password_env: Option<String>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawWebhook {
+    pub url: String,
+    pub secret_env: Option<String>,
+}
+
+#[derive(Debug, Deserialize, Default)]
+#[serde(deny_unknown_fields)]
+pub struct RawServe {
+    pub bind: Option<String>,
+}
+
+#[derive(Debug, Deserialize, Default)]
+#[serde(deny_unknown_fields)]
+pub struct RawLog {
+    pub format: Option<String>,
+}

@@ -1,0 +1,293 @@
+//! Validating one `[[source]]` table into a `SourceConfig`: location, schedule, extract kind,
+//! format, as-of rule and the column mapping. Problems are pushed with their key path and
+//! validation goes on, so the user sees every mistake at once.
+
+use std::collections::{BTreeSet, HashMap};
+use std::fmt::Write as _;
+use std::path::{Path, PathBuf};
+use std::str::FromStr;
+use std::time::Duration;
+
+use chrono::format::{Item, StrftimeItems};
+use sha2::{Digest, Sha256};
+
+use super::raw::RawSource;
+use super::{env_state, parse_duration, redact_url};
+use crate::extract::{LegacyEncoding, Mapping};
+use crate::model::{ExtractKind, Field, Format};
+
+/// Default poll schedule: every 15 minutes, at second 0 (cron crate syntax, seconds first).
+pub const DEFAULT_SCHEDULE: &str = "0 */15 * * * *";
+
+/// Default truncated-feed guard: hold a full extract that has more than this fraction fewer
+/// rows than the last applied one, or would remove more than this fraction of current records.
+pub const DEFAULT_HOLD_FRACTION: f64 = 0.2;
+
+#[derive(Debug, Clone)]
+pub enum Location {
+    Folder { path: PathBuf, pattern: String },
+    Url { url: String, auth_header: String, auth_env: Option<String> },
+}
+
+/// Where an extract's as-of time comes from when `--as-of` is not given.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum AsOfRule {
+    FileMtime,
+    /// The first date in the file name that matches this chrono format; end of that day, UTC.
+    NameDate(String),
+    /// An HTTP response header (URL sources).
+    Header(String),
+}
+
+#[derive(Debug, Clone)]
+pub struct SourceConfig {
+    pub name: String,
+    pub location: Location,
+    pub schedule: cron::Schedule,
+    pub extract: ExtractKind,
+    pub format: Format,
+    pub as_of: AsOfRule,
+    pub expect_every: Option<Duration>,
+    pub hold_fraction: f64,
+    pub mapping: Mapping,
+    /// SHA-256 of the source's settings; stored so a changed mapping is visible.
+    pub config_hash: String,
+}
+
+impl SourceConfig {
+    pub fn kind_name(&self) -> &'static str {
+        match self.location {
+            Location::Folder { .. } => "folder",
+            Location::Url { .. } => "url",
+        }
+    }
+
+    pub fn describe(&self) -> String {
+        let mut out = String::new();
+        let _ = writeln!(out, "source {}:", self.name);
+        match &self.location {
+            Location::Folder { path, pattern } => {
+                let _ = writeln!(out, "  folder: {} pattern={pattern}", path.display());
+            }
+            Location::Url { url, auth_header, auth_env } => {
+                let _ = writeln!(
+                    out,
+                    "  url: {} auth={auth_header}:{}",
+                    redact_url(url),
+                    env_state(auth_env.as_deref())
+                );
+            }
+        }
+        let _ = writeln!(out, "  schedule: {}", self.schedule.source());
+        let _ = writeln!(
+            out,
+            "  extract: {} format: {} as_of: {:?} hold_fraction: {}",
+            self.extract.name(),
+            self.format.name(),
+            self.as_of,
+            self.hold_fraction
+        );
+        if let Some(every) = self.expect_every {
+            let _ = writeln!(out, "  expect_every: {}s", every.as_secs());
+        }
+        let _ = writeln!(out, "  key: {}", self.mapping.key_column);
+        for (field, column) in &self.mapping.columns {
+            let _ = writeln!(out, "  {field} <- {column}");
+        }
+        out
+    }
+}
+
+pub fn build(raw: RawSource, label: &str, base: &Path, problems: &mut Vec<String>) -> Option<SourceConfig> {
+    let before = problems.len();
+    let mut push = |key: &str, message: String| problems.push(format!("{label}.{key}: {message}"));
+    check_name(&raw.name, &mut push);
+    let location = build_location(&raw, base, &mut push);
+    let schedule_text = raw.schedule.as_deref().unwrap_or(DEFAULT_SCHEDULE);
+    let schedule = cron::Schedule::from_str(schedule_text)
+        .map_err(|err| push("schedule", format!("invalid cron expression ({err})")))
+        .ok();
+    let extract = match raw.extract.as_deref().unwrap_or("full") {
+        "full" => ExtractKind::Full,
+        "delta" => ExtractKind::Delta,
+        other => {
+            push("extract", format!("\"{other}\" is not one of full, delta"));
+            ExtractKind::Full
+        }
+    };
+    let format = parse_format(&raw, &mut push);
+    let as_of = parse_as_of(raw.as_of.as_deref().unwrap_or("file-mtime"), &mut push);
+    let expect_every = raw.expect_every.as_deref().and_then(|text| {
+        let parsed = parse_duration(text);
+        if parsed.is_none() {
+            push("expect_every", format!("\"{text}\" is not a duration such as 90s, 15m, 26h, 2d"));
+        }
+        parsed
+    });
+    let hold_fraction = raw.hold_fraction.unwrap_or(DEFAULT_HOLD_FRACTION);
+    if !(hold_fraction > 0.0 && hold_fraction < 1.0) {
+        push("hold_fraction", "must be between 0 and 1".into());
+    }
+    let mapping = build_mapping(&raw, label, &mut push);
+    let config_hash = hash_settings(&raw);
+    let (location, schedule) = (location?, schedule?);
+    (problems.len() == before).then_some(SourceConfig {
+        name: raw.name,
+        location,
+        schedule,
+        extract,
+        format,
+        as_of,
+        expect_every,
+        hold_fraction,
+        mapping,
+        config_hash,
+    })
+}
+
+fn check_name(name: &str, push: &mut impl FnMut(&str, String)) {
+    let ok = !name.is_empty() && name.chars().all(|c| c.is_ascii_alphanumeric() || c == '-' || c == '_');
+    if !ok {
+        push("name", format!("\"{name}\" must be letters, digits, '-' or '_'"));
+    }
+}
+
+fn build_location(raw: &RawSource, base: &Path, push: &mut impl FnMut(&str, String)) -> Option<Location> {
+    match raw.kind.as_str() {
+        "folder" => {
+            let Some(path) = &raw.path else {
+                push("path", "a folder source needs a path".into());
+                return None;
+            };
+            let pattern = raw.pattern.clone().unwrap_or_else(|| "*".into());
+            Some(Location::Folder { path: base.join(path), pattern })
+        }
+        "url" => {
+            let Some(url) = &raw.url else {
+                push("url", "a url source needs a url".into());
+                return None;
+            };
+            if !(url.starts_with("http://") || url.starts_with("https://")) {
+                push("url", "must start with http:// or https://".into());
+            }
+            Some(Location::Url {
+                url: url.clone(),
+                auth_header: raw.auth_header.clone().unwrap_or_else(|| "Authorization".into()),
+                auth_env: raw.auth_env.clone(),
+            })
+        }
+        other => {
+            push("kind", format!("\"{other}\" is not one of folder, url"));
+            None
+        }
+    }
+}
+
+fn parse_format(raw: &RawSource, push: &mut impl FnMut(&str, String)) -> Format {
+    let guessed = raw.pattern.as_deref().map(|p| p.trim_end_matches(".gz")).and_then(|p| {
+        [(".ndjson", "ndjson"), (".jsonl", "ndjson"), (".json", "json"), (".csv", "csv")]
+            .iter()
+            .find(|(ext, _)| p.ends_with(ext))
+            .map(|(_, name)| *name)
+    });
+    match raw.format.as_deref().or(guessed).unwrap_or("csv") {
+        "csv" => Format::Csv,
+        "ndjson" => Format::Ndjson,
+        "json" => Format::Json,
+        other => {
+            push("format", format!("\"{other}\" is not one of csv, ndjson, json"));
+            Format::Csv
+        }
+    }
+}
+
+fn parse_as_of(text: &str, push: &mut impl FnMut(&str, String)) -> AsOfRule {
+    if text == "file-mtime" {
+        AsOfRule::FileMtime
+    } else if let Some(format) = text.strip_prefix("name:") {
+        if !valid_date_format(format) {
+            push("as_of", format!("\"{format}\" is not a valid date format"));
+        }
+        AsOfRule::NameDate(format.to_string())
+    } else if let Some(header) = text.strip_prefix("header:") {
+        AsOfRule::Header(header.to_string())
+    } else {
+        push("as_of", format!("\"{text}\" is not file-mtime, name:FORMAT or header:NAME"));
+        AsOfRule::FileMtime
+    }
+}
+
+fn valid_date_format(format: &str) -> bool {
+    !format.is_empty() && !StrftimeItems::new(format).any(|item| matches!(item, Item::Error))
+}
+
+fn build_mapping(raw: &RawSource, label: &str, push: &mut impl FnMut(&str, String)) -> Mapping {
+    let mut mapping = Mapping::new(label, raw.key.trim());
+    if raw.key.trim().is_empty() {
+        push("key", "must name the column that identifies a record".into());
+    }
+    for (name, column) in &raw.fields {
+        match Field::parse(name) {
+            Some(Field::CaseKey) => push(&format!("fields.{name}"), "use `key` for the record key".into()),
+            Some(field) if !column.trim().is_empty() => {
+                mapping.columns.insert(field, column.trim().to_string());
+            }
+            Some(_) => push(&format!("fields.{name}"), "column name is empty".into()),
+            None => push(&format!("fields.{name}"), "not a canonical field".into()),
+        }
+    }
+    for (name, map) in &raw.values {
+        let Some(field) = Field::parse(name).filter(|f| !f.is_date()) else {
+            push(&format!("values.{name}"), "not a canonical non-date field".into());
+            continue;
+        };
+        let map: HashMap<String, String> =
+            map.iter().map(|(k, v)| (k.trim().to_lowercase(), v.clone())).collect();
+        mapping.values.insert(field, map);
+    }
+    if let Some(tokens) = &raw.missing {
+        mapping.missing_tokens = tokens.iter().map(|t| t.trim().to_lowercase()).collect();
+    }
+    if let Some(formats) = &raw.date_formats {
+        for format in formats.iter().filter(|f| !valid_date_format(f)) {
+            push("date_formats", format!("\"{format}\" is not a valid date format"));
+        }
+        mapping.date_formats = formats.clone();
+    }
+    if let Some(sep) = &raw.list_separator {
+        if sep.is_empty() {
+            push("list_separator", "must not be empty".into());
+        }
+        mapping.list_separator = sep.clone();
+    }
+    mapping.ignore = raw.ignore.iter().cloned().collect::<BTreeSet<_>>();
+    mapping.delimiter = raw.delimiter.as_deref().and_then(|d| parse_delimiter(d, push));
+    mapping.fallback_encoding =
+        raw.encoding_fallback.as_deref().and_then(|name| match name.to_ascii_lowercase().as_str() {
+            "windows-1252" | "cp1252" => Some(LegacyEncoding::Windows1252),
+            "latin-1" | "latin1" | "iso-8859-1" => Some(LegacyEncoding::Latin1),
+            _ => {
+                push("encoding_fallback", format!("\"{name}\" is not one of windows-1252, latin-1"));
+                None
+            }
+        });
+    mapping
+}
+
+fn parse_delimiter(text: &str, push: &mut impl FnMut(&str, String)) -> Option<u8> {
+    match text {
+        "\\t" | "tab" | "\t" => Some(b'\t'),
+        one if one.len() == 1 && one.is_ascii() => Some(one.as_bytes()[0]),
+        other => {
+            push("delimiter", format!("\"{other}\" must be one ASCII character or \"tab\""));
+            None
+        }
+    }
+}
+
+fn hash_settings(raw: &RawSource) -> String {
+    let json = serde_json::to_string(raw).unwrap_or_default();
+    let digest = Sha256::digest(json.as_bytes());
+    let hex: String = digest.iter().map(|b| format!("{b:02x}")).collect();
+    hex[..16].to_string()
+}

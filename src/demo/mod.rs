@@ -1,0 +1,188 @@
+//! The demo scenario: an invented region, two invented feeds and the known truth behind
+//! them. `scenario` draws the cases, `feeds` renders what each feed shows on a day, and this
+//! file writes one full extract per feed per day, `truth.csv` and a config into a folder.
+//! No real people, places or data: every name and value is generated here.
+
+pub mod feeds;
+pub mod scenario;
+
+use std::fs;
+use std::io;
+use std::path::{Path, PathBuf};
+
+pub use self::scenario::{JURISDICTIONS, Scenario, TrueCase};
+
+/// Days of extracts the demo generates unless told otherwise.
+pub const DEFAULT_DAYS: u32 = 100;
+
+/// A file that marks a folder as the demo's own, so a re-run may clear it.
+const MARKER: &str = ".tidemark-demo";
+
+/// Source names in the demo config.
+pub const COUNTY_SOURCE: &str = "county-reports";
+pub const LAB_SOURCE: &str = "lab-results";
+
+/// The demo's files on disk.
+#[derive(Debug, Clone)]
+pub struct DemoFiles {
+    pub dir: PathBuf,
+    pub config: PathBuf,
+    /// (day, county extract, lab extract), in day order.
+    pub extracts: Vec<(i32, PathBuf, PathBuf)>,
+}
+
+/// Writes the scenario's extracts, `truth.csv` and `tidemark.toml` into `dir`, clearing an
+/// earlier demo there. Refuses a non-empty folder that is not a demo folder.
+pub fn write(dir: &Path, scenario: &Scenario) -> io::Result<DemoFiles> {
+    prepare_dir(dir)?;
+    let county_dir = dir.join("feeds").join(COUNTY_SOURCE);
+    let lab_dir = dir.join("feeds").join(LAB_SOURCE);
+    fs::create_dir_all(&county_dir)?;
+    fs::create_dir_all(&lab_dir)?;
+    let mut extracts = Vec::new();
+    for day in 0..scenario.days as i32 {
+        let (county_text, lab_text) = (feeds::county_csv(scenario, day), feeds::lab_ndjson(scenario, day));
+        // A feed with nothing to report yet sends nothing: the demo starts on the first day
+        // both feeds have a record.
+        if extracts.is_empty() && (lab_text.is_empty() || !county_text.contains("\nCR-")) {
+            continue;
+        }
+        let date = scenario.date(day);
+        let county = county_dir.join(format!("{COUNTY_SOURCE}-{date}.csv"));
+        let lab = lab_dir.join(format!("{LAB_SOURCE}-{date}.ndjson"));
+        fs::write(&county, county_text)?;
+        fs::write(&lab, lab_text)?;
+        extracts.push((day, county, lab));
+    }
+    fs::write(dir.join("truth.csv"), truth_csv(scenario))?;
+    let config = dir.join("tidemark.toml");
+    fs::write(&config, CONFIG)?;
+    Ok(DemoFiles { dir: dir.to_path_buf(), config, extracts })
+}
+
+fn prepare_dir(dir: &Path) -> io::Result<()> {
+    if dir.join(MARKER).exists() {
+        for sub in ["feeds", "data"] {
+            if dir.join(sub).exists() {
+                fs::remove_dir_all(dir.join(sub))?;
+            }
+        }
+    } else if dir.exists() && fs::read_dir(dir)?.next().is_some() {
+        return Err(io::Error::other(format!(
+            "{} is not empty and not a demo folder; choose another DIR",
+            dir.display()
+        )));
+    }
+    fs::create_dir_all(dir)?;
+    fs::write(dir.join(MARKER), "created by `tidemark demo`; safe to delete\n")
+}
+
+/// True daily onsets, overall and per jurisdiction.
+pub fn truth_csv(scenario: &Scenario) -> String {
+    let mut per_day = vec![[0u32; JURISDICTIONS.len()]; scenario.days as usize];
+    for case in &scenario.cases {
+        per_day[case.onset as usize][case.jurisdiction] += 1;
+    }
+    let mut out = String::from("onset_date,true_onsets");
+    for (name, ..) in JURISDICTIONS {
+        out.push_str(&format!(",{}", name.to_lowercase().replace(' ', "_")));
+    }
+    out.push('\n');
+    for (day, counts) in per_day.iter().enumerate() {
+        let total: u32 = counts.iter().sum();
+        out.push_str(&format!("{},{total}", scenario.date(day as i32)));
+        for count in counts {
+            out.push_str(&format!(",{count}"));
+        }
+        out.push('\n');
+    }
+    out
+}
+
+/// The demo's config: two folder feeds with different column names and codes.
+pub const CONFIG: &str = r#"# Written by `tidemark demo`: the invented scenario's two feeds.
+[store]
+path = "data/tidemark.db"
+archive = "data/archive"
+
+[[source]]
+name = "county-reports"
+kind = "folder"
+path = "feeds/county-reports"
+pattern = "*.csv"
+schedule = "*/2 * * * * *"
+extract = "full"
+as_of = "name:%Y-%m-%d"
+key = "case_id"
+expect_every = "26h"
+ignore = ["exported_at"]
+
+[source.fields]
+jurisdiction = "district"
+onset_date = "symptom_onset"
+specimen_date = "specimen_collected"
+result_date = "result_released"
+report_date = "reported_on"
+admit_date = "admitted_on"
+death_date = "died_on"
+outcome = "outcome"
+age = "age"
+sex = "sex"
+hospitalised = "hospitalised"
+symptoms = "symptoms"
+conditions = "conditions"
+
+[source.values.sex]
+F = "female"
+M = "male"
+X = "other"
+U = ""
+
+[source.values.hospitalised]
+Y = "yes"
+N = "no"
+
+[[source]]
+name = "lab-results"
+kind = "folder"
+path = "feeds/lab-results"
+pattern = "*.ndjson"
+format = "ndjson"
+schedule = "*/2 * * * * *"
+extract = "full"
+as_of = "name:%Y-%m-%d"
+key = "specimen_id"
+expect_every = "26h"
+
+[source.fields]
+jurisdiction = "area"
+onset_date = "onsetDate"
+specimen_date = "specimenDate"
+result_date = "resultDate"
+age = "patientAge"
+sex = "gender"
+symptoms = "symptomList"
+
+[source.values.sex]
+1 = "male"
+2 = "female"
+3 = "other"
+9 = ""
+
+[source.values.jurisdiction]
+AMB = "Amberlee"
+BRK = "Brackwater"
+COR = "Corran Vale"
+DUN = "Dunhollow"
+"#;
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn demo_config_is_valid() {
+        let config = crate::config::Config::parse(CONFIG, Path::new("/tmp/demo/tidemark.toml")).unwrap();
+        assert_eq!(config.sources.len(), 2);
+    }
+}

@@ -1,0 +1,240 @@
+//! Delimited text extracts: BOM, detected or configured delimiter, quoted fields, legacy
+//! encodings per cell, ragged rows and unterminated quotes. Streams record by record.
+
+use std::collections::{BTreeMap, HashSet};
+use std::io::{self, BufRead, Read};
+
+use chrono::NaiveDate;
+
+use super::encoding::decode_cell;
+use super::mapping::{Mapped, Mapping, RawValue, map_row};
+use super::{ExtractError, MAX_FIELD_BYTES, MAX_RAW_BYTES, ParseError, Problem, ProblemKind, Row, raw_text};
+use crate::model::Field;
+
+const UTF8_BOM: [u8; 3] = [0xEF, 0xBB, 0xBF];
+const DELIMITER_CANDIDATES: [u8; 4] = [b',', b';', b'\t', b'|'];
+
+pub(super) fn parse<E>(
+    mut input: Box<dyn BufRead + '_>,
+    mapping: &Mapping,
+    latest: NaiveDate,
+    sink: &mut impl FnMut(Row) -> Result<(), E>,
+) -> Result<(), ParseError<E>> {
+    let head = input.fill_buf().map_err(ExtractError::Read)?;
+    if head.starts_with(&UTF8_BOM) {
+        input.consume(UTF8_BOM.len());
+    }
+    let head = input.fill_buf().map_err(ExtractError::Read)?;
+    if head.iter().all(|b| b.is_ascii_whitespace()) {
+        return Err(ExtractError::Empty.into());
+    }
+    let delimiter = mapping.delimiter.unwrap_or_else(|| detect_delimiter(head));
+    let mut reader = csv::ReaderBuilder::new()
+        .has_headers(false)
+        .flexible(true)
+        .delimiter(delimiter)
+        .from_reader(QuoteCounter { inner: input, quotes: 0 });
+    let mut record = csv::ByteRecord::new();
+    if !read_record(&mut reader, &mut record)? {
+        return Err(ExtractError::Empty.into());
+    }
+    let layout = Layout::from_header(&record, mapping)?;
+    let mut raw_writer = RawWriter::new(delimiter);
+    let mut last_line = 1;
+    while read_record(&mut reader, &mut record)? {
+        last_line = record.position().map(|p| p.line()).unwrap_or(last_line + 1);
+        let row = layout.row(&record, last_line, mapping, latest, &mut raw_writer);
+        sink(row).map_err(ParseError::Sink)?;
+    }
+    if reader.into_inner().quotes % 2 == 1 {
+        return Err(ExtractError::UnterminatedQuote { line: last_line }.into());
+    }
+    Ok(())
+}
+
+fn read_record<R: Read>(
+    reader: &mut csv::Reader<R>,
+    record: &mut csv::ByteRecord,
+) -> Result<bool, ExtractError> {
+    reader.read_byte_record(record).map_err(|err| match err.into_kind() {
+        csv::ErrorKind::Io(io) => ExtractError::Read(io),
+        other => ExtractError::Read(io::Error::other(format!("{other:?}"))),
+    })
+}
+
+/// Counts quote bytes so that an unterminated quoted field (which swallows the rest of the
+/// file into one cell) can be told from a complete file. Doubled quotes inside a field keep
+/// the count even.
+struct QuoteCounter<R> {
+    inner: R,
+    quotes: u64,
+}
+
+impl<R: Read> Read for QuoteCounter<R> {
+    fn read(&mut self, buf: &mut [u8]) -> io::Result<usize> {
+        let n = self.inner.read(buf)?;
+        self.quotes += buf[..n].iter().filter(|&&b| b == b'"').count() as u64;
+        Ok(n)
+    }
+}
+
+/// Picks the candidate that occurs most often, outside quotes, in the first line.
+fn detect_delimiter(head: &[u8]) -> u8 {
+    let mut counts = [0usize; DELIMITER_CANDIDATES.len()];
+    let mut in_quotes = false;
+    for &byte in head {
+        if !in_quotes && (byte == b'\n' || byte == b'\r') {
+            break;
+        }
+        if byte == b'"' {
+            in_quotes = !in_quotes;
+        } else if !in_quotes && let Some(idx) = DELIMITER_CANDIDATES.iter().position(|&c| c == byte) {
+            counts[idx] += 1;
+        }
+    }
+    let best = (0..counts.len()).max_by_key(|&idx| (counts[idx], usize::MAX - idx)).unwrap_or(0);
+    if counts[best] == 0 { b',' } else { DELIMITER_CANDIDATES[best] }
+}
+
+/// Where each mapped field and each extra column sits in the header.
+struct Layout {
+    width: usize,
+    fields: Vec<(Field, usize)>,
+    extras: Vec<(String, usize)>,
+}
+
+impl Layout {
+    fn from_header(header: &csv::ByteRecord, mapping: &Mapping) -> Result<Layout, ExtractError> {
+        let mut names = Vec::with_capacity(header.len());
+        let mut seen = HashSet::new();
+        for cell in header {
+            let name = decode_cell(cell, mapping.fallback_encoding)
+                .ok_or(ExtractError::BadHeader("not valid UTF-8"))?
+                .trim()
+                .to_string();
+            if !name.is_empty() && !seen.insert(name.clone()) {
+                return Err(ExtractError::DuplicateColumn(name));
+            }
+            names.push(name);
+        }
+        let find = |field: Field| -> Result<(Field, usize), ExtractError> {
+            let column = mapping.column(field).unwrap_or_default();
+            names.iter().position(|name| name == column).map(|idx| (field, idx)).ok_or_else(|| {
+                ExtractError::MissingColumn { path: mapping.config_path(field), column: column.to_string() }
+            })
+        };
+        let mut fields = vec![find(Field::CaseKey)?];
+        for &field in mapping.columns.keys() {
+            fields.push(find(field)?);
+        }
+        let extras = names
+            .iter()
+            .enumerate()
+            .filter(|(_, name)| !name.is_empty() && mapping.is_extra(name))
+            .map(|(idx, name)| (name.clone(), idx))
+            .collect();
+        Ok(Layout { width: names.len(), fields, extras })
+    }
+
+    fn row(
+        &self,
+        record: &csv::ByteRecord,
+        line: u64,
+        mapping: &Mapping,
+        latest: NaiveDate,
+        raw_writer: &mut RawWriter,
+    ) -> Row {
+        let raw = raw_writer.render(record);
+        if record.len() != self.width {
+            return Row::Rejected(Problem {
+                line,
+                field: None,
+                kind: ProblemKind::RaggedRow,
+                message: format!("expected {} fields, found {}", self.width, record.len()),
+                raw: Some(raw),
+            });
+        }
+        let mut extra_problems = Vec::new();
+        let mut extra = BTreeMap::new();
+        for (name, idx) in &self.extras {
+            match read_cell(&record[*idx], mapping) {
+                RawValue::Text(text) if !text.trim().is_empty() => {
+                    extra.insert(name.clone(), text);
+                }
+                RawValue::Unreadable(kind, why) => extra_problems.push(Problem {
+                    line,
+                    field: Some(name.clone()),
+                    kind,
+                    message: format!("column \"{name}\": {why}; the cell was dropped"),
+                    raw: None,
+                }),
+                _ => {}
+            }
+        }
+        let get = |field: Field| {
+            let idx = self.fields.iter().find(|(f, _)| *f == field)?.1;
+            Some(read_cell(&record[idx], mapping))
+        };
+        match map_row(mapping, line, latest, get, extra) {
+            Mapped::Accepted { record, mut problems } => {
+                problems.extend(extra_problems);
+                Row::Accepted { line, record, raw, problems }
+            }
+            Mapped::Rejected(problem) => Row::Rejected(Problem { raw: Some(raw), ..problem }),
+        }
+    }
+}
+
+fn read_cell(bytes: &[u8], mapping: &Mapping) -> RawValue {
+    if bytes.len() > MAX_FIELD_BYTES {
+        return RawValue::Unreadable(ProblemKind::FieldTooLong, "cell longer than 64 KiB");
+    }
+    if bytes.contains(&0) {
+        return RawValue::Unreadable(ProblemKind::NulByte, "cell contains a NUL byte");
+    }
+    match decode_cell(bytes, mapping.fallback_encoding) {
+        Some(text) => RawValue::Text(text),
+        None => RawValue::Unreadable(
+            ProblemKind::InvalidEncoding,
+            "not valid UTF-8 (set encoding_fallback for a legacy feed)",
+        ),
+    }
+}
+
+/// Re-serialises a record as CSV for the `reject` table (quoting as RFC 4180 does).
+struct RawWriter {
+    delimiter: u8,
+    buffer: Vec<u8>,
+}
+
+impl RawWriter {
+    fn new(delimiter: u8) -> RawWriter {
+        RawWriter { delimiter, buffer: Vec::with_capacity(1024) }
+    }
+
+    fn render(&mut self, record: &csv::ByteRecord) -> String {
+        self.buffer.clear();
+        for (idx, cell) in record.iter().enumerate() {
+            if idx > 0 {
+                self.buffer.push(self.delimiter);
+            }
+            let quote = cell.iter().any(|&b| b == self.delimiter || b == b'"' || b == b'\n' || b == b'\r');
+            if quote {
+                self.buffer.push(b'"');
+                for &b in cell {
+                    if b == b'"' {
+                        self.buffer.push(b'"');
+                    }
+                    self.buffer.push(b);
+                }
+                self.buffer.push(b'"');
+            } else {
+                self.buffer.extend_from_slice(cell);
+            }
+            if self.buffer.len() > MAX_RAW_BYTES * 2 {
+                break;
+            }
+        }
+        raw_text(&self.buffer)
+    }
+}

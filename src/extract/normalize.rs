@@ -1,0 +1,290 @@
+//! Turning one source cell into a canonical value: dates, ages as intervals, yes/no flags,
+//! multi-valued lists and temperature readings. Pure functions on strings; the caller has
+//! already decided that the cell is not a missing token.
+
+use chrono::NaiveDate;
+
+use crate::model::AgeRange;
+
+/// Upper bound of an open age interval such as "80+", in years (common practice for
+/// demographic tables; nobody in a line list is older).
+pub const AGE_OPEN_UPPER: f64 = 120.0;
+
+/// Fever threshold in degrees Celsius (common practice: 38.0 C or more is fever).
+pub const FEVER_CELSIUS: f64 = 38.0;
+
+/// Why a cell could not be turned into a value. The text names the problem, never the value.
+pub type Invalid = &'static str;
+
+/// Parses a date with the first matching format. Datetime strings (`2026-03-01T08:30:00Z`)
+/// are accepted when the format matches their date part. Impossible dates such as
+/// 2026-02-30 fail.
+pub fn parse_date(text: &str, formats: &[String]) -> Result<NaiveDate, Invalid> {
+    let text = text.trim();
+    for format in formats {
+        if let Ok(date) = NaiveDate::parse_from_str(text, format) {
+            return Ok(date);
+        }
+        if let Ok((date, rest)) = NaiveDate::parse_and_remainder(text, format)
+            && (rest.starts_with('T') || rest.starts_with(' '))
+        {
+            return Ok(date);
+        }
+    }
+    Err("not a valid date in the configured formats")
+}
+
+/// Parses an age into an interval in years: `45` (completed years, `[45, 46)`), `45.5`,
+/// `80+`, `30-39`, `<1`, `6 months`, `3 weeks`, `10 days`, `45 years`.
+pub fn parse_age(text: &str) -> Result<AgeRange, Invalid> {
+    let text = text.trim().to_ascii_lowercase();
+    let range = if let Some(lo) = text.strip_suffix('+') {
+        let lo = parse_years(lo)?;
+        AgeRange { lo, hi: AGE_OPEN_UPPER }
+    } else if let Some(hi) = text.strip_prefix('<') {
+        AgeRange { lo: 0.0, hi: parse_years(hi)? }
+    } else if let Some((lo, hi)) = split_band(&text) {
+        let (lo, hi) = (parse_years(lo)?, parse_years(hi)?);
+        if hi < lo {
+            return Err("age band upper bound below lower bound");
+        }
+        // "30-39" in completed years covers [30, 40).
+        AgeRange { lo, hi: hi + 1.0 }
+    } else if let Some((number, unit)) = split_unit(&text) {
+        let years = number / unit_per_year(unit)?;
+        if unit_per_year(unit)? == 1.0 && number.fract() == 0.0 {
+            AgeRange { lo: years, hi: years + 1.0 }
+        } else {
+            AgeRange { lo: years, hi: years }
+        }
+    } else {
+        let years = parse_years(&text)?;
+        if years.fract() == 0.0 {
+            AgeRange { lo: years, hi: years + 1.0 }
+        } else {
+            AgeRange { lo: years, hi: years }
+        }
+    };
+    check_age(range)
+}
+
+/// Parses a yes/no flag. Values are matched after the source's value map has been applied.
+pub fn parse_flag(text: &str) -> Result<bool, Invalid> {
+    match text.trim().to_ascii_lowercase().as_str() {
+        "yes" | "y" | "true" | "t" | "1" => Ok(true),
+        "no" | "n" | "false" | "f" | "0" => Ok(false),
+        _ => Err("not a recognised yes/no value"),
+    }
+}
+
+/// Splits a multi-valued cell, trims and lower-cases each item, turns temperature readings
+/// into `fever` (at or above 38.0 C) or drops them (below), and removes duplicates while
+/// keeping first-seen order. `none` alone means an explicitly empty list.
+pub fn split_list(text: &str, separator: &str) -> Vec<String> {
+    normalize_items(text.split(separator))
+}
+
+/// The same normalisation for items that arrive already split (JSON arrays).
+pub fn normalize_items<'a>(items: impl IntoIterator<Item = &'a str>) -> Vec<String> {
+    let mut out: Vec<String> = Vec::new();
+    for item in items {
+        let item = item.trim().to_lowercase();
+        if item.is_empty() || item == "none" {
+            continue;
+        }
+        let item = match temperature_celsius(&item) {
+            Some(celsius) if celsius >= FEVER_CELSIUS => "fever".to_string(),
+            Some(_) => continue,
+            None => item,
+        };
+        if !out.contains(&item) {
+            out.push(item);
+        }
+    }
+    out
+}
+
+/// Reads a temperature such as `38.1 c`, `38.1°c`, `temp 39`, `fever 38.5` or `100.4 f`,
+/// returning degrees Celsius. A bare number between 34 and 43 is read as Celsius.
+pub fn temperature_celsius(item: &str) -> Option<f64> {
+    let item = item.trim().to_lowercase();
+    let item = ["temperature", "temp", "fever", "t="]
+        .iter()
+        .find_map(|prefix| item.strip_prefix(prefix))
+        .unwrap_or(&item)
+        .trim_start_matches([':', ' ', '='])
+        .trim();
+    let (number, unit) = leading_number(item)?;
+    let unit = unit.trim().trim_start_matches('°').trim();
+    match unit {
+        "c" | "celsius" => Some(number),
+        "f" | "fahrenheit" => Some((number - 32.0) * 5.0 / 9.0),
+        "" if (34.0..=43.0).contains(&number) => Some(number),
+        _ => None,
+    }
+}
+
+fn leading_number(text: &str) -> Option<(f64, &str)> {
+    let end = text
+        .char_indices()
+        .find(|(_, c)| !(c.is_ascii_digit() || *c == '.' || *c == ','))
+        .map(|(idx, _)| idx)
+        .unwrap_or(text.len());
+    if end == 0 {
+        return None;
+    }
+    let number = text[..end].replace(',', ".").parse::<f64>().ok()?;
+    Some((number, &text[end..]))
+}
+
+fn parse_years(text: &str) -> Result<f64, Invalid> {
+    let text = text.trim();
+    let value: f64 = text.parse().map_err(|_| "not a recognised age")?;
+    if !value.is_finite() {
+        return Err("not a recognised age");
+    }
+    Ok(value)
+}
+
+fn split_band(text: &str) -> Option<(&str, &str)> {
+    // A leading '-' is a negative number, not a band.
+    let idx = text[1..].find(['-', '–']).map(|idx| idx + 1)?;
+    let sep_len = text[idx..].chars().next()?.len_utf8();
+    let (lo, hi) = (&text[..idx], &text[idx + sep_len..]);
+    let looks_numeric = |s: &str| !s.trim().is_empty() && s.trim().parse::<f64>().is_ok();
+    (looks_numeric(lo) && looks_numeric(hi)).then_some((lo, hi))
+}
+
+fn split_unit(text: &str) -> Option<(f64, &str)> {
+    let (number, unit) = leading_number(text)?;
+    let unit = unit.trim();
+    (!unit.is_empty()).then_some((number, unit))
+}
+
+fn unit_per_year(unit: &str) -> Result<f64, Invalid> {
+    match unit {
+        "y" | "yr" | "yrs" | "year" | "years" => Ok(1.0),
+        "m" | "mo" | "mos" | "month" | "months" => Ok(12.0),
+        "w" | "wk" | "wks" | "week" | "weeks" => Ok(365.25 / 7.0),
+        "d" | "day" | "days" => Ok(365.25),
+        _ => Err("not a recognised age unit"),
+    }
+}
+
+fn check_age(range: AgeRange) -> Result<AgeRange, Invalid> {
+    if range.lo < 0.0 {
+        Err("negative age")
+    } else if range.lo > AGE_OPEN_UPPER {
+        Err("age above 120 years")
+    } else {
+        Ok(range)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn iso() -> Vec<String> {
+        vec!["%Y-%m-%d".to_string()]
+    }
+
+    #[test]
+    fn dates() {
+        let d = |y, m, day| Ok(NaiveDate::from_ymd_opt(y, m, day).unwrap());
+        let cases: &[(&str, &[&str], Result<NaiveDate, Invalid>)] = &[
+            ("2026-03-01", &["%Y-%m-%d"], d(2026, 3, 1)),
+            (" 2026-03-01 ", &["%Y-%m-%d"], d(2026, 3, 1)),
+            ("2026-03-01T08:30:00Z", &["%Y-%m-%d"], d(2026, 3, 1)),
+            ("2026-03-01 08:30", &["%Y-%m-%d"], d(2026, 3, 1)),
+            ("01/03/2026", &["%Y-%m-%d", "%d/%m/%Y"], d(2026, 3, 1)),
+            ("2024-02-29", &["%Y-%m-%d"], d(2024, 2, 29)),
+        ];
+        for (text, formats, want) in cases {
+            let formats: Vec<String> = formats.iter().map(|f| f.to_string()).collect();
+            assert_eq!(parse_date(text, &formats), *want, "{text}");
+        }
+        for bad in ["2026-02-30", "2025-02-29", "2026-13-01", "yesterday", "2026-03-01x", "20260301"] {
+            assert!(parse_date(bad, &iso()).is_err(), "{bad} should be invalid");
+        }
+    }
+
+    #[test]
+    fn ages() {
+        let r = |lo, hi| Ok(AgeRange { lo, hi });
+        let cases: &[(&str, Result<AgeRange, Invalid>)] = &[
+            ("45", r(45.0, 46.0)),
+            ("0", r(0.0, 1.0)),
+            ("45.5", r(45.5, 45.5)),
+            ("80+", r(80.0, 120.0)),
+            ("90 +", r(90.0, 120.0)),
+            ("30-39", r(30.0, 40.0)),
+            ("30 - 39", r(30.0, 40.0)),
+            ("<1", r(0.0, 1.0)),
+            ("6 months", r(0.5, 0.5)),
+            ("18 Months", r(1.5, 1.5)),
+            ("45 years", r(45.0, 46.0)),
+            ("-3", Err("negative age")),
+            ("130", Err("age above 120 years")),
+            ("39-30", Err("age band upper bound below lower bound")),
+            ("old", Err("not a recognised age")),
+            ("5 fortnights", Err("not a recognised age unit")),
+        ];
+        for (text, want) in cases {
+            assert_eq!(parse_age(text), *want, "{text}");
+        }
+        let weeks = parse_age("3 weeks").unwrap();
+        assert!((weeks.lo - 21.0 / 365.25).abs() < 1e-12 && weeks.lo == weeks.hi);
+        let days = parse_age("10 days").unwrap();
+        assert!((days.lo - 10.0 / 365.25).abs() < 1e-12);
+    }
+
+    #[test]
+    fn flags() {
+        for yes in ["yes", "Y", "TRUE", "1", " t "] {
+            assert_eq!(parse_flag(yes), Ok(true), "{yes}");
+        }
+        for no in ["no", "N", "false", "0"] {
+            assert_eq!(parse_flag(no), Ok(false), "{no}");
+        }
+        assert!(parse_flag("maybe").is_err());
+    }
+
+    #[test]
+    fn lists_split_trim_lowercase_and_dedupe() {
+        let cases: &[(&str, &str, &[&str])] = &[
+            ("Cough; Fatigue ;cough", ";", &["cough", "fatigue"]),
+            ("cough|38.1 C|headache", "|", &["cough", "fever", "headache"]),
+            ("37.2 C, cough", ",", &["cough"]),
+            ("fever; 39.0°C", ";", &["fever"]),
+            ("none", ";", &[]),
+            (" ; ;", ";", &[]),
+            ("LOSS OF SMELL", ";", &["loss of smell"]),
+        ];
+        for (text, sep, want) in cases {
+            assert_eq!(split_list(text, sep), *want, "{text}");
+        }
+    }
+
+    #[test]
+    fn temperatures() {
+        // Fever at 38.0 C or more is common practice; 100.4 F is 38.0 C.
+        let cases: &[(&str, Option<f64>)] = &[
+            ("38.1 c", Some(38.1)),
+            ("38.1°C", Some(38.1)),
+            ("temp 39", Some(39.0)),
+            ("temperature: 37.5 c", Some(37.5)),
+            ("fever 38,5", Some(38.5)),
+            ("38", Some(38.0)),
+            ("cough", None),
+            ("12", None),
+        ];
+        for (text, want) in cases {
+            assert_eq!(temperature_celsius(text), *want, "{text}");
+        }
+        let f = temperature_celsius("100.4 F").unwrap();
+        assert!((f - 38.0).abs() < 1e-9);
+        assert_eq!(normalize_items(["38.0 C"]), vec!["fever"]);
+        assert_eq!(normalize_items(["37.9 C"]), Vec::<String>::new());
+    }
+}

@@ -1,0 +1,23 @@
+//! tidemark keeps a health department's case line lists under version control and watches
+//! them: it ingests CSV and JSON extracts, versions every record in SQLite so that any past
+//! figure can be reproduced, and reports what each extract changed.
+//!
+//! # Layout
+//!
+//! In reading order, following the data:
+//!
+//! - [`model`]: canonical fields, the typed case record, snapshot statuses.
+//! - [`config`]: the TOML config, validated once into typed settings.
+//! - [`extract`]: bytes of one extract -> canonical rows and row problems (pure, streaming).
+//! - [`store`]: SQLite: migrations, the one writer, as-of reads, the raw archive.
+//! - [`table`]: listings rendered as text, CSV or JSON.
+//! - [`demo`]: an invented scenario with known truth, for the demo and tests.
+//! - [`app`]: command bodies and the ingest pipeline (the only place that uses `anyhow`).
+
+pub mod app;
+pub mod config;
+pub mod demo;
+pub mod extract;
+pub mod model;
+pub mod store;
+pub mod table;

@@ -1,0 +1,193 @@
+//! The `tidemark` command: parses the command line, loads the config, sets up logging,
+//! dispatches to `app::commands`, and turns the outcome into an exit code (0 ok, 1 error,
+//! 2 bad usage or config). Errors print one clear line first, details after.
+
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+
+use anyhow::Result;
+use clap::{Args, Parser, Subcommand};
+
+use tidemark::app::commands::{self, CurveArgs, UsageError};
+use tidemark::app::demo::{self, DemoOptions};
+use tidemark::config::{Config, ConfigError};
+use tidemark::demo::DEFAULT_DAYS;
+use tidemark::table::OutputFormat;
+
+#[derive(Debug, Parser)]
+#[command(name = "tidemark", version, about = "Versioned case line lists, backfill-aware counts and alerts")]
+struct Cli {
+    /// Config file (default: $TIDEMARK_CONFIG, then ./tidemark.toml).
+    #[arg(long, global = true, value_name = "FILE")]
+    config: Option<PathBuf>,
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Debug, Args)]
+struct Listing {
+    /// Output format.
+    #[arg(long, value_enum, default_value = "table")]
+    format: OutputFormat,
+}
+
+#[derive(Debug, Subcommand)]
+enum Command {
+    /// Write an example config and create the store.
+    Init {
+        #[arg(default_value = ".")]
+        dir: PathBuf,
+    },
+    /// Validate the config and print it resolved, secrets redacted.
+    CheckConfig,
+    /// Ingest one extract file, the same way the daemon does.
+    Ingest {
+        file: PathBuf,
+        #[arg(long)]
+        source: String,
+        /// As-of time of the extract (RFC 3339 or YYYY-MM-DD = end of that day, UTC).
+        #[arg(long, value_name = "TIME")]
+        as_of: Option<String>,
+    },
+    /// List snapshots, or release or reject a held one.
+    #[command(args_conflicts_with_subcommands = true)]
+    Snapshots {
+        #[command(subcommand)]
+        action: Option<SnapshotAction>,
+        #[arg(long)]
+        source: Option<String>,
+        #[command(flatten)]
+        listing: Listing,
+    },
+    /// Every version of one record.
+    History {
+        case_key: String,
+        #[arg(long)]
+        source: String,
+        #[command(flatten)]
+        listing: Listing,
+    },
+    /// Counts per day of a date field, as of a snapshot.
+    Curve {
+        #[arg(long)]
+        source: String,
+        /// Date field (onset_date, report_date, ... or onset, report, ...).
+        #[arg(long, value_name = "FIELD")]
+        by: String,
+        #[arg(long, value_name = "TIME")]
+        as_of: Option<String>,
+        /// jurisdiction, age, sex, outcome or hospitalised.
+        #[arg(long, value_name = "FIELD")]
+        stratify: Option<String>,
+        #[command(flatten)]
+        listing: Listing,
+    },
+    /// Run one read-only SQL statement against the store.
+    Query {
+        sql: String,
+        #[command(flatten)]
+        listing: Listing,
+    },
+    /// Generate the invented scenario and run the whole pipeline on it.
+    Demo {
+        /// Folder for the scenario's files, config and store.
+        #[arg(default_value = "tidemark-demo")]
+        dir: PathBuf,
+        #[arg(long, default_value_t = 7)]
+        seed: u64,
+        /// Days of extracts to generate.
+        #[arg(long, default_value_t = DEFAULT_DAYS)]
+        days: u32,
+    },
+}
+
+#[derive(Debug, Subcommand)]
+enum SnapshotAction {
+    /// Apply a held snapshot.
+    Release { id: i64 },
+    /// Discard a held snapshot (it stays listed as rejected).
+    Reject {
+        id: i64,
+        #[arg(long)]
+        note: Option<String>,
+    },
+}
+
+fn main() -> ExitCode {
+    let cli = Cli::parse();
+    init_tracing();
+    match run(cli) {
+        Ok(code) => ExitCode::from(code),
+        Err(err) => {
+            let mut chain = err.chain();
+            if let Some(first) = chain.next() {
+                eprintln!("error: {first}");
+            }
+            for cause in chain {
+                eprintln!("  caused by: {cause}");
+            }
+            ExitCode::from(exit_code(&err))
+        }
+    }
+}
+
+fn exit_code(err: &anyhow::Error) -> u8 {
+    let usage = err.chain().any(|cause| cause.is::<UsageError>() || cause.is::<ConfigError>());
+    if usage { 2 } else { 1 }
+}
+
+fn init_tracing() {
+    let filter = tracing_subscriber::EnvFilter::try_from_env("TIDEMARK_LOG")
+        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("warn"));
+    let _ = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr).try_init();
+}
+
+fn load(flag: Option<&Path>) -> Result<Config> {
+    let path = commands::config_path(flag)?;
+    Ok(Config::load(&path)?)
+}
+
+fn run(cli: Cli) -> Result<u8> {
+    let flag = cli.config.as_deref();
+    let text = match cli.command {
+        Command::Init { dir } => commands::init(&dir)?,
+        Command::CheckConfig => commands::check_config(&load(flag)?),
+        Command::Ingest { file, source, as_of } => {
+            let config = load(flag)?;
+            let outcome = commands::ingest(&config, &file, &source, as_of.as_deref())?;
+            println!("{}", outcome.summary(&source));
+            for line in commands::problem_lines(&config, outcome.snapshot_id, 20)? {
+                println!("  {line}");
+            }
+            return Ok(commands::ingest_exit_code(&outcome) as u8);
+        }
+        Command::Snapshots { action, source, listing } => {
+            let config = load(flag)?;
+            match action {
+                None => commands::snapshots(&config, source.as_deref(), listing.format)?,
+                Some(SnapshotAction::Release { id }) => commands::release(&config, id)?,
+                Some(SnapshotAction::Reject { id, note }) => commands::reject(&config, id, note.as_deref())?,
+            }
+        }
+        Command::History { case_key, source, listing } => {
+            commands::history(&load(flag)?, &case_key, &source, listing.format)?
+        }
+        Command::Curve { source, by, as_of, stratify, listing } => {
+            let args = CurveArgs {
+                source: &source,
+                by: &by,
+                as_of: as_of.as_deref(),
+                stratify: stratify.as_deref(),
+                format: listing.format,
+            };
+            commands::curve(&load(flag)?, &args)?
+        }
+        Command::Query { sql, listing } => commands::query(&load(flag)?, &sql, listing.format)?,
+        Command::Demo { dir, seed, days } => {
+            let options = DemoOptions { dir, seed, days };
+            demo::run(&options, &mut |line| println!("{line}"))?.report()
+        }
+    };
+    print!("{text}");
+    Ok(0)
+}

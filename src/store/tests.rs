@@ -1,0 +1,1 @@
+//! Store tests (see tests/it for the end-to-end ones).
