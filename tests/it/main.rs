@@ -5,4 +5,5 @@ mod bad_corpus;
 mod cli;
 mod crash;
 mod history_props;
+mod tidy;
 mod versioning;
