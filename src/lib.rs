@@ -8,16 +8,23 @@
 //!
 //! - [`model`]: canonical fields, the typed case record, snapshot statuses.
 //! - [`config`]: the TOML config, validated once into typed settings.
+//! - [`source`]: finding new extracts in folders and fetching them from URLs (no parsing).
 //! - [`extract`]: bytes of one extract -> canonical rows and row problems (pure, streaming).
 //! - [`store`]: SQLite: migrations, the one writer, as-of reads, the raw archive.
 //! - [`table`]: listings rendered as text, CSV or JSON.
+//! - [`metrics`]: the daemon's counters and their Prometheus text.
+//! - [`serve`]: HTTP edges (ops endpoints; the demo's extract server); read-only.
 //! - [`demo`]: an invented scenario with known truth, for the demo and tests.
-//! - [`app`]: command bodies and the ingest pipeline (the only place that uses `anyhow`).
+//! - [`app`]: command bodies, the ingest pipeline, the writer thread and the daemon (the only
+//!   place that uses `anyhow`).
 
 pub mod app;
 pub mod config;
 pub mod demo;
 pub mod extract;
+pub mod metrics;
 pub mod model;
+pub mod serve;
+pub mod source;
 pub mod store;
 pub mod table;

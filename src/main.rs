@@ -88,6 +88,21 @@ enum Command {
         #[command(flatten)]
         listing: Listing,
     },
+    /// The daemon: poll every source on its schedule and ingest what is new.
+    Run {
+        /// Do not serve /healthz and /metrics.
+        #[arg(long)]
+        no_ops: bool,
+    },
+    /// One line per source: last poll, last success, failures, last error; and the daemon.
+    Status {
+        #[command(flatten)]
+        listing: Listing,
+    },
+    /// Write a consistent copy of the store to DEST (safe while the daemon runs).
+    Backup { dest: PathBuf },
+    /// Replace the store with a backup (refused while the daemon runs).
+    Restore { backup: PathBuf },
     /// Generate the invented scenario and run the whole pipeline on it.
     Demo {
         /// Folder for the scenario's files, config and store.
@@ -115,7 +130,9 @@ enum SnapshotAction {
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
-    init_tracing();
+    if !matches!(cli.command, Command::Run { .. }) {
+        init_tracing(false, false);
+    }
     match run(cli) {
         Ok(code) => ExitCode::from(code),
         Err(err) => {
@@ -136,10 +153,14 @@ fn exit_code(err: &anyhow::Error) -> u8 {
     if usage { 2 } else { 1 }
 }
 
-fn init_tracing() {
+/// Logs to stderr, as text or JSON (`log.format`). The daemon logs at info, one-shot
+/// commands at warn plus progress lines; `TIDEMARK_LOG` (an env-filter) overrides both.
+fn init_tracing(daemon: bool, json: bool) {
+    let default = if daemon { "info" } else { "warn,tidemark::progress=info" };
     let filter = tracing_subscriber::EnvFilter::try_from_env("TIDEMARK_LOG")
-        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("warn"));
-    let _ = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr).try_init();
+        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(default));
+    let builder = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
+    let _ = if json { builder.json().try_init() } else { builder.try_init() };
 }
 
 fn load(flag: Option<&Path>) -> Result<Config> {
@@ -183,6 +204,15 @@ fn run(cli: Cli) -> Result<u8> {
             commands::curve(&load(flag)?, &args)?
         }
         Command::Query { sql, listing } => commands::query(&load(flag)?, &sql, listing.format)?,
+        Command::Run { no_ops } => {
+            let config = load(flag)?;
+            init_tracing(true, config.log_json);
+            commands::run_daemon(config, !no_ops)?;
+            return Ok(0);
+        }
+        Command::Status { listing } => commands::status(&load(flag)?, listing.format)?,
+        Command::Backup { dest } => commands::backup(&load(flag)?, &dest)?,
+        Command::Restore { backup } => commands::restore(&load(flag)?, &backup)?,
         Command::Demo { dir, seed, days } => {
             let options = DemoOptions { dir, seed, days };
             demo::run(&options, &mut |line| println!("{line}"))?.report()

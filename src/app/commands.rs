@@ -65,7 +65,8 @@ pub fn init(dir: &Path) -> Result<String> {
     std::fs::write(&path, config::EXAMPLE).with_context(|| format!("writing {}", path.display()))?;
     let config = Config::load(&path)?;
     for source in &config.sources {
-        if let config::Location::Folder { path, .. } = &source.location {
+        if let config::Location::Folder(folder) = &source.location {
+            let path = &folder.path;
             std::fs::create_dir_all(path).with_context(|| format!("creating {}", path.display()))?;
         }
     }
@@ -291,4 +292,106 @@ pub fn config_path(flag: Option<&Path>) -> Result<PathBuf> {
 /// The exit code an ingest outcome deserves: a failed extract is an error.
 pub fn ingest_exit_code(outcome: &IngestOutcome) -> i32 {
     if outcome.status == SnapshotStatus::Failed { 1 } else { 0 }
+}
+
+/// `tidemark run`: the daemon, until SIGTERM or SIGINT.
+pub fn run_daemon(config: Config, serve_ops: bool) -> Result<()> {
+    let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
+    runtime.block_on(async move {
+        let shutdown = tokio_util::sync::CancellationToken::new();
+        let ops = if serve_ops {
+            let listener = tokio::net::TcpListener::bind(config.bind)
+                .await
+                .with_context(|| format!("binding the ops endpoint to {}", config.bind))?;
+            tracing::info!(address = %config.bind, "ops endpoint: /healthz, /metrics");
+            Some(listener)
+        } else {
+            None
+        };
+        tokio::spawn(stop_on_signal(shutdown.clone()));
+        super::daemon::run(std::sync::Arc::new(config), shutdown, Default::default(), ops).await
+    })
+}
+
+/// Cancels `shutdown` on SIGTERM or SIGINT.
+async fn stop_on_signal(shutdown: tokio_util::sync::CancellationToken) {
+    use tokio::signal::unix::{SignalKind, signal};
+    let (Ok(mut term), Ok(mut int)) = (signal(SignalKind::terminate()), signal(SignalKind::interrupt()))
+    else {
+        tracing::error!("cannot install signal handlers");
+        return;
+    };
+    let name = tokio::select! {
+        _ = term.recv() => "SIGTERM",
+        _ = int.recv() => "SIGINT",
+    };
+    tracing::info!(signal = name, "stopping: no new polls; an ingest in progress rolls back");
+    shutdown.cancel();
+}
+
+/// `tidemark status`
+pub fn status(config: &Config, format: OutputFormat) -> Result<String> {
+    let reader = Reader::open(&config.store.path)?;
+    let state = reader.daemon_state()?;
+    let daemon = match crate::store::lock::holder(&config.store.path) {
+        Some(pid) => format!(
+            "daemon: running (pid {pid}) since {}, heartbeat {}",
+            state.get("started_at").map(String::as_str).unwrap_or("?"),
+            state.get("heartbeat").map(String::as_str).unwrap_or("?")
+        ),
+        None => format!(
+            "daemon: not running (last stopped {})",
+            state.get("stopped_at").map(String::as_str).unwrap_or("never")
+        ),
+    };
+    let mut table = Table::new(&[
+        "source",
+        "kind",
+        "last_poll",
+        "last_success",
+        "failures",
+        "last_snapshot",
+        "last_as_of",
+        "last_error",
+    ]);
+    for s in reader.source_statuses()? {
+        table.push(vec![
+            s.name.into(),
+            s.kind.into(),
+            s.last_poll.into(),
+            s.last_success.into(),
+            s.consecutive_failures.into(),
+            s.last_snapshot_id.into(),
+            s.last_applied_as_of.into(),
+            s.last_error.into(),
+        ]);
+    }
+    Ok(match format {
+        OutputFormat::Table => format!("{daemon}\n{}", table.to_text()),
+        other => table.render(other),
+    })
+}
+
+/// `tidemark backup DEST`
+pub fn backup(config: &Config, dest: &Path) -> Result<String> {
+    let summary = crate::store::backup::backup(&config.store.path, dest)?;
+    Ok(format!(
+        "wrote {} ({} bytes, schema version {}); back up {} as well to keep every extract's bytes\n",
+        dest.display(),
+        summary.bytes,
+        summary.schema_version,
+        config.store.archive.display()
+    ))
+}
+
+/// `tidemark restore BACKUP`
+pub fn restore(config: &Config, from: &Path) -> Result<String> {
+    let summary = crate::store::backup::restore(from, &config.store.path)?;
+    Ok(format!(
+        "restored {} from {} ({} bytes, schema version {}); migrations run at the next open\n",
+        config.store.path.display(),
+        from.display(),
+        summary.bytes,
+        summary.schema_version
+    ))
 }

@@ -1,19 +1,31 @@
-//! `tidemark demo`: generates the invented scenario, ingests every day's extracts in order
-//! through the same path as `tidemark ingest`, and summarises what the store now knows
-//! against the scenario's truth.
+//! `tidemark demo`: generates the invented scenario and plays it through the daemon: each
+//! day the county extract is dropped into a watched folder and the lab extract is offered by
+//! an HTTP server on loopback; the daemon polls both and ingests through the same path as
+//! `tidemark ingest`. The summary compares what the store knows with the scenario's truth.
 
-use std::collections::BTreeMap;
+use std::collections::{BTreeMap, HashMap};
 use std::fmt::Write as _;
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
 
 use anyhow::{Context, Result};
 use chrono::NaiveDate;
+use tokio::net::TcpListener;
+use tokio::sync::{Notify, mpsc};
+use tokio_util::sync::CancellationToken;
 
-use super::ingest::{end_of_day, ingest_file};
+use super::daemon::{self, Hooks, PollEvent};
+use super::ingest::end_of_day;
 use crate::config::Config;
 use crate::demo::{self, COUNTY_SOURCE, LAB_SOURCE, Scenario};
 use crate::model::Field;
-use crate::store::{Reader, Store};
+use crate::serve::feed::{self, Feed};
+use crate::serve::{self};
+use crate::store::Reader;
+
+/// Longest the demo waits for one day's polls before giving up.
+const POLL_WAIT: Duration = Duration::from_secs(60);
 
 /// What `tidemark demo` was asked to do.
 #[derive(Debug, Clone)]
@@ -45,7 +57,9 @@ pub struct SourceSummary {
     pub rejects: Vec<(String, i64)>,
 }
 
-/// Runs the demo; `progress` receives a line now and then.
+/// Runs the demo through the daemon: the county feed is a folder the demo drops each day's
+/// file into, the lab feed is served over HTTP on loopback. `progress` receives a line now
+/// and then.
 pub fn run(options: &DemoOptions, progress: &mut dyn FnMut(&str)) -> Result<DemoReport> {
     progress(&format!(
         "generating the scenario (seed {}, {} days) in {}",
@@ -54,21 +68,98 @@ pub fn run(options: &DemoOptions, progress: &mut dyn FnMut(&str)) -> Result<Demo
         options.dir.display()
     ));
     let scenario = Scenario::generate(options.seed, options.days);
-    let files = demo::write(&options.dir, &scenario).context("writing the demo scenario")?;
-    let config = Config::load(&files.config)?;
-    let mut store = Store::open(&config.store.path)?;
-    for (day, county, lab) in &files.extracts {
-        let as_of = end_of_day(scenario.date(*day));
-        for (name, path) in [(COUNTY_SOURCE, county), (LAB_SOURCE, lab)] {
-            let source = config.source(name).context("demo source missing from its config")?;
-            let outcome = ingest_file(&mut store, &config, source, path, Some(as_of))?;
-            if (*day + 1) % 20 == 0 || *day + 1 == options.days as i32 {
-                progress(&format!("  {}: {}", scenario.date(*day), outcome.summary(name)));
+    let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
+    let (config, started) = runtime.block_on(drive(options, &scenario, progress))?;
+    progress(&format!("all days ingested in {:.1} s", started.elapsed().as_secs_f64()));
+    summarise(&config, &scenario, options.dir.clone())
+}
+
+async fn drive(
+    options: &DemoOptions,
+    scenario: &Scenario,
+    progress: &mut dyn FnMut(&str),
+) -> Result<(Config, Instant)> {
+    let listener = TcpListener::bind("127.0.0.1:0").await.context("binding the demo's lab server")?;
+    let lab_url = format!("http://{}/{LAB_SOURCE}.ndjson", listener.local_addr()?);
+    let files = demo::write(&options.dir, scenario, &lab_url).context("writing the demo scenario")?;
+    let config = Arc::new(Config::load(&files.config)?);
+    let shutdown = CancellationToken::new();
+    let lab = Arc::new(Feed::default());
+    tokio::spawn(serve::serve(listener, feed::router(lab.clone()), shutdown.clone()));
+    progress(&format!(
+        "lab feed served at {lab_url}; county feed dropped into {}",
+        files.county_inbox.display()
+    ));
+    let (events_tx, mut events) = mpsc::unbounded_channel();
+    let nudges: HashMap<String, Arc<Notify>> =
+        [COUNTY_SOURCE, LAB_SOURCE].iter().map(|s| (s.to_string(), Arc::new(Notify::new()))).collect();
+    let mut hooks = Some(Hooks { events: Some(events_tx), nudges: nudges.clone() });
+    let started = Instant::now();
+    let mut daemon = None;
+    for (idx, (day, county, lab_file)) in files.extracts.iter().enumerate() {
+        drop_file(county, &files.county_inbox)?;
+        lab.set(std::fs::read(lab_file)?, end_of_day(scenario.date(*day)));
+        let mark = Instant::now();
+        // The first day starts the daemon, whose start-up polls take it; later days nudge.
+        match hooks.take() {
+            Some(hooks) => {
+                daemon = Some(tokio::spawn(daemon::run(config.clone(), shutdown.clone(), hooks, None)));
             }
+            None => nudges.values().for_each(|n| n.notify_one()),
+        }
+        let outcomes = match wait_for_polls(&mut events, mark).await {
+            Ok(outcomes) => outcomes,
+            Err(err) => match daemon.take() {
+                Some(handle) if handle.is_finished() => {
+                    handle.await??;
+                    return Err(err);
+                }
+                _ => return Err(err),
+            },
+        };
+        if (idx + 1) % 20 == 0 || idx + 1 == files.extracts.len() {
+            progress(&format!("  {}: {}", scenario.date(*day), outcomes.join("; ")));
         }
     }
-    drop(store);
-    summarise(&config, &scenario, files.dir)
+    shutdown.cancel();
+    if let Some(daemon) = daemon {
+        daemon.await??;
+    }
+    Ok((Config::load(&files.config)?, started))
+}
+
+/// Places a file in the inbox the way a careful exporter does: copy under a hidden name,
+/// then rename, so the daemon never sees a partial file.
+fn drop_file(from: &Path, inbox: &Path) -> Result<()> {
+    let name = from.file_name().context("extract without a file name")?;
+    let hidden = inbox.join(format!(".{}.part", name.to_string_lossy()));
+    std::fs::copy(from, &hidden)?;
+    std::fs::rename(&hidden, inbox.join(name))?;
+    Ok(())
+}
+
+/// Waits until both feeds have been polled since `mark`; returns what each poll did.
+async fn wait_for_polls(
+    events: &mut mpsc::UnboundedReceiver<PollEvent>,
+    mark: Instant,
+) -> Result<Vec<String>> {
+    let mut done: BTreeMap<String, String> = BTreeMap::new();
+    while done.len() < 2 {
+        let event = tokio::time::timeout(POLL_WAIT, events.recv())
+            .await
+            .context("the daemon did not poll in time")?
+            .context("the daemon stopped")?;
+        if event.started < mark {
+            continue;
+        }
+        let what = match (&event.error, event.snapshots.last()) {
+            (Some(err), _) => format!("poll failed ({err})"),
+            (None, Some((id, status))) => format!("snapshot {id} {}", status.name()),
+            (None, None) => "nothing new".into(),
+        };
+        done.insert(event.source.clone(), format!("{} {what}", event.source));
+    }
+    Ok(done.into_values().collect())
 }
 
 fn summarise(config: &Config, scenario: &Scenario, dir: PathBuf) -> Result<DemoReport> {

@@ -15,6 +15,9 @@ use crate::extract::{self, ParseError, ParseSummary};
 use crate::model::{ExtractKind, ExtractMeta, RowCounts, SnapshotStatus};
 use crate::store::{Ingest, LastApplied, Plan, Store, StoreError, archive};
 
+/// Rows between checks for a shutdown request: often enough to stop within a second.
+const CANCEL_CHECK_EVERY: u64 = 4096;
+
 /// Rows between progress log lines on large extracts.
 const PROGRESS_EVERY: u64 = 250_000;
 
@@ -69,15 +72,17 @@ pub fn ingest_file(
         bytes: archived.bytes,
         kind: source.extract,
     };
-    ingest_archived(store, config, source, &meta)
+    ingest_archived(store, config, source, &meta, &|| false)
 }
 
-/// Ingests bytes already in the archive (named by `meta.sha256`).
+/// Ingests bytes already in the archive (named by `meta.sha256`). `cancelled` is asked now
+/// and then while rows stream in; when it says yes the transaction rolls back.
 pub fn ingest_archived(
     store: &mut Store,
     config: &Config,
     source: &SourceConfig,
     meta: &ExtractMeta,
+    cancelled: &dyn Fn() -> bool,
 ) -> Result<IngestOutcome> {
     let source_id = store.source_id(&source.name, source.kind_name(), &source.config_hash)?;
     if let Some(earlier) = store.duplicate_of(source_id, &meta.sha256)? {
@@ -97,7 +102,7 @@ pub fn ingest_archived(
     let reader =
         archive::open(&config.store.archive, &meta.sha256).context("opening the archived extract")?;
     let mut ingest = store.begin(source_id, meta, &source.mapping.key_column)?;
-    let parsed = stage(&mut ingest, reader, source, meta.as_of.date_naive());
+    let parsed = stage(&mut ingest, reader, source, meta.as_of.date_naive(), cancelled);
     let summary = match parsed {
         Ok(summary) => summary,
         Err(ParseError::Extract(err)) => {
@@ -119,7 +124,7 @@ pub fn release(store: &mut Store, config: &Config, snapshot_id: i64) -> Result<I
     let reader = archive::open(&config.store.archive, &sha256)
         .with_context(|| format!("opening the archived bytes of snapshot {snapshot_id}"))?;
     let mut ingest = store.begin_release(snapshot_id, &source.mapping.key_column)?;
-    let summary = match stage(&mut ingest, reader, source, as_of.date_naive()) {
+    let summary = match stage(&mut ingest, reader, source, as_of.date_naive(), &|| false) {
         Ok(summary) => summary,
         Err(ParseError::Extract(err)) => bail!("snapshot {snapshot_id} no longer parses: {err}"),
         Err(ParseError::Sink(err)) => return Err(err.into()),
@@ -140,12 +145,16 @@ fn stage(
     reader: impl std::io::Read,
     source: &SourceConfig,
     latest: NaiveDate,
+    cancelled: &dyn Fn() -> bool,
 ) -> Result<ParseSummary, ParseError<StoreError>> {
     let mut rows = 0u64;
     extract::parse(reader, source.format, &source.mapping, latest, |row| {
         rows += 1;
+        if rows % CANCEL_CHECK_EVERY == 0 && cancelled() {
+            return Err(StoreError::Cancelled);
+        }
         if rows % PROGRESS_EVERY == 0 {
-            tracing::info!(source = %source.name, rows, "staging");
+            tracing::info!(target: "tidemark::progress", source = %source.name, rows, "staging rows");
         }
         ingest.add(row)
     })

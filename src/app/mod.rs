@@ -1,7 +1,9 @@
-//! Application wiring: the command bodies and the ingest pipeline that joins `extract`,
-//! `store` and (later) the daemon's tasks. The only library module that uses `anyhow`;
-//! nothing else depends on it.
+//! Application wiring: the command bodies, the ingest pipeline that joins `extract` and
+//! `store`, the writer thread and the daemon's tasks. The only library module that uses
+//! `anyhow`; nothing else depends on it.
 
 pub mod commands;
+pub mod daemon;
 pub mod demo;
 pub mod ingest;
+pub mod writer;

@@ -13,7 +13,7 @@ use std::path::{Path, PathBuf};
 use std::time::Duration;
 
 use self::raw::RawConfig;
-pub use self::source::{AsOfRule, Location, SourceConfig};
+pub use self::source::{AsOfRule, FolderSettings, Location, SourceConfig, UrlSettings, defaults};
 
 /// The example config that `tidemark init` writes, with comments.
 pub const EXAMPLE: &str = include_str!("../../config/example.toml");
@@ -240,20 +240,21 @@ fn build_webhook(raw: raw::RawWebhook, problems: &mut Vec<String>) -> Option<Web
     Some(WebhookConfig { url: raw.url, secret_env: raw.secret_env })
 }
 
-/// Parses `90s`, `15m`, `26h`, `2d` (a number and one unit).
+/// Parses `250ms`, `90s`, `15m`, `26h`, `2d` (a whole number and one unit).
 pub fn parse_duration(text: &str) -> Option<Duration> {
     let text = text.trim();
     let split = text.find(|c: char| !c.is_ascii_digit())?;
     let (number, unit) = text.split_at(split);
     let number: u64 = number.parse().ok()?;
-    let seconds = match unit.trim() {
-        "s" => 1,
-        "m" => 60,
-        "h" => 3600,
-        "d" => 86_400,
+    let millis = match unit.trim() {
+        "ms" => 1,
+        "s" => 1000,
+        "m" => 60_000,
+        "h" => 3_600_000,
+        "d" => 86_400_000,
         _ => return None,
     };
-    Some(Duration::from_secs(number.checked_mul(seconds)?))
+    Some(Duration::from_millis(number.checked_mul(millis)?))
 }
 
 #[cfg(test)]

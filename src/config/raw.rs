@@ -52,6 +52,15 @@ pub struct RawSource {
     pub hold_fraction: Option<f64>,
     pub auth_header: Option<String>,
     pub auth_env: Option<String>,
+    pub settle: Option<String>,
+    pub ready_marker: Option<String>,
+    pub connect_timeout: Option<String>,
+    pub timeout: Option<String>,
+    pub max_bytes: Option<u64>,
+    pub max_redirects: Option<usize>,
+    pub retries: Option<u32>,
+    pub retry_base: Option<String>,
+    pub retry_cap: Option<String>,
     #[serde(default)]
     pub fields: BTreeMap<String, String>,
     #[serde(default)]

@@ -25,8 +25,52 @@ pub const DEFAULT_HOLD_FRACTION: f64 = 0.2;
 
 #[derive(Debug, Clone)]
 pub enum Location {
-    Folder { path: PathBuf, pattern: String },
-    Url { url: String, auth_header: String, auth_env: Option<String> },
+    Folder(FolderSettings),
+    Url(UrlSettings),
+}
+
+/// How a folder source finds complete new files.
+#[derive(Debug, Clone)]
+pub struct FolderSettings {
+    pub path: PathBuf,
+    pub pattern: String,
+    /// A file is taken only if its size and mtime are the same on two looks this far apart.
+    pub settle: Duration,
+    /// If set, a file is taken only once a file of the same name plus this suffix exists.
+    pub ready_marker: Option<String>,
+}
+
+/// How a URL source is fetched.
+#[derive(Debug, Clone)]
+pub struct UrlSettings {
+    pub url: String,
+    pub auth_header: String,
+    /// Environment variable holding the auth header's value.
+    pub auth_env: Option<String>,
+    pub connect_timeout: Duration,
+    pub timeout: Duration,
+    pub max_bytes: u64,
+    pub max_redirects: usize,
+    /// Attempts after the first one failed with a retryable error.
+    pub retries: u32,
+    pub retry_base: Duration,
+    pub retry_cap: Duration,
+}
+
+/// Defaults for polling (named so the README and tests can cite them).
+pub mod defaults {
+    use std::time::Duration;
+    /// Long enough for a copy over a network share to show progress between looks.
+    pub const SETTLE: Duration = Duration::from_secs(2);
+    pub const CONNECT_TIMEOUT: Duration = Duration::from_secs(10);
+    /// A large extract over a slow link; beyond this the server is treated as stuck.
+    pub const TIMEOUT: Duration = Duration::from_secs(300);
+    /// Far above any county's line list; a bigger body is a broken or hostile server.
+    pub const MAX_BYTES: u64 = 1 << 30;
+    pub const MAX_REDIRECTS: usize = 5;
+    pub const RETRIES: u32 = 4;
+    pub const RETRY_BASE: Duration = Duration::from_secs(2);
+    pub const RETRY_CAP: Duration = Duration::from_secs(60);
 }
 
 /// Where an extract's as-of time comes from when `--as-of` is not given.
@@ -57,8 +101,8 @@ pub struct SourceConfig {
 impl SourceConfig {
     pub fn kind_name(&self) -> &'static str {
         match self.location {
-            Location::Folder { .. } => "folder",
-            Location::Url { .. } => "url",
+            Location::Folder(_) => "folder",
+            Location::Url(_) => "url",
         }
     }
 
@@ -66,15 +110,26 @@ impl SourceConfig {
         let mut out = String::new();
         let _ = writeln!(out, "source {}:", self.name);
         match &self.location {
-            Location::Folder { path, pattern } => {
-                let _ = writeln!(out, "  folder: {} pattern={pattern}", path.display());
-            }
-            Location::Url { url, auth_header, auth_env } => {
+            Location::Folder(f) => {
                 let _ = writeln!(
                     out,
-                    "  url: {} auth={auth_header}:{}",
-                    redact_url(url),
-                    env_state(auth_env.as_deref())
+                    "  folder: {} pattern={} settle={}ms ready_marker={}",
+                    f.path.display(),
+                    f.pattern,
+                    f.settle.as_millis(),
+                    f.ready_marker.as_deref().unwrap_or("-")
+                );
+            }
+            Location::Url(u) => {
+                let _ = writeln!(
+                    out,
+                    "  url: {} auth={}:{} timeout={}s max_bytes={} retries={}",
+                    redact_url(&u.url),
+                    u.auth_header,
+                    env_state(u.auth_env.as_deref()),
+                    u.timeout.as_secs(),
+                    u.max_bytes,
+                    u.retries
                 );
             }
         }
@@ -153,16 +208,33 @@ fn check_name(name: &str, push: &mut impl FnMut(&str, String)) {
 }
 
 fn build_location(raw: &RawSource, base: &Path, push: &mut impl FnMut(&str, String)) -> Option<Location> {
+    let mut duration = |key: &str, value: &Option<String>, default: Duration| match value {
+        None => default,
+        Some(text) => parse_duration(text).unwrap_or_else(|| {
+            push(key, format!("\"{text}\" is not a duration such as 250ms, 90s, 15m, 26h, 2d"));
+            default
+        }),
+    };
     match raw.kind.as_str() {
         "folder" => {
+            let settle = duration("settle", &raw.settle, defaults::SETTLE);
             let Some(path) = &raw.path else {
                 push("path", "a folder source needs a path".into());
                 return None;
             };
-            let pattern = raw.pattern.clone().unwrap_or_else(|| "*".into());
-            Some(Location::Folder { path: base.join(path), pattern })
+            Some(Location::Folder(FolderSettings {
+                path: base.join(path),
+                pattern: raw.pattern.clone().unwrap_or_else(|| "*".into()),
+                settle,
+                ready_marker: raw.ready_marker.clone().filter(|m| !m.is_empty()),
+            }))
         }
         "url" => {
+            let connect_timeout =
+                duration("connect_timeout", &raw.connect_timeout, defaults::CONNECT_TIMEOUT);
+            let timeout = duration("timeout", &raw.timeout, defaults::TIMEOUT);
+            let retry_base = duration("retry_base", &raw.retry_base, defaults::RETRY_BASE);
+            let retry_cap = duration("retry_cap", &raw.retry_cap, defaults::RETRY_CAP);
             let Some(url) = &raw.url else {
                 push("url", "a url source needs a url".into());
                 return None;
@@ -170,11 +242,18 @@ fn build_location(raw: &RawSource, base: &Path, push: &mut impl FnMut(&str, Stri
             if !(url.starts_with("http://") || url.starts_with("https://")) {
                 push("url", "must start with http:// or https://".into());
             }
-            Some(Location::Url {
+            Some(Location::Url(UrlSettings {
                 url: url.clone(),
                 auth_header: raw.auth_header.clone().unwrap_or_else(|| "Authorization".into()),
                 auth_env: raw.auth_env.clone(),
-            })
+                connect_timeout,
+                timeout,
+                max_bytes: raw.max_bytes.unwrap_or(defaults::MAX_BYTES),
+                max_redirects: raw.max_redirects.unwrap_or(defaults::MAX_REDIRECTS),
+                retries: raw.retries.unwrap_or(defaults::RETRIES),
+                retry_base,
+                retry_cap,
+            }))
         }
         other => {
             push("kind", format!("\"{other}\" is not one of folder, url"));

@@ -83,6 +83,7 @@ fn durations() {
         ("26h", Some(93_600)),
         ("2d", Some(172_800)),
         ("h", None),
+        ("250ms", Some(0)),
         ("5y", None),
     ];
     for (text, want) in cases {

@@ -27,18 +27,23 @@ pub const LAB_SOURCE: &str = "lab-results";
 pub struct DemoFiles {
     pub dir: PathBuf,
     pub config: PathBuf,
-    /// (day, county extract, lab extract), in day order.
+    /// The folder the county source polls (empty at first; the demo drops files into it).
+    pub county_inbox: PathBuf,
+    /// (day, county extract, lab extract) waiting in `staging/`, in day order.
     pub extracts: Vec<(i32, PathBuf, PathBuf)>,
 }
 
-/// Writes the scenario's extracts, `truth.csv` and `tidemark.toml` into `dir`, clearing an
-/// earlier demo there. Refuses a non-empty folder that is not a demo folder.
-pub fn write(dir: &Path, scenario: &Scenario) -> io::Result<DemoFiles> {
+/// Writes the scenario's extracts into `staging/`, `truth.csv`, and a `tidemark.toml` whose
+/// lab source fetches `lab_url`, into `dir`, clearing an earlier demo there. Refuses a
+/// non-empty folder that is not a demo folder.
+pub fn write(dir: &Path, scenario: &Scenario, lab_url: &str) -> io::Result<DemoFiles> {
     prepare_dir(dir)?;
-    let county_dir = dir.join("feeds").join(COUNTY_SOURCE);
-    let lab_dir = dir.join("feeds").join(LAB_SOURCE);
+    let county_dir = dir.join("staging").join(COUNTY_SOURCE);
+    let lab_dir = dir.join("staging").join(LAB_SOURCE);
+    let county_inbox = dir.join("feeds").join(COUNTY_SOURCE);
     fs::create_dir_all(&county_dir)?;
     fs::create_dir_all(&lab_dir)?;
+    fs::create_dir_all(&county_inbox)?;
     let mut extracts = Vec::new();
     for day in 0..scenario.days as i32 {
         let (county_text, lab_text) = (feeds::county_csv(scenario, day), feeds::lab_ndjson(scenario, day));
@@ -56,13 +61,13 @@ pub fn write(dir: &Path, scenario: &Scenario) -> io::Result<DemoFiles> {
     }
     fs::write(dir.join("truth.csv"), truth_csv(scenario))?;
     let config = dir.join("tidemark.toml");
-    fs::write(&config, CONFIG)?;
-    Ok(DemoFiles { dir: dir.to_path_buf(), config, extracts })
+    fs::write(&config, config_text(lab_url))?;
+    Ok(DemoFiles { dir: dir.to_path_buf(), config, county_inbox, extracts })
 }
 
 fn prepare_dir(dir: &Path) -> io::Result<()> {
     if dir.join(MARKER).exists() {
-        for sub in ["feeds", "data"] {
+        for sub in ["feeds", "staging", "data"] {
             if dir.join(sub).exists() {
                 fs::remove_dir_all(dir.join(sub))?;
             }
@@ -99,8 +104,14 @@ pub fn truth_csv(scenario: &Scenario) -> String {
     out
 }
 
-/// The demo's config: two folder feeds with different column names and codes.
-pub const CONFIG: &str = r#"# Written by `tidemark demo`: the invented scenario's two feeds.
+/// The demo's config for a lab feed served at `lab_url`.
+pub fn config_text(lab_url: &str) -> String {
+    CONFIG.replace("LAB_URL", lab_url)
+}
+
+/// The demo's config: a folder feed and a URL feed with different column names and codes.
+/// Polls run every second; the demo also asks for a poll as soon as it drops a new day.
+const CONFIG: &str = r#"# Written by `tidemark demo`: the invented scenario's two feeds.
 [store]
 path = "data/tidemark.db"
 archive = "data/archive"
@@ -110,7 +121,8 @@ name = "county-reports"
 kind = "folder"
 path = "feeds/county-reports"
 pattern = "*.csv"
-schedule = "*/2 * * * * *"
+schedule = "* * * * * *"
+settle = "50ms"
 extract = "full"
 as_of = "name:%Y-%m-%d"
 key = "case_id"
@@ -144,13 +156,15 @@ N = "no"
 
 [[source]]
 name = "lab-results"
-kind = "folder"
-path = "feeds/lab-results"
-pattern = "*.ndjson"
+kind = "url"
+url = "LAB_URL"
 format = "ndjson"
-schedule = "*/2 * * * * *"
+schedule = "* * * * * *"
+timeout = "30s"
+retries = 2
+retry_base = "100ms"
 extract = "full"
-as_of = "name:%Y-%m-%d"
+as_of = "header:Last-Modified"
 key = "specimen_id"
 expect_every = "26h"
 
@@ -182,7 +196,8 @@ mod tests {
 
     #[test]
     fn demo_config_is_valid() {
-        let config = crate::config::Config::parse(CONFIG, Path::new("/tmp/demo/tidemark.toml")).unwrap();
+        let text = config_text("http://127.0.0.1:9/lab-results.ndjson");
+        let config = crate::config::Config::parse(&text, Path::new("/tmp/demo/tidemark.toml")).unwrap();
         assert_eq!(config.sources.len(), 2);
     }
 }

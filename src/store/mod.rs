@@ -4,7 +4,10 @@
 //! connections; `archive` keeps every extract's bytes, compressed and content-addressed.
 
 pub mod archive;
+pub mod backup;
+pub mod lock;
 mod read;
+mod sources;
 mod writer;
 
 use std::fs;
@@ -15,10 +18,14 @@ use std::time::Duration;
 use rusqlite::{Connection, OpenFlags};
 
 pub use self::read::{CurveRow, Reader, SnapshotRow, VersionRow};
+pub use self::sources::{FileRecord, PollRecord, SourceStatus};
 pub use self::writer::{Ingest, LastApplied, Plan, Store};
 
 /// Migrations, applied in order; the number is the schema version after applying it.
-const MIGRATIONS: &[(i64, &str)] = &[(1, include_str!("../../migrations/0001_line_list.sql"))];
+const MIGRATIONS: &[(i64, &str)] = &[
+    (1, include_str!("../../migrations/0001_line_list.sql")),
+    (2, include_str!("../../migrations/0002_daemon.sql")),
+];
 
 /// The schema version this build writes and understands.
 pub const SCHEMA_VERSION: i64 = MIGRATIONS[MIGRATIONS.len() - 1].0;
@@ -39,6 +46,10 @@ pub enum StoreError {
     Create { path: PathBuf, source: std::io::Error },
     #[error("{0}")]
     Refused(String),
+    #[error("{0}")]
+    Locked(String),
+    #[error("cancelled; nothing of this extract was applied")]
+    Cancelled,
     #[error("database error: {0}")]
     Sql(#[from] rusqlite::Error),
 }

@@ -20,7 +20,7 @@ pub const AGE_BAND_EDGES: [u32; 7] = [0, 5, 15, 25, 45, 65, 80];
 /// A read-only connection.
 #[derive(Debug)]
 pub struct Reader {
-    conn: Connection,
+    pub(super) conn: Connection,
 }
 
 /// One row of `tidemark snapshots`.

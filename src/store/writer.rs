@@ -9,6 +9,7 @@ use std::path::{Path, PathBuf};
 use chrono::{DateTime, Utc};
 use rusqlite::{Connection, OptionalExtension, Transaction, TransactionBehavior, params};
 
+use super::lock::{self, WriterLock};
 use super::{StoreError, open_writer, parse_time, time_text};
 use crate::extract::{Problem, Row};
 use crate::model::{CaseRecord, ExtractKind, ExtractMeta, Field, RowCounts, SnapshotStatus};
@@ -16,8 +17,10 @@ use crate::model::{CaseRecord, ExtractKind, ExtractMeta, Field, RowCounts, Snaps
 /// The writer connection.
 #[derive(Debug)]
 pub struct Store {
-    conn: Connection,
+    pub(super) conn: Connection,
     path: PathBuf,
+    /// Held while the store is open for writing; released on drop or process death.
+    _lock: WriterLock,
 }
 
 /// The latest applied snapshot of a source, for the truncated-feed guard and ordering.
@@ -58,6 +61,7 @@ const VERSION_COLUMNS: &str = "line, case_key, row_hash, jurisdiction, onset_dat
 impl Store {
     /// Opens (creating and migrating if needed) the store at `path` for writing.
     pub fn open(path: &Path) -> Result<Store, StoreError> {
+        let lock = lock::acquire(path)?;
         let conn = open_writer(path)?;
         conn.execute_batch(
             "CREATE TEMP TABLE IF NOT EXISTS stage (
@@ -67,7 +71,7 @@ impl Store {
                  sex TEXT, hospitalised INTEGER, symptoms TEXT, conditions TEXT, invalid TEXT,
                  extra_json TEXT);",
         )?;
-        Ok(Store { conn, path: path.to_path_buf() })
+        Ok(Store { conn, path: path.to_path_buf(), _lock: lock })
     }
 
     pub fn path(&self) -> &Path {

@@ -1,0 +1,421 @@
+//! `tidemark run`: the unattended daemon. One task per source polls on the source's cron
+//! schedule (once at start, never overlapping itself, never waiting for another source),
+//! hands new extracts to the one writer thread, and records health and metrics; the ops
+//! endpoint serves `/healthz` and `/metrics`. Shutdown is a `CancellationToken`: polls stop,
+//! an ingest in progress rolls back, and `run` returns once every task has ended.
+
+use std::collections::{HashMap, HashSet};
+use std::path::Path;
+use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::time::{Duration, Instant};
+
+use anyhow::{Context, Result};
+use chrono::{DateTime, Utc};
+use tokio::net::TcpListener;
+use tokio::sync::{Notify, mpsc};
+use tokio_util::sync::CancellationToken;
+use tokio_util::task::TaskTracker;
+
+use super::ingest::{IngestOutcome, as_of_for_file, date_in_name, end_of_day, ingest_archived};
+use super::writer::{self, Writer};
+use crate::config::{AsOfRule, Config, FolderSettings, Location, SourceConfig, UrlSettings};
+use crate::metrics::Metrics;
+use crate::model::{ExtractMeta, SnapshotStatus};
+use crate::serve::{self, ops};
+use crate::source::folder::{self, SeenFile};
+use crate::source::http::{self, Fetched, Validators};
+use crate::store::{FileRecord, PollRecord, Reader, Store, archive, time_text};
+
+/// How often the daemon writes its heartbeat for `tidemark status`.
+const HEARTBEAT_EVERY: Duration = Duration::from_secs(30);
+
+/// What one poll of one source did, for the demo and tests.
+#[derive(Debug, Clone)]
+pub struct PollEvent {
+    pub source: String,
+    pub started: Instant,
+    pub snapshots: Vec<(i64, SnapshotStatus)>,
+    pub error: Option<String>,
+}
+
+/// Optional hooks into a running daemon (the demo drives its scenario through them).
+#[derive(Debug, Default)]
+pub struct Hooks {
+    /// Receives an event after every poll.
+    pub events: Option<mpsc::UnboundedSender<PollEvent>>,
+    /// Per source name: notify to poll now instead of waiting for the schedule.
+    pub nudges: HashMap<String, Arc<Notify>>,
+}
+
+/// Everything the source tasks share.
+struct Shared {
+    config: Arc<Config>,
+    writer: Writer,
+    metrics: Arc<Metrics>,
+    shutdown: CancellationToken,
+    /// Set on shutdown so an ingest in progress rolls back instead of finishing.
+    cancel_ingest: Arc<AtomicBool>,
+    events: Option<mpsc::UnboundedSender<PollEvent>>,
+}
+
+/// Runs the daemon until `shutdown` fires. `ops` is the listener for `/healthz` and
+/// `/metrics` (none in tests that do not need it).
+pub async fn run(
+    config: Arc<Config>,
+    shutdown: CancellationToken,
+    hooks: Hooks,
+    ops: Option<TcpListener>,
+) -> Result<()> {
+    let store = Store::open(&config.store.path)?;
+    let (writer, writer_thread) = writer::start(store)?;
+    let source_ids = register_sources(&writer, &config).await?;
+    let metrics = Arc::new(Metrics::default());
+    let running = Arc::new(AtomicBool::new(false));
+    let shared = Arc::new(Shared {
+        config: config.clone(),
+        writer,
+        metrics: metrics.clone(),
+        shutdown: shutdown.clone(),
+        cancel_ingest: Arc::new(AtomicBool::new(false)),
+        events: hooks.events,
+    });
+    let tracker = TaskTracker::new();
+    if let Some(listener) = ops {
+        let state =
+            ops::OpsState { metrics, scheduler_running: running.clone(), store: config.store.path.clone() };
+        let token = shutdown.clone();
+        tracker.spawn(async move {
+            if let Err(err) = serve::serve(listener, ops::router(state), token).await {
+                tracing::error!(error = %err, "ops endpoint stopped");
+            }
+        });
+    }
+    for (source, source_id) in config.sources.iter().zip(source_ids) {
+        let nudge = hooks.nudges.get(&source.name).cloned().unwrap_or_default();
+        tracker.spawn(source_loop(shared.clone(), source.clone(), source_id, nudge));
+    }
+    tracker.spawn(heartbeat(shared.clone()));
+    running.store(true, Ordering::SeqCst);
+    tracing::info!(sources = config.sources.len(), store = %config.store.path.display(), "daemon started");
+    shutdown.cancelled().await;
+    running.store(false, Ordering::SeqCst);
+    shared.cancel_ingest.store(true, Ordering::SeqCst);
+    tracker.close();
+    tracker.wait().await;
+    let stopped = time_text(Utc::now());
+    let _ = shared.writer.run(move |store| store.set_daemon_state(&[("stopped_at", stopped)])).await;
+    drop(shared);
+    writer_thread.join();
+    tracing::info!("daemon stopped");
+    Ok(())
+}
+
+async fn register_sources(writer: &Writer, config: &Arc<Config>) -> Result<Vec<i64>> {
+    let config = config.clone();
+    writer
+        .run(move |store| -> Result<Vec<i64>> {
+            let ids = config
+                .sources
+                .iter()
+                .map(|s| store.source_id(&s.name, s.kind_name(), &s.config_hash))
+                .collect::<Result<Vec<_>, _>>()?;
+            store.set_daemon_state(&[
+                ("pid", std::process::id().to_string()),
+                ("started_at", time_text(Utc::now())),
+                ("heartbeat", time_text(Utc::now())),
+            ])?;
+            Ok(ids)
+        })
+        .await?
+}
+
+async fn heartbeat(shared: Arc<Shared>) {
+    loop {
+        tokio::select! {
+            () = tokio::time::sleep(HEARTBEAT_EVERY) => {}
+            () = shared.shutdown.cancelled() => return,
+        }
+        let now = time_text(Utc::now());
+        if let Err(err) = shared.writer.run(move |store| store.set_daemon_state(&[("heartbeat", now)])).await
+        {
+            tracing::warn!(error = %err, "heartbeat not written");
+        }
+    }
+}
+
+/// A source's memory between polls.
+enum PollState {
+    Folder { known: HashSet<(String, u64, i64)> },
+    Url { client: reqwest::Client, validators: Validators },
+}
+
+async fn source_loop(shared: Arc<Shared>, source: SourceConfig, source_id: i64, nudge: Arc<Notify>) {
+    let mut state = match initial_state(&shared.config, &source, source_id).await {
+        Ok(state) => state,
+        Err(err) => {
+            tracing::error!(source = %source.name, error = %format!("{err:#}"), "source cannot start");
+            return;
+        }
+    };
+    loop {
+        let started = Instant::now();
+        let (snapshots, error) = poll(&shared, &source, source_id, &mut state).await;
+        finish_poll(&shared, &source, source_id, started, snapshots, error).await;
+        let wait = until_next(&source);
+        tokio::select! {
+            () = tokio::time::sleep(wait) => {}
+            () = nudge.notified() => {}
+            () = shared.shutdown.cancelled() => return,
+        }
+    }
+}
+
+async fn initial_state(config: &Config, source: &SourceConfig, source_id: i64) -> Result<PollState> {
+    let path = config.store.path.clone();
+    match &source.location {
+        Location::Folder(_) => {
+            let known =
+                tokio::task::spawn_blocking(move || Reader::open(&path)?.known_files(source_id)).await??;
+            Ok(PollState::Folder { known })
+        }
+        Location::Url(settings) => {
+            let (etag, last_modified) =
+                tokio::task::spawn_blocking(move || Reader::open(&path)?.validators(source_id)).await??;
+            let client = http::client(settings)?;
+            Ok(PollState::Url { client, validators: Validators { etag, last_modified } })
+        }
+    }
+}
+
+fn until_next(source: &SourceConfig) -> Duration {
+    source
+        .schedule
+        .upcoming(Utc)
+        .next()
+        .and_then(|next| (next - Utc::now()).to_std().ok())
+        .unwrap_or(Duration::from_secs(60))
+}
+
+type PollResult = (Vec<IngestOutcome>, Option<String>);
+
+async fn poll(
+    shared: &Arc<Shared>,
+    source: &SourceConfig,
+    source_id: i64,
+    state: &mut PollState,
+) -> PollResult {
+    match (&source.location, state) {
+        (Location::Folder(folder), PollState::Folder { known }) => {
+            poll_folder(shared, source, source_id, folder, known).await
+        }
+        (Location::Url(settings), PollState::Url { client, validators }) => {
+            match poll_url(shared, source, source_id, settings, client, validators).await {
+                Ok(outcomes) => (outcomes, None),
+                Err(err) => (Vec::new(), Some(format!("{err:#}"))),
+            }
+        }
+        _ => (Vec::new(), Some("internal: poll state does not match the source kind".into())),
+    }
+}
+
+async fn finish_poll(
+    shared: &Arc<Shared>,
+    source: &SourceConfig,
+    source_id: i64,
+    started: Instant,
+    outcomes: Vec<IngestOutcome>,
+    error: Option<String>,
+) {
+    let took = started.elapsed();
+    shared.metrics.poll_finished(&source.name, took, error.is_none());
+    shared.metrics.update(&source.name, |c| {
+        for outcome in &outcomes {
+            *c.ingests.entry(outcome.status.name()).or_default() += 1;
+            c.rows += outcome.counts.total;
+            c.rejects += outcome.counts.rejected;
+        }
+    });
+    if let Some(err) = &error {
+        tracing::warn!(source = %source.name, error = %err, "poll failed");
+    }
+    let snapshot_id = outcomes.last().map(|o| o.snapshot_id);
+    let record = PollRecord { at: Utc::now(), error: error.clone(), snapshot_id, validators: None };
+    if let Err(err) = shared.writer.run(move |store| store.record_poll(source_id, &record)).await {
+        tracing::warn!(source = %source.name, error = %err, "poll health not recorded");
+    }
+    if let Some(events) = &shared.events {
+        let snapshots = outcomes.iter().map(|o| (o.snapshot_id, o.status)).collect();
+        let _ = events.send(PollEvent { source: source.name.clone(), started, snapshots, error });
+    }
+}
+
+async fn poll_folder(
+    shared: &Arc<Shared>,
+    source: &SourceConfig,
+    source_id: i64,
+    folder: &FolderSettings,
+    known: &mut HashSet<(String, u64, i64)>,
+) -> PollResult {
+    let first = match look(folder).await {
+        Ok(listing) => listing,
+        Err(err) => return (Vec::new(), Some(err)),
+    };
+    let mut problems = first.problems.clone();
+    let is_new = |f: &SeenFile| !known.contains(&fingerprint(f));
+    if !first.files.iter().any(is_new) {
+        return (Vec::new(), (!problems.is_empty()).then(|| problems.join("; ")));
+    }
+    let candidates = if folder.ready_marker.is_some() {
+        first.files.clone()
+    } else {
+        tokio::select! {
+            () = tokio::time::sleep(folder.settle) => {}
+            () = shared.shutdown.cancelled() => return (Vec::new(), None),
+        }
+        match look(folder).await {
+            Ok(second) => folder::stable(&first, &second),
+            Err(err) => return (Vec::new(), Some(err)),
+        }
+    };
+    let mut pending: Vec<(DateTime<Utc>, SeenFile)> = Vec::new();
+    for file in candidates.into_iter().filter(|f| is_new(f)) {
+        match as_of_for_file(&source.as_of, &file.path) {
+            Ok(as_of) => pending.push((as_of, file)),
+            Err(err) => problems.push(format!("{}: {err:#}", file.name)),
+        }
+    }
+    // Catch-up after downtime: everything pending, oldest as-of first.
+    pending.sort_by(|a, b| (a.0, &a.1.name).cmp(&(b.0, &b.1.name)));
+    let mut outcomes = Vec::new();
+    for (as_of, file) in pending {
+        if shared.shutdown.is_cancelled() {
+            break;
+        }
+        match take_file(shared, source, source_id, &file, as_of).await {
+            Ok(outcome) => {
+                known.insert(fingerprint(&file));
+                outcomes.extend(outcome);
+            }
+            Err(err) => problems.push(format!("{}: {err:#}", file.name)),
+        }
+    }
+    (outcomes, (!problems.is_empty()).then(|| problems.join("; ")))
+}
+
+async fn look(folder: &FolderSettings) -> Result<folder::Listing, String> {
+    let (path, pattern, marker) = (folder.path.clone(), folder.pattern.clone(), folder.ready_marker.clone());
+    tokio::task::spawn_blocking(move || folder::look(&path, &pattern, marker.as_deref()))
+        .await
+        .map_err(|err| err.to_string())?
+        .map_err(|err| format!("cannot list {}: {err}", folder.path.display()))
+}
+
+fn fingerprint(file: &SeenFile) -> (String, u64, i64) {
+    (file.path.display().to_string(), file.size, file.mtime_ns)
+}
+
+/// Archives one file and ingests it unless the same bytes were taken before (a rename or a
+/// copy); either way the file's fingerprint is recorded so it is not looked at again.
+async fn take_file(
+    shared: &Arc<Shared>,
+    source: &SourceConfig,
+    source_id: i64,
+    file: &SeenFile,
+    as_of: DateTime<Utc>,
+) -> Result<Option<IngestOutcome>> {
+    let (archive_dir, path) = (shared.config.store.archive.clone(), file.path.clone());
+    let archived = tokio::task::spawn_blocking(move || {
+        let reader = std::fs::File::open(&path).with_context(|| format!("opening {}", path.display()))?;
+        archive::store(&archive_dir, std::io::BufReader::new(reader)).context("archiving")
+    })
+    .await??;
+    let meta = ExtractMeta {
+        as_of,
+        received_at: Utc::now(),
+        origin: file.path.display().to_string(),
+        sha256: archived.sha256.clone(),
+        bytes: archived.bytes,
+        kind: source.extract,
+    };
+    let mut record = FileRecord {
+        path: file.path.display().to_string(),
+        size: file.size,
+        mtime_ns: file.mtime_ns,
+        sha256: archived.sha256,
+        snapshot_id: None,
+    };
+    let (config, source, cancel) = (shared.config.clone(), source.clone(), shared.cancel_ingest.clone());
+    shared
+        .writer
+        .run(move |store| -> Result<Option<IngestOutcome>> {
+            if store.sha_known(source_id, &record.sha256)? {
+                store.record_file(source_id, &record)?;
+                return Ok(None);
+            }
+            let outcome = ingest_archived(store, &config, &source, &meta, &|| cancel.load(Ordering::SeqCst))?;
+            record.snapshot_id = Some(outcome.snapshot_id);
+            store.record_file(source_id, &record)?;
+            Ok(Some(outcome))
+        })
+        .await?
+}
+
+async fn poll_url(
+    shared: &Arc<Shared>,
+    source: &SourceConfig,
+    source_id: i64,
+    settings: &UrlSettings,
+    client: &reqwest::Client,
+    validators: &mut Validators,
+) -> Result<Vec<IngestOutcome>> {
+    let fetched = http::fetch(client, settings, validators, &shared.shutdown).await?;
+    let Fetched::Body { bytes, validators: new_validators, headers, attempts } = fetched else {
+        return Ok(Vec::new());
+    };
+    let as_of = url_as_of(&source.as_of, &settings.url, &headers);
+    let archive_dir = shared.config.store.archive.clone();
+    let size = bytes.len();
+    let archived = tokio::task::spawn_blocking(move || archive::store(&archive_dir, &bytes[..])).await??;
+    tracing::info!(source = %source.name, bytes = size, attempts, "fetched");
+    let meta = ExtractMeta {
+        as_of,
+        received_at: Utc::now(),
+        origin: crate::config::redact_url(&settings.url),
+        sha256: archived.sha256,
+        bytes: archived.bytes,
+        kind: source.extract,
+    };
+    let (config, job_source, cancel) = (shared.config.clone(), source.clone(), shared.cancel_ingest.clone());
+    let remembered = (new_validators.etag.clone(), new_validators.last_modified.clone());
+    let outcome = shared
+        .writer
+        .run(move |store| -> Result<Option<IngestOutcome>> {
+            let outcome = if store.sha_known(source_id, &meta.sha256)? {
+                None
+            } else {
+                Some(ingest_archived(store, &config, &job_source, &meta, &|| cancel.load(Ordering::SeqCst))?)
+            };
+            let poll =
+                PollRecord { at: Utc::now(), error: None, snapshot_id: None, validators: Some(remembered) };
+            store.record_poll(source_id, &poll)?;
+            Ok(outcome)
+        })
+        .await??;
+    *validators = new_validators;
+    Ok(outcome.into_iter().collect())
+}
+
+/// The as-of time of a fetched extract: a response header, a date in the URL, or now.
+fn url_as_of(rule: &AsOfRule, url: &str, headers: &reqwest::header::HeaderMap) -> DateTime<Utc> {
+    let header = |name: &str| headers.get(name).and_then(|v| v.to_str().ok()).and_then(http::parse_http_date);
+    let found = match rule {
+        AsOfRule::Header(name) => header(name),
+        AsOfRule::NameDate(format) => {
+            let name = Path::new(url.split('?').next().unwrap_or(url)).file_name();
+            name.and_then(|n| date_in_name(&n.to_string_lossy(), format)).map(end_of_day)
+        }
+        AsOfRule::FileMtime => header("last-modified"),
+    };
+    found.unwrap_or_else(Utc::now)
+}
