@@ -296,6 +296,13 @@ pub fn ingest_exit_code(outcome: &IngestOutcome) -> i32 {
 
 /// `tidemark run`: the daemon, until SIGTERM or SIGINT.
 pub fn run_daemon(config: Config, serve_ops: bool) -> Result<()> {
+    // Say so before binding ports if another process already writes to this store.
+    if let Some(pid) = crate::store::lock::holder(&config.store.path) {
+        bail!(
+            "another tidemark process (pid {pid}) is writing to {}; stop it or wait for it to finish",
+            config.store.path.display()
+        );
+    }
     let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
     runtime.block_on(async move {
         let shutdown = tokio_util::sync::CancellationToken::new();
