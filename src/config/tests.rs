@@ -90,3 +90,12 @@ fn durations() {
         assert_eq!(parse_duration(text).map(|d| d.as_secs()), want, "{text}");
     }
 }
+
+#[test]
+fn deployment_example_is_valid() {
+    let text = include_str!("../../deploy/tidemark.toml");
+    let config = Config::parse(text, Path::new("/etc/tidemark/tidemark.toml")).unwrap();
+    assert_eq!(config.sources.len(), 2);
+    assert!(config.log_json);
+    assert_eq!(config.store.path, Path::new("/var/lib/tidemark/tidemark.db"));
+}
