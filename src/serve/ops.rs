@@ -46,3 +46,42 @@ async fn healthz(State(state): State<OpsState>) -> impl IntoResponse {
 async fn metrics(State(state): State<OpsState>) -> impl IntoResponse {
     ([(header::CONTENT_TYPE, "text/plain; version=0.0.4")], state.metrics.render(Instant::now()))
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use axum::body::Body;
+    use axum::http::Request;
+    use tower::ServiceExt;
+
+    async fn status(state: OpsState, path: &str) -> (StatusCode, String) {
+        let response = router(state).oneshot(Request::get(path).body(Body::empty()).unwrap()).await.unwrap();
+        let status = response.status();
+        let bytes = axum::body::to_bytes(response.into_body(), 1 << 20).await.unwrap();
+        (status, String::from_utf8_lossy(&bytes).into_owned())
+    }
+
+    fn state(running: bool, store: PathBuf) -> OpsState {
+        OpsState { metrics: Arc::default(), scheduler_running: Arc::new(AtomicBool::new(running)), store }
+    }
+
+    #[tokio::test]
+    async fn healthz_needs_the_scheduler_and_the_store() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = dir.path().join("t.db");
+        assert_eq!(status(state(true, store.clone()), "/healthz").await.0, StatusCode::OK);
+        assert_eq!(status(state(false, store), "/healthz").await.0, StatusCode::SERVICE_UNAVAILABLE);
+        let unreachable = PathBuf::from("/proc/tidemark-no-such-dir/t.db");
+        assert_eq!(status(state(true, unreachable), "/healthz").await.0, StatusCode::SERVICE_UNAVAILABLE);
+    }
+
+    #[tokio::test]
+    async fn metrics_are_prometheus_text() {
+        let dir = tempfile::tempdir().unwrap();
+        let ops = state(true, dir.path().join("t.db"));
+        ops.metrics.poll_finished("county", std::time::Duration::from_millis(5), false);
+        let (code, body) = status(ops, "/metrics").await;
+        assert_eq!(code, StatusCode::OK);
+        assert!(body.contains("tidemark_poll_failures_total{source=\"county\"} 1"), "{body}");
+    }
+}
