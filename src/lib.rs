@@ -11,6 +11,7 @@
 //! - [`source`]: finding new extracts in folders and fetching them from URLs (no parsing).
 //! - [`extract`]: bytes of one extract -> canonical rows and row problems (pure, streaming).
 //! - [`store`]: SQLite: migrations, the one writer, as-of reads, the raw archive.
+//! - [`analysis`]: pure statistics: triangle, nowcasts, scores, delay fits, tests.
 //! - [`table`]: listings rendered as text, CSV or JSON.
 //! - [`metrics`]: the daemon's counters and their Prometheus text.
 //! - [`serve`]: HTTP edges (ops endpoints; the demo's extract server); read-only.
@@ -18,6 +19,7 @@
 //! - [`app`]: command bodies, the ingest pipeline, the writer thread and the daemon (the only
 //!   place that uses `anyhow`).
 
+pub mod analysis;
 pub mod app;
 pub mod config;
 pub mod demo;

@@ -1,0 +1,10 @@
+//! Pure statistics on counts and delays: the reporting triangle, nowcasts with prediction
+//! intervals, scoring of interval forecasts, delay-distribution fits with censoring and
+//! truncation, and group comparisons. No IO, no clock, no database: data and parameters in,
+//! values and problems out. Randomness takes an explicit seed so results are reproducible.
+
+pub mod delay;
+pub mod mannwhitney;
+pub mod nowcast;
+pub mod score;
+pub mod triangle;
