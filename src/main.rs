@@ -82,6 +82,41 @@ enum Command {
         #[command(flatten)]
         listing: Listing,
     },
+    /// Backfill-corrected counts per reference date with prediction intervals.
+    Nowcast {
+        #[arg(long)]
+        source: String,
+        #[arg(long, value_name = "FIELD")]
+        by: String,
+        #[arg(long, value_name = "TIME")]
+        as_of: Option<String>,
+        /// hazard, smooth, or auto (the better one in the source's latest backtest).
+        #[arg(long, default_value = "auto")]
+        method: String,
+        /// jurisdiction, age or sex (one nowcast per stratum).
+        #[arg(long, value_name = "FIELD")]
+        stratify: Option<String>,
+        #[command(flatten)]
+        listing: Listing,
+    },
+    /// Score past nowcasts against what arrived later.
+    Backtest {
+        #[arg(long)]
+        source: String,
+        #[arg(long, value_name = "FIELD")]
+        by: String,
+        /// First snapshot day to nowcast (default: 28 days before --to).
+        #[arg(long, value_name = "DATE")]
+        from: Option<String>,
+        /// Last snapshot day to nowcast (default: the latest day whose truth is known).
+        #[arg(long, value_name = "DATE")]
+        to: Option<String>,
+        /// Days after which a count is taken as the truth (default analysis.backtest_lag).
+        #[arg(long)]
+        lag: Option<usize>,
+        #[command(flatten)]
+        listing: Listing,
+    },
     /// Run one read-only SQL statement against the store.
     Query {
         sql: String,
@@ -202,6 +237,28 @@ fn run(cli: Cli) -> Result<u8> {
                 format: listing.format,
             };
             commands::curve(&load(flag)?, &args)?
+        }
+        Command::Nowcast { source, by, as_of, method, stratify, listing } => {
+            let args = commands::NowcastArgs {
+                source: &source,
+                by: &by,
+                as_of: as_of.as_deref(),
+                method: &method,
+                stratify: stratify.as_deref(),
+                format: listing.format,
+            };
+            commands::nowcast(&load(flag)?, &args)?
+        }
+        Command::Backtest { source, by, from, to, lag, listing } => {
+            let args = commands::BacktestArgs {
+                source: &source,
+                by: &by,
+                from: from.as_deref(),
+                to: to.as_deref(),
+                lag,
+                format: listing.format,
+            };
+            commands::backtest(&load(flag)?, &args)?
         }
         Command::Query { sql, listing } => commands::query(&load(flag)?, &sql, listing.format)?,
         Command::Run { no_ops } => {

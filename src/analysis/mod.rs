@@ -3,8 +3,10 @@
 //! truncation, and group comparisons. No IO, no clock, no database: data and parameters in,
 //! values and problems out. Randomness takes an explicit seed so results are reproducible.
 
+pub mod backtest;
 pub mod delay;
 pub mod mannwhitney;
 pub mod nowcast;
 pub mod score;
+pub mod simulate;
 pub mod triangle;

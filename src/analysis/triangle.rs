@@ -135,11 +135,53 @@ mod tests {
     }
 
     #[test]
+    fn built_from_store_deltas() {
+        let d = |day: u32| NaiveDate::from_ymd_opt(2026, 3, day).unwrap();
+        // Onset 3/1: 2 known on 3/1, +1 on 3/2, -1 (a removal) on 3/4; onset 3/2: 1 on 3/3.
+        let deltas =
+            [(d(1), d(1), 2.0), (d(1), d(2), 1.0), (d(1), d(4), -1.0), (d(2), d(3), 1.0), (d(2), d(9), 5.0)];
+        let tri = from_deltas(&deltas, d(1), d(4), 2);
+        assert_eq!(tri.cumulative[0], [2.0, 3.0, 3.0], "delay 3 is beyond max_delay 2");
+        assert_eq!(tri.cumulative[1], [0.0, 1.0, 1.0]);
+        assert_eq!(tri.cumulative[3], [0.0]);
+    }
+
+    #[test]
     fn downward_revisions_are_clipped_and_counted() {
         let start = NaiveDate::from_ymd_opt(2026, 3, 1).unwrap();
-        let tri = Triangle { first_date: start, last_day: start, max_delay: 3, cumulative: vec![vec![5.0, 8.0, 7.0, 9.0]] };
+        let tri = Triangle {
+            first_date: start,
+            last_day: start,
+            max_delay: 3,
+            cumulative: vec![vec![5.0, 8.0, 7.0, 9.0]],
+        };
         let inc = tri.increments();
         assert_eq!(inc.n[0], [5.0, 3.0, 0.0, 2.0]);
         assert_eq!((inc.downward_cells, inc.downward_total), (1, 1.0));
     }
+}
+
+/// Builds the triangle of reference dates `first_date..=last_day` from the store's deltas:
+/// `(reference date, snapshot day, net change)`. A change dated before its reference date
+/// counts at delay 0; changes after `last_day`, or at a delay beyond `max_delay` (column D is
+/// the count known at delay D), are left out.
+pub fn from_deltas(
+    deltas: &[(NaiveDate, NaiveDate, f64)],
+    first_date: NaiveDate,
+    last_day: NaiveDate,
+    max_delay: usize,
+) -> Triangle {
+    let days = ((last_day - first_date).num_days() + 1).max(0) as usize;
+    let mut steps = vec![vec![0.0; max_delay + 1]; days];
+    for &(reference, day, delta) in deltas {
+        let t = (reference - first_date).num_days();
+        if t < 0 || t as usize >= days || day > last_day {
+            continue;
+        }
+        let d = (day - reference).num_days().max(0) as usize;
+        if d <= max_delay {
+            steps[t as usize][d] += delta;
+        }
+    }
+    Triangle::from_fn(first_date, last_day, max_delay, |t, d| steps[t][..=d].iter().sum())
 }

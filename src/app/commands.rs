@@ -402,3 +402,176 @@ pub fn restore(config: &Config, from: &Path) -> Result<String> {
         summary.schema_version
     ))
 }
+
+/// Arguments of `tidemark nowcast`.
+#[derive(Debug, Clone)]
+pub struct NowcastArgs<'a> {
+    pub source: &'a str,
+    pub by: &'a str,
+    pub as_of: Option<&'a str>,
+    pub method: &'a str,
+    pub stratify: Option<&'a str>,
+    pub format: OutputFormat,
+}
+
+/// `tidemark nowcast`: the stored nowcast of the snapshot current at `--as-of` (computed now
+/// if it was not stored), one row per reference date, with 50/90/95% prediction intervals.
+pub fn nowcast(config: &Config, args: &NowcastArgs<'_>) -> Result<String> {
+    use super::analyse::{self, TriangleKey};
+    source(config, args.source)?;
+    let field = parse_field_arg(args.by)?;
+    if !config.analysis.reference_fields.contains(&field) {
+        return Err(usage(format!("--by {field}: not in analysis.reference_fields, so no triangle is kept")));
+    }
+    if !["auto", "hazard", "smooth"].contains(&args.method) {
+        return Err(usage(format!("--method {}: choose auto, hazard or smooth", args.method)));
+    }
+    let as_of = args.as_of.map(parse_time_arg).transpose()?;
+    let reader = Reader::open(&config.store.path)?;
+    let source_id = reader.source_id(args.source)?.context("the source has no snapshots yet")?;
+    let snapshot_id =
+        reader.snapshot_as_of(source_id, as_of)?.context("the source has no applied snapshot at that time")?;
+    let (method, note) = analyse::resolve_method(&reader, source_id, field, args.method)?;
+    let mut strata = vec![TriangleKey::all(field)];
+    if let Some(text) = args.stratify {
+        let stratum_field = parse_field_arg(text)?;
+        if !config.analysis.strata.contains(&stratum_field) {
+            return Err(usage(format!("--stratify {stratum_field}: not in analysis.strata")));
+        }
+        strata = reader
+            .triangle_strata(source_id, field, stratum_field.name())?
+            .into_iter()
+            .map(|stratum| TriangleKey { field, kind: stratum_field.name().to_string(), stratum })
+            .collect();
+    }
+    let mut table = Table::new(&[
+        "ref_date", "stratum", "horizon", "observed", "median", "lower50", "upper50", "lower90", "upper90", "lower95",
+        "upper95", "completeness", "method", "snapshot_id",
+    ]);
+    for key in &strata {
+        let stored = reader.nowcast(snapshot_id, (field.name(), &key.kind, &key.stratum, &method))?;
+        let rows = if stored.is_empty() {
+            let tri = analyse::load_triangle(&reader, source_id, snapshot_id, key, &config.analysis, 0)?;
+            analyse::run_method(&method, &tri, &config.analysis, analyse::seed_for(snapshot_id, key, &method)).rows
+        } else {
+            stored
+        };
+        for r in rows.iter().filter(|r| r.horizon <= config.analysis.max_delay) {
+            table.push(vec![
+                r.date.to_string().into(),
+                key.stratum.clone().into(),
+                (r.horizon as i64).into(),
+                r.observed.into(),
+                r.median.into(),
+                r.lower50.into(),
+                r.upper50.into(),
+                r.lower90.into(),
+                r.upper90.into(),
+                r.lower95.into(),
+                r.upper95.into(),
+                r.completeness.into(),
+                method.clone().into(),
+                snapshot_id.into(),
+            ]);
+        }
+    }
+    let mut out = table.render(args.format);
+    if args.format == OutputFormat::Table {
+        if !note.is_empty() {
+            out.push_str(&format!("{note}\n"));
+        }
+        out.push_str(NOWCAST_CAUTION);
+    }
+    Ok(out)
+}
+
+/// Printed under every nowcast table.
+pub const NOWCAST_CAUTION: &str = "Nowcasts are estimates: the intervals are prediction intervals for the count that will \
+eventually be reported, assuming the recent reporting delay holds.\n";
+
+/// Arguments of `tidemark backtest`.
+#[derive(Debug, Clone)]
+pub struct BacktestArgs<'a> {
+    pub source: &'a str,
+    pub by: &'a str,
+    pub from: Option<&'a str>,
+    pub to: Option<&'a str>,
+    pub lag: Option<usize>,
+    pub format: OutputFormat,
+}
+
+/// `tidemark backtest`: nowcast each past day with what was known then, score against the
+/// count known `lag` days later, store and print the scores by method and horizon.
+pub fn backtest(config: &Config, args: &BacktestArgs<'_>) -> Result<String> {
+    use super::analyse::{self, BacktestRequest};
+    let source = source(config, args.source)?;
+    let field = parse_field_arg(args.by)?;
+    if !config.analysis.reference_fields.contains(&field) {
+        return Err(usage(format!("--by {field}: not in analysis.reference_fields, so no triangle is kept")));
+    }
+    let day = |text: Option<&str>| -> Result<Option<NaiveDate>> {
+        text.map(|t| NaiveDate::parse_from_str(t, "%Y-%m-%d").map_err(|_| usage(format!("{t:?} is not YYYY-MM-DD"))))
+            .transpose()
+    };
+    let request = BacktestRequest {
+        field,
+        from: day(args.from)?,
+        to: day(args.to)?,
+        lag: args.lag.unwrap_or(config.analysis.backtest_lag),
+        max_horizon: 14,
+        methods: config.analysis.nowcast_methods.clone(),
+    };
+    let mut store = Store::open(&config.store.path)?;
+    let (snapshot_id, cells, from, to) = analyse::backtest(&mut store, config, source, &request)?;
+    let mut table = Table::new(&[
+        "method", "horizon", "n", "coverage50", "coverage90", "coverage95", "wis", "rel_error", "snapshot_id",
+    ]);
+    for c in &cells {
+        table.push(vec![
+            c.method.clone().into(),
+            (c.horizon as i64).into(),
+            (c.n as i64).into(),
+            c.coverage50.into(),
+            c.coverage90.into(),
+            c.coverage95.into(),
+            c.wis.into(),
+            Cell::from(c.rel_error.is_finite().then_some(c.rel_error)),
+            snapshot_id.into(),
+        ]);
+    }
+    let mut out = table.render(args.format);
+    if args.format == OutputFormat::Table {
+        out.push_str(&format!(
+            "nowcasts made on each day {from}..{to}, scored against the count known {} days later\n",
+            request.lag
+        ));
+        out.push_str(&backtest_summary(&cells));
+    }
+    Ok(out)
+}
+
+/// One line per method: mean coverage and WIS over horizons 0..7, and the ratio to naive.
+pub fn backtest_summary(cells: &[crate::analysis::backtest::BacktestCell]) -> String {
+    use crate::analysis::backtest::{mean_wis, NAIVE};
+    let naive = mean_wis(cells, NAIVE, 7);
+    let mut methods: Vec<&str> = cells.iter().map(|c| c.method.as_str()).collect();
+    methods.dedup();
+    methods.sort();
+    methods.dedup();
+    let mut out = String::new();
+    for method in methods {
+        let chosen: Vec<_> = cells.iter().filter(|c| c.method == method && c.horizon <= 7 && c.n > 0).collect();
+        let n: usize = chosen.iter().map(|c| c.n).sum();
+        let cover = |f: fn(&crate::analysis::backtest::BacktestCell) -> f64| {
+            chosen.iter().map(|c| f(c) * c.n as f64).sum::<f64>() / n.max(1) as f64
+        };
+        let wis = mean_wis(cells, method, 7).unwrap_or(f64::NAN);
+        let ratio = naive.map(|w| format!("{:.2}", wis / w)).unwrap_or_else(|| "-".into());
+        out.push_str(&format!(
+            "  {method:<7} horizons 0-7: 90% coverage {:.0}%, 50% {:.0}%, mean WIS {wis:.2} ({ratio} of naive)\n",
+            cover(|c| c.coverage90) * 100.0,
+            cover(|c| c.coverage50) * 100.0,
+        ));
+    }
+    out
+}

@@ -112,7 +112,25 @@ pub fn ingest_archived(
         }
         Err(ParseError::Sink(err)) => return Err(err.into()),
     };
-    finish(ingest, source, last.as_ref(), &summary)
+    let outcome = finish(ingest, config, source, last.as_ref(), &summary)?;
+    if outcome.status == SnapshotStatus::Applied {
+        analyse_applied(store, config, source, outcome.snapshot_id);
+    }
+    Ok(outcome)
+}
+
+/// Recomputes the nowcasts after an applied snapshot. A failure here is logged, not
+/// returned: the snapshot itself is applied and safe, and the next one recomputes.
+fn analyse_applied(store: &mut Store, config: &Config, source: &SourceConfig, snapshot_id: i64) {
+    let started = std::time::Instant::now();
+    match super::analyse::nowcast_snapshot(store, config, source, snapshot_id) {
+        Ok(n) => {
+            tracing::debug!(source = %source.name, snapshot_id, nowcasts = n, ms = started.elapsed().as_millis() as u64, "nowcasts stored")
+        }
+        Err(err) => {
+            tracing::warn!(source = %source.name, snapshot_id, error = %format!("{err:#}"), "nowcasts not computed")
+        }
+    }
 }
 
 /// Parses a held snapshot again from the archive and applies it, without the guard.
@@ -130,7 +148,10 @@ pub fn release(store: &mut Store, config: &Config, snapshot_id: i64) -> Result<I
         Err(ParseError::Sink(err)) => return Err(err.into()),
     };
     let plan = ingest.plan()?;
-    let counts = ingest.apply(&plan, summary.rows_total, Some("released by operator"))?;
+    let spec = config.triangle_spec();
+    let counts = ingest.apply(&plan, summary.rows_total, Some("released by operator"), Some(&spec))?;
+    let source = source.clone();
+    analyse_applied(store, config, &source, snapshot_id);
     Ok(IngestOutcome {
         snapshot_id,
         status: SnapshotStatus::Applied,
@@ -162,6 +183,7 @@ fn stage(
 
 fn finish(
     mut ingest: Ingest<'_>,
+    config: &Config,
     source: &SourceConfig,
     last: Option<&LastApplied>,
     summary: &ParseSummary,
@@ -175,7 +197,10 @@ fn finish(
     };
     let (status, counts) = match &hold_reason {
         Some(reason) => (SnapshotStatus::Held, ingest.hold(&plan, summary.rows_total, reason)?),
-        None => (SnapshotStatus::Applied, ingest.apply(&plan, summary.rows_total, None)?),
+        None => {
+            let spec = config.triangle_spec();
+            (SnapshotStatus::Applied, ingest.apply(&plan, summary.rows_total, None, Some(&spec))?)
+        }
     };
     tracing::info!(
         source = %source.name, snapshot_id, status = status.name(),

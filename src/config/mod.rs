@@ -4,6 +4,7 @@
 //! `source[0].schedule: invalid cron expression`. Secrets never live in the file: only the
 //! names of environment variables that hold them.
 
+pub mod analysis;
 mod raw;
 mod source;
 
@@ -12,6 +13,7 @@ use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 use std::time::Duration;
 
+pub use self::analysis::{AnalysisConfig, DelayEnd};
 use self::raw::RawConfig;
 pub use self::source::{AsOfRule, FolderSettings, Location, SourceConfig, UrlSettings, defaults};
 
@@ -32,6 +34,7 @@ pub struct Config {
     pub webhook: Option<WebhookConfig>,
     pub bind: SocketAddr,
     pub log_json: bool,
+    pub analysis: AnalysisConfig,
 }
 
 #[derive(Debug, Clone)]
@@ -95,6 +98,15 @@ impl Config {
             Ok(config)
         } else {
             Err(ConfigError::Invalid { path: path.to_path_buf(), problems })
+        }
+    }
+
+    /// The reporting triangles the store maintains for every source.
+    pub fn triangle_spec(&self) -> crate::store::TriangleSpec {
+        crate::store::TriangleSpec {
+            ref_fields: self.analysis.reference_fields.clone(),
+            strata: self.analysis.strata.clone(),
+            age_edges: self.analysis.age_bands.clone(),
         }
     }
 
@@ -193,7 +205,9 @@ fn build(raw: RawConfig, file: &Path, base: &Path, problems: &mut Vec<String>) -
             false
         }
     };
+    let analysis = analysis::build(raw.analysis, problems);
     Config {
+        analysis,
         file: file.to_path_buf(),
         store,
         sources,

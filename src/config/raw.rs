@@ -18,6 +18,8 @@ pub struct RawConfig {
     pub serve: RawServe,
     #[serde(default)]
     pub log: RawLog,
+    #[serde(default)]
+    pub analysis: super::analysis::RawAnalysis,
 }
 
 #[derive(Debug, Deserialize, Default)]

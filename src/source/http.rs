@@ -159,7 +159,19 @@ async fn fetch_once(
         return Err(FetchError::TooLarge { limit: settings.max_bytes });
     }
     let mut bytes = Vec::with_capacity(declared.unwrap_or(0).min(64 << 20) as usize);
-    while let Some(chunk) = response.chunk().await.map_err(transport)? {
+    loop {
+        let chunk = match response.chunk().await {
+            Ok(Some(chunk)) => chunk,
+            Ok(None) => break,
+            // The body broke off before its declared length: say so, rather than reqwest's
+            // "error decoding response body".
+            Err(err) => match declared.filter(|n| *n > bytes.len() as u64) {
+                Some(expected) if !err.is_timeout() => {
+                    return Err(FetchError::Truncated { expected, got: bytes.len() as u64 });
+                }
+                _ => return Err(transport(err)),
+            },
+        };
         if bytes.len() as u64 + chunk.len() as u64 > settings.max_bytes {
             return Err(FetchError::TooLarge { limit: settings.max_bytes });
         }
@@ -189,8 +201,17 @@ fn transport(err: reqwest::Error) -> FetchError {
     } else if err.is_redirect() {
         FetchError::Redirects
     } else {
-        // The URL may carry a token; describe the failure without it.
-        FetchError::Transport(err.without_url().to_string())
+        // The URL may carry a token; describe the failure without it, but with its causes
+        // (reqwest's own text, e.g. "error decoding response body", rarely says what broke).
+        let err = err.without_url();
+        let mut text = err.to_string();
+        let mut cause = std::error::Error::source(&err);
+        while let Some(inner) = cause {
+            text.push_str(": ");
+            text.push_str(&inner.to_string());
+            cause = inner.source();
+        }
+        FetchError::Transport(text)
     }
 }
 

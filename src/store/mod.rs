@@ -8,6 +8,7 @@ pub mod backup;
 pub mod lock;
 mod read;
 mod sources;
+mod triangle;
 mod writer;
 
 use std::fs;
@@ -17,14 +18,16 @@ use std::time::Duration;
 
 use rusqlite::{Connection, OpenFlags};
 
-pub use self::read::{CurveRow, Reader, SnapshotRow, VersionRow};
+pub use self::read::{AGE_BAND_EDGES, CurveRow, Reader, SnapshotRow, VersionRow};
 pub use self::sources::{FileRecord, PollRecord, SourceStatus};
+pub use self::triangle::{DelayRow, MISSING_STRATUM, TriangleSpec};
 pub use self::writer::{Ingest, LastApplied, Plan, Store};
 
 /// Migrations, applied in order; the number is the schema version after applying it.
 const MIGRATIONS: &[(i64, &str)] = &[
     (1, include_str!("../../migrations/0001_line_list.sql")),
     (2, include_str!("../../migrations/0002_daemon.sql")),
+    (3, include_str!("../../migrations/0003_analysis.sql")),
 ];
 
 /// The schema version this build writes and understands.

@@ -175,7 +175,7 @@ impl Reader {
         stratify: Option<Field>,
     ) -> Result<Vec<CurveRow>, StoreError> {
         let date_column = by.name();
-        let stratum = stratify.map(stratum_sql).unwrap_or_else(|| "NULL".into());
+        let stratum = stratify.map(|f| stratum_sql(f, &AGE_BAND_EDGES)).unwrap_or_else(|| "NULL".into());
         let mut stmt = self.conn.prepare(&format!(
             "SELECT {date_column}, {stratum} AS stratum, count(*) FROM case_version
              WHERE source_id = ?1 AND valid_from <= ?2 AND (valid_to IS NULL OR valid_to > ?2)
@@ -217,6 +217,14 @@ impl Reader {
     /// Runs one SQL statement and returns at most `limit` rows.
     pub fn query(&self, sql: &str, limit: usize) -> Result<Table, StoreError> {
         let mut stmt = self.conn.prepare(sql)?;
+        // The connection is read-only, but some statements act before SQLite refuses them
+        // (`VACUUM INTO 'file'` creates the file first); refuse anything that could write.
+        if !stmt.readonly() {
+            return Err(StoreError::Refused(
+                "query: only statements that read are allowed (SELECT, WITH, EXPLAIN, reading PRAGMAs)"
+                    .into(),
+            ));
+        }
         let columns: Vec<String> = stmt.column_names().map(|c| c.to_string()).collect();
         let width = columns.len();
         let mut table = Table { columns, rows: Vec::new() };
@@ -243,15 +251,16 @@ fn cell(value: rusqlite::Result<ValueRef<'_>>) -> rusqlite::Result<Cell> {
     })
 }
 
-/// SQL for a stratum label of a case_version row.
-fn stratum_sql(field: Field) -> String {
+/// SQL for a stratum label of a case_version row; ages fall in the band of their interval's
+/// lower bound.
+pub(super) fn stratum_sql(field: Field, age_edges: &[u32]) -> String {
     match field {
         Field::Age => {
             let mut sql = String::from("CASE WHEN age_lo IS NULL THEN NULL");
-            for pair in AGE_BAND_EDGES.windows(2) {
+            for pair in age_edges.windows(2) {
                 sql.push_str(&format!(" WHEN age_lo < {} THEN '{}-{}'", pair[1], pair[0], pair[1] - 1));
             }
-            sql.push_str(&format!(" ELSE '{}+' END", AGE_BAND_EDGES[AGE_BAND_EDGES.len() - 1]));
+            sql.push_str(&format!(" ELSE '{}+' END", age_edges.last().copied().unwrap_or(0)));
             sql
         }
         Field::Hospitalised => "CASE hospitalised WHEN 1 THEN 'yes' WHEN 0 THEN 'no' END".into(),

@@ -10,6 +10,7 @@ use chrono::{DateTime, Utc};
 use rusqlite::{Connection, OptionalExtension, Transaction, TransactionBehavior, params};
 
 use super::lock::{self, WriterLock};
+use super::triangle::{TriangleSpec, record_deltas};
 use super::{StoreError, open_writer, parse_time, time_text};
 use crate::extract::{Problem, Row};
 use crate::model::{CaseRecord, ExtractKind, ExtractMeta, Field, RowCounts, SnapshotStatus};
@@ -365,7 +366,15 @@ impl<'s> Ingest<'s> {
     }
 
     /// Applies the plan and commits: closes changed and removed versions, writes new ones.
-    pub fn apply(self, plan: &Plan, rows_total: u64, note: Option<&str>) -> Result<RowCounts, StoreError> {
+    /// With a `triangle` spec, the reporting triangle's deltas are recorded in the same
+    /// transaction, so the triangle never disagrees with the versions.
+    pub fn apply(
+        self,
+        plan: &Plan,
+        rows_total: u64,
+        note: Option<&str>,
+        triangle: Option<&TriangleSpec>,
+    ) -> Result<RowCounts, StoreError> {
         let tx = &self.tx;
         let s = self.snapshot_id;
         tx.execute(
@@ -403,6 +412,9 @@ impl<'s> Ingest<'s> {
             changed: plan.changed,
             removed: plan.removed,
         };
+        if let Some(spec) = triangle {
+            record_deltas(tx, self.source_id, s, spec)?;
+        }
         self.finish(SnapshotStatus::Applied, &counts, note)?;
         Ok(counts)
     }

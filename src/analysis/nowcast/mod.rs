@@ -40,7 +40,13 @@ pub struct Nowcast {
 }
 
 /// Summarises predictive draws of one reference date into a row.
-pub fn row_from_draws(date: NaiveDate, horizon: usize, observed: f64, completeness: f64, draws: &mut [f64]) -> NowcastRow {
+pub fn row_from_draws(
+    date: NaiveDate,
+    horizon: usize,
+    observed: f64,
+    completeness: f64,
+    draws: &mut [f64],
+) -> NowcastRow {
     draws.sort_by(|a, b| a.total_cmp(b));
     let q = |p: f64| quantile_sorted(draws, p);
     let mean = if draws.is_empty() { observed } else { draws.iter().sum::<f64>() / draws.len() as f64 };

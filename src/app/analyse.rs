@@ -1,0 +1,219 @@
+//! Running the analyses on the store: build reporting triangles from the stored deltas,
+//! nowcast them, backtest the methods, and store results keyed by the snapshot they were
+//! computed from. The statistics are in `analysis`; this file only reads, calls and writes.
+
+use anyhow::{Context, Result};
+use chrono::{Days, NaiveDate};
+
+use crate::analysis::backtest::{self, BacktestCell, NAIVE};
+use crate::analysis::nowcast::{Nowcast, hazard};
+use crate::analysis::triangle::{self, Triangle};
+use crate::config::{AnalysisConfig, Config, SourceConfig};
+use crate::model::Field;
+use crate::store::{Reader, Store};
+
+/// Horizons over which `auto` compares methods (the issue's acceptance range).
+pub const AUTO_HORIZONS: usize = 7;
+
+/// Which triangle: a reference field and a stratum (`("all", "")` for the whole source).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct TriangleKey {
+    pub field: Field,
+    pub kind: String,
+    pub stratum: String,
+}
+
+impl TriangleKey {
+    pub fn all(field: Field) -> TriangleKey {
+        TriangleKey { field, kind: "all".into(), stratum: String::new() }
+    }
+}
+
+/// The day a snapshot describes (its as-of date).
+pub fn snapshot_day(reader: &Reader, snapshot_id: i64) -> Result<NaiveDate> {
+    let table = reader
+        .query(&format!("SELECT substr(as_of, 1, 10) FROM snapshot WHERE snapshot_id = {snapshot_id}"), 1)?;
+    match table.rows.first().and_then(|r| r.first()) {
+        Some(crate::table::Cell::Text(day)) => Ok(day.parse().context("snapshot as-of date")?),
+        _ => anyhow::bail!("no snapshot {snapshot_id}"),
+    }
+}
+
+/// The triangle of `key` as known at snapshot `snapshot_id`, over the reference dates a
+/// nowcast needs (the estimation window plus the maximum delay).
+pub fn load_triangle(
+    reader: &Reader,
+    source_id: i64,
+    snapshot_id: i64,
+    key: &TriangleKey,
+    analysis: &AnalysisConfig,
+    extra_days: usize,
+) -> Result<Triangle> {
+    let last_day = snapshot_day(reader, snapshot_id)?;
+    let span = (analysis.window + analysis.max_delay + extra_days) as u64;
+    let first = last_day.checked_sub_days(Days::new(span)).unwrap_or(last_day);
+    let deltas = reader.triangle_deltas(source_id, key.field, &key.kind, &key.stratum, first, snapshot_id)?;
+    Ok(triangle::from_deltas(&deltas, first, last_day, analysis.max_delay))
+}
+
+/// Nowcasts a triangle with a named method; the seed makes draws reproducible.
+pub fn run_method(method: &str, tri: &Triangle, analysis: &AnalysisConfig, seed: u64) -> Nowcast {
+    match method {
+        // SMOOTH-PENDING: wired to smooth::nowcast once that module lands.
+        _ => {
+            let params = hazard::HazardParams {
+                window: analysis.window,
+                draws: analysis.draws,
+                ..hazard::HazardParams::default()
+            };
+            hazard::nowcast(tri, &params, seed)
+        }
+    }
+}
+
+/// Resolves `auto`: the configured method with the lower mean WIS over horizons 0..7 in the
+/// source's latest stored backtest of this field; `hazard` when there is none.
+pub fn resolve_method(
+    reader: &Reader,
+    source_id: i64,
+    field: Field,
+    requested: &str,
+) -> Result<(String, String)> {
+    if requested != "auto" {
+        return Ok((requested.to_string(), String::new()));
+    }
+    let table = reader.query(
+        &format!(
+            "SELECT method, avg(wis) FROM backtest
+             WHERE source_id = {source_id} AND ref_field = '{}' AND method <> '{NAIVE}' AND horizon <= {AUTO_HORIZONS}
+               AND snapshot_id = (SELECT max(snapshot_id) FROM backtest WHERE source_id = {source_id} AND ref_field = '{}')
+             GROUP BY method ORDER BY avg(wis) LIMIT 1",
+            field.name(),
+            field.name()
+        ),
+        1,
+    )?;
+    Ok(match table.rows.first().map(|r| r.as_slice()) {
+        Some([crate::table::Cell::Text(method), crate::table::Cell::Real(wis)]) => (
+            method.clone(),
+            format!(
+                "auto chose {method} (mean WIS {wis:.2} over horizons 0-{AUTO_HORIZONS} in the latest backtest)"
+            ),
+        ),
+        _ => (
+            "hazard".to_string(),
+            "auto chose hazard: no backtest stored yet (run `tidemark backtest`)".to_string(),
+        ),
+    })
+}
+
+/// A seed derived from what is being computed, so a figure is reproduced exactly.
+pub fn seed_for(snapshot_id: i64, key: &TriangleKey, method: &str) -> u64 {
+    let text = format!("{snapshot_id}/{}/{}/{}/{method}", key.field.name(), key.kind, key.stratum);
+    text.bytes().fold(0xcbf2_9ce4_8422_2325u64, |h, b| (h ^ b as u64).wrapping_mul(0x0100_0000_01b3))
+}
+
+/// After an applied snapshot: nowcast every maintained triangle and store the results. The
+/// whole source gets every configured method; strata get `hazard` (cheap enough for many).
+pub fn nowcast_snapshot(
+    store: &mut Store,
+    config: &Config,
+    source: &SourceConfig,
+    snapshot_id: i64,
+) -> Result<usize> {
+    let reader = Reader::open(&config.store.path)?;
+    let Some(source_id) = reader.source_id(&source.name)? else { return Ok(0) };
+    let analysis = &config.analysis;
+    let mut results = Vec::new();
+    for &field in &analysis.reference_fields {
+        let mut keys = vec![(TriangleKey::all(field), analysis.nowcast_methods.clone())];
+        for stratum_field in &analysis.strata {
+            for stratum in reader.triangle_strata(source_id, field, stratum_field.name())? {
+                let key = TriangleKey { field, kind: stratum_field.name().to_string(), stratum };
+                keys.push((key, vec!["hazard".to_string()]));
+            }
+        }
+        for (key, methods) in keys {
+            let tri = load_triangle(&reader, source_id, snapshot_id, &key, analysis, 0)?;
+            for method in methods {
+                let nowcast = run_method(&method, &tri, analysis, seed_for(snapshot_id, &key, &method));
+                let recent: Vec<_> =
+                    nowcast.rows.into_iter().filter(|r| r.horizon <= analysis.max_delay).collect();
+                let id = (field.name().to_string(), key.kind.clone(), key.stratum.clone(), method);
+                results.push((id, recent));
+            }
+        }
+    }
+    store.write_nowcasts(snapshot_id, source_id, &results)?;
+    Ok(results.len())
+}
+
+/// What a backtest was asked to do.
+#[derive(Debug, Clone)]
+pub struct BacktestRequest {
+    pub field: Field,
+    pub from: Option<NaiveDate>,
+    pub to: Option<NaiveDate>,
+    pub lag: usize,
+    pub max_horizon: usize,
+    pub methods: Vec<String>,
+}
+
+/// Backtests the methods on the whole source's triangle as known at the latest snapshot,
+/// nowcasting each past day with what was known that day, and stores the scores.
+pub fn backtest(
+    store: &mut Store,
+    config: &Config,
+    source: &SourceConfig,
+    request: &BacktestRequest,
+) -> Result<(i64, Vec<BacktestCell>, NaiveDate, NaiveDate)> {
+    let reader = Reader::open(&config.store.path)?;
+    let source_id = reader.source_id(&source.name)?.context("the source has no snapshots yet")?;
+    let latest = reader.snapshot_as_of(source_id, None)?.context("the source has no applied snapshot")?;
+    let analysis = &config.analysis;
+    let last_day = snapshot_day(&reader, latest)?;
+    let to = request.to.unwrap_or(last_day - Days::new(request.lag as u64)).min(last_day);
+    let from = request.from.unwrap_or(to - Days::new(27));
+    let key = TriangleKey::all(request.field);
+    let extra = (last_day - from).num_days().max(0) as usize;
+    let full = load_triangle(&reader, source_id, latest, &key, analysis, extra)?;
+    let mut nowcasts = Vec::new();
+    let mut day = from;
+    while day <= to {
+        let known = full.as_of(day);
+        let start = known.rows().saturating_sub(analysis.window + analysis.max_delay);
+        let known = trim_rows(&known, start);
+        for method in &request.methods {
+            let seed = seed_for(latest, &key, method)
+                ^ day.to_string().len() as u64
+                ^ (day - from).num_days() as u64;
+            nowcasts.push((day, run_method(method, &known, analysis, seed)));
+        }
+        day = day + Days::new(1);
+    }
+    let cells = backtest::score(&nowcasts, &full, request.lag, request.max_horizon);
+    store_backtest(store, source_id, latest, request, &cells, (from, to))?;
+    Ok((latest, cells, from, to))
+}
+
+/// The triangle without its first `start` rows.
+fn trim_rows(tri: &Triangle, start: usize) -> Triangle {
+    Triangle {
+        first_date: tri.date(start.min(tri.rows())),
+        last_day: tri.last_day,
+        max_delay: tri.max_delay,
+        cumulative: tri.cumulative[start.min(tri.rows())..].to_vec(),
+    }
+}
+
+fn store_backtest(
+    store: &mut Store,
+    source_id: i64,
+    snapshot_id: i64,
+    request: &BacktestRequest,
+    cells: &[BacktestCell],
+    (from, to): (NaiveDate, NaiveDate),
+) -> Result<()> {
+    store.write_backtest(snapshot_id, source_id, request.field.name(), cells, (from, to, request.lag))?;
+    Ok(())
+}

@@ -1,0 +1,313 @@
+//! The reporting triangle and analysis results in SQL. `record_deltas` turns one applied
+//! snapshot's diff (versions opened and closed by it) into net count changes per reference
+//! date and stratum, inside the snapshot's own transaction; readers rebuild any triangle as
+//! of any day from those deltas. Nowcasts, delay fits and backtests are stored keyed by the
+//! snapshot they were computed from.
+
+use chrono::NaiveDate;
+use rusqlite::{Connection, params};
+
+use super::read::stratum_sql;
+use super::{Reader, Store, StoreError};
+use crate::analysis::backtest::BacktestCell;
+use crate::analysis::nowcast::NowcastRow;
+use crate::model::Field;
+
+/// Which triangles to maintain: reference fields, and strata besides the whole source.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TriangleSpec {
+    pub ref_fields: Vec<Field>,
+    pub strata: Vec<Field>,
+    pub age_edges: Vec<u32>,
+}
+
+/// Stratum label of records without a value in the stratum's field.
+pub const MISSING_STRATUM: &str = "(missing)";
+
+impl TriangleSpec {
+    /// ("all", SQL) plus one (kind, SQL) per stratum field.
+    fn kinds(&self) -> Vec<(&'static str, String)> {
+        let mut kinds = vec![("all", "''".to_string())];
+        kinds.extend(self.strata.iter().map(|f| (f.name(), stratum_sql(*f, &self.age_edges))));
+        kinds
+    }
+}
+
+/// One delay observation read from the store: the two dates and the record's stratum label.
+#[derive(Debug, Clone, PartialEq)]
+pub struct DelayRow {
+    pub from: NaiveDate,
+    pub to: NaiveDate,
+    pub stratum: String,
+}
+
+/// Records the triangle deltas of snapshot `snapshot_id` (its versions opened and closed).
+pub(super) fn record_deltas(
+    conn: &Connection,
+    source_id: i64,
+    snapshot_id: i64,
+    spec: &TriangleSpec,
+) -> rusqlite::Result<usize> {
+    let mut written = 0;
+    for field in &spec.ref_fields {
+        let column = field.name();
+        for (kind, stratum) in spec.kinds() {
+            written += conn.execute(
+                &format!(
+                    "INSERT OR REPLACE INTO triangle
+                         (source_id, ref_field, stratum_kind, stratum, ref_date, snapshot_id, snapshot_day, delta)
+                     SELECT ?1, '{column}', '{kind}', coalesce(stratum, '{MISSING_STRATUM}'), ref, ?2,
+                            (SELECT substr(as_of, 1, 10) FROM snapshot WHERE snapshot_id = ?2), sum(sign)
+                     FROM (SELECT {column} AS ref, {stratum} AS stratum, 1 AS sign FROM case_version
+                           WHERE valid_from = ?2 AND source_id = ?1 AND {column} IS NOT NULL
+                           UNION ALL
+                           SELECT {column}, {stratum}, -1 FROM case_version
+                           WHERE valid_to = ?2 AND source_id = ?1 AND {column} IS NOT NULL)
+                     GROUP BY ref, stratum HAVING sum(sign) <> 0"
+                ),
+                (source_id, snapshot_id),
+            )?;
+        }
+    }
+    Ok(written)
+}
+
+impl Store {
+    /// Recomputes a source's triangle from its version history (after a config change, or
+    /// for a store written before triangles existed), one applied snapshot at a time.
+    pub fn rebuild_triangle(&mut self, source_id: i64, spec: &TriangleSpec) -> Result<usize, StoreError> {
+        let tx = self.conn.transaction()?;
+        tx.execute("DELETE FROM triangle WHERE source_id = ?1", [source_id])?;
+        let ids: Vec<i64> = {
+            let mut stmt = tx.prepare(
+                "SELECT snapshot_id FROM snapshot WHERE source_id = ?1 AND status = 'applied' ORDER BY snapshot_id",
+            )?;
+            let rows = stmt.query_map([source_id], |r| r.get(0))?;
+            rows.collect::<Result<_, _>>()?
+        };
+        let mut written = 0;
+        for id in ids {
+            written += record_deltas(&tx, source_id, id, spec)?;
+        }
+        tx.commit()?;
+        Ok(written)
+    }
+
+    /// Stores the nowcasts computed from `snapshot_id` in one transaction, each replacing an
+    /// earlier one of the same key `(ref_field, stratum_kind, stratum, method)`.
+    pub fn write_nowcasts(
+        &mut self,
+        snapshot_id: i64,
+        source_id: i64,
+        nowcasts: &[((String, String, String, String), Vec<NowcastRow>)],
+    ) -> Result<(), StoreError> {
+        let tx = self.conn.transaction()?;
+        {
+            let mut delete = tx.prepare(
+                "DELETE FROM nowcast WHERE snapshot_id = ?1 AND ref_field = ?2 AND stratum_kind = ?3
+                 AND stratum = ?4 AND method = ?5",
+            )?;
+            let mut insert = tx.prepare(
+                "INSERT INTO nowcast VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15,
+                 ?16, ?17, ?18)",
+            )?;
+            for ((ref_field, kind, stratum, method), rows) in nowcasts {
+                delete.execute(params![snapshot_id, ref_field, kind, stratum, method])?;
+                for r in rows {
+                    insert.execute(params![
+                        snapshot_id,
+                        source_id,
+                        ref_field,
+                        kind,
+                        stratum,
+                        method,
+                        r.date.to_string(),
+                        r.horizon as i64,
+                        r.observed,
+                        r.median,
+                        r.mean,
+                        r.lower50,
+                        r.upper50,
+                        r.lower90,
+                        r.upper90,
+                        r.lower95,
+                        r.upper95,
+                        r.completeness
+                    ])?;
+                }
+            }
+        }
+        tx.commit()?;
+        Ok(())
+    }
+
+    /// Stores a backtest computed at `snapshot_id`, replacing an earlier one of that field.
+    pub fn write_backtest(
+        &mut self,
+        snapshot_id: i64,
+        source_id: i64,
+        ref_field: &str,
+        cells: &[BacktestCell],
+        (from, to, lag): (NaiveDate, NaiveDate, usize),
+    ) -> Result<(), StoreError> {
+        let tx = self.conn.transaction()?;
+        tx.execute(
+            "DELETE FROM backtest WHERE snapshot_id = ?1 AND ref_field = ?2",
+            params![snapshot_id, ref_field],
+        )?;
+        {
+            let mut stmt = tx.prepare(
+                "INSERT INTO backtest (snapshot_id, source_id, ref_field, method, horizon, n, coverage50,
+                     coverage90, coverage95, wis, rel_error, from_day, to_day, lag_days)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14)",
+            )?;
+            for c in cells {
+                let rel_error = c.rel_error.is_finite().then_some(c.rel_error);
+                stmt.execute(params![
+                    snapshot_id,
+                    source_id,
+                    ref_field,
+                    c.method,
+                    c.horizon as i64,
+                    c.n as i64,
+                    c.coverage50,
+                    c.coverage90,
+                    c.coverage95,
+                    c.wis,
+                    rel_error,
+                    from.to_string(),
+                    to.to_string(),
+                    lag as i64
+                ])?;
+            }
+        }
+        tx.commit()?;
+        Ok(())
+    }
+}
+
+impl Reader {
+    /// `(reference date, snapshot day, net change)` of one triangle, for reference dates from
+    /// `from_ref` and the snapshots up to `until_snapshot` (the triangle as known then).
+    pub fn triangle_deltas(
+        &self,
+        source_id: i64,
+        ref_field: Field,
+        kind: &str,
+        stratum: &str,
+        from_ref: NaiveDate,
+        until_snapshot: i64,
+    ) -> Result<Vec<(NaiveDate, NaiveDate, f64)>, StoreError> {
+        let mut stmt = self.conn.prepare_cached(
+            "SELECT ref_date, snapshot_day, sum(delta) FROM triangle
+             WHERE source_id = ?1 AND ref_field = ?2 AND stratum_kind = ?3 AND stratum = ?4
+               AND ref_date >= ?5 AND snapshot_id <= ?6
+             GROUP BY ref_date, snapshot_day",
+        )?;
+        let rows = stmt.query_map(
+            params![source_id, ref_field.name(), kind, stratum, from_ref.to_string(), until_snapshot],
+            |r| Ok((r.get::<_, String>(0)?, r.get::<_, String>(1)?, r.get::<_, f64>(2)?)),
+        )?;
+        let mut out = Vec::new();
+        for row in rows {
+            let (reference, day, delta) = row?;
+            if let (Ok(reference), Ok(day)) = (reference.parse(), day.parse()) {
+                out.push((reference, day, delta));
+            }
+        }
+        Ok(out)
+    }
+
+    /// The strata of one kind that have any count in a source's triangle.
+    pub fn triangle_strata(
+        &self,
+        source_id: i64,
+        ref_field: Field,
+        kind: &str,
+    ) -> Result<Vec<String>, StoreError> {
+        let mut stmt = self.conn.prepare(
+            "SELECT DISTINCT stratum FROM triangle WHERE source_id = ?1 AND ref_field = ?2 AND stratum_kind = ?3
+             ORDER BY stratum",
+        )?;
+        let rows = stmt.query_map(params![source_id, ref_field.name(), kind], |r| r.get(0))?;
+        Ok(rows.collect::<Result<_, _>>()?)
+    }
+
+    /// Whether a source has triangle rows at all.
+    pub fn has_triangle(&self, source_id: i64) -> Result<bool, StoreError> {
+        Ok(self.conn.query_row(
+            "SELECT EXISTS (SELECT 1 FROM triangle WHERE source_id = ?1)",
+            [source_id],
+            |r| r.get(0),
+        )?)
+    }
+
+    /// Delay observations from the records valid at `snapshot_id`: both dates present.
+    /// `to = None` means the day each record first appeared in the store.
+    pub fn delay_rows(
+        &self,
+        source_id: i64,
+        snapshot_id: i64,
+        from: Field,
+        to: Option<Field>,
+        stratum: Option<Field>,
+        age_edges: &[u32],
+    ) -> Result<Vec<DelayRow>, StoreError> {
+        let to_sql = match to {
+            Some(field) => field.name().to_string(),
+            None => "(SELECT substr(n.as_of, 1, 10) FROM case_version f JOIN snapshot n ON n.snapshot_id = f.valid_from
+                      WHERE f.source_id = v.source_id AND f.case_key = v.case_key ORDER BY f.valid_from LIMIT 1)"
+                .to_string(),
+        };
+        let stratum_sql = stratum.map(|f| stratum_sql(f, age_edges)).unwrap_or_else(|| "''".into());
+        let from_sql = from.name();
+        let mut stmt = self.conn.prepare(&format!(
+            "SELECT {from_sql}, {to_sql}, coalesce({stratum_sql}, '{MISSING_STRATUM}') FROM case_version v
+             WHERE v.source_id = ?1 AND v.valid_from <= ?2 AND (v.valid_to IS NULL OR v.valid_to > ?2)
+               AND {from_sql} IS NOT NULL"
+        ))?;
+        let rows = stmt.query_map((source_id, snapshot_id), |r| {
+            Ok((r.get::<_, String>(0)?, r.get::<_, Option<String>>(1)?, r.get::<_, String>(2)?))
+        })?;
+        let mut out = Vec::new();
+        for row in rows {
+            let (from, to, stratum) = row?;
+            if let (Ok(from), Some(Ok(to))) = (from.parse(), to.map(|t| t.parse())) {
+                out.push(DelayRow { from, to, stratum });
+            }
+        }
+        Ok(out)
+    }
+
+    /// A stored nowcast.
+    pub fn nowcast(
+        &self,
+        snapshot_id: i64,
+        key: (&str, &str, &str, &str),
+    ) -> Result<Vec<NowcastRow>, StoreError> {
+        let (ref_field, kind, stratum, method) = key;
+        let mut stmt = self.conn.prepare(
+            "SELECT ref_date, horizon, observed, median, mean, lower50, upper50, lower90, upper90, lower95,
+                    upper95, completeness
+             FROM nowcast WHERE snapshot_id = ?1 AND ref_field = ?2 AND stratum_kind = ?3 AND stratum = ?4
+               AND method = ?5 ORDER BY ref_date",
+        )?;
+        let rows = stmt.query_map(params![snapshot_id, ref_field, kind, stratum, method], |r| {
+            Ok(NowcastRow {
+                date: r.get::<_, String>(0)?.parse().unwrap_or_default(),
+                horizon: r.get::<_, i64>(1)? as usize,
+                observed: r.get(2)?,
+                median: r.get(3)?,
+                mean: r.get(4)?,
+                lower50: r.get(5)?,
+                upper50: r.get(6)?,
+                lower90: r.get(7)?,
+                upper90: r.get(8)?,
+                lower95: r.get(9)?,
+                upper95: r.get(10)?,
+                completeness: r.get(11)?,
+            })
+        })?;
+        Ok(rows.collect::<Result<_, _>>()?)
+    }
+}
