@@ -15,14 +15,17 @@ use tokio::net::TcpListener;
 use tokio::sync::{Notify, mpsc};
 use tokio_util::sync::CancellationToken;
 
+use super::analyse::{self, BacktestRequest, TriangleKey};
+use super::commands;
 use super::daemon::{self, Hooks, PollEvent};
 use super::ingest::end_of_day;
+use crate::analysis::nowcast::NowcastRow;
 use crate::config::Config;
 use crate::demo::{self, COUNTY_SOURCE, LAB_SOURCE, Scenario};
 use crate::model::Field;
 use crate::serve::feed::{self, Feed};
 use crate::serve::{self};
-use crate::store::Reader;
+use crate::store::{Reader, Store};
 
 /// Longest the demo waits for one day's polls before giving up.
 const POLL_WAIT: Duration = Duration::from_secs(60);
@@ -46,6 +49,11 @@ pub struct DemoReport {
     /// (onset date, count known on the last day, true count), by day.
     pub onset_curve: Vec<(NaiveDate, i64, u32)>,
     pub onset_missing: i64,
+    /// The last 14 days' nowcast by onset: (row, eventual reported count, true onsets).
+    pub nowcast: Vec<(NowcastRow, u32, u32)>,
+    pub nowcast_method: String,
+    /// Backtest summary lines (county feed, by onset).
+    pub backtest: String,
 }
 
 #[derive(Debug, Clone)]
@@ -191,6 +199,7 @@ fn summarise(config: &Config, scenario: &Scenario, dir: PathBuf) -> Result<DemoR
             None => onset_missing = row.count,
         }
     }
+    let (nowcast, nowcast_method, backtest) = nowcast_against_truth(config, scenario, county_id, last)?;
     Ok(DemoReport {
         dir,
         config: config.file.clone(),
@@ -198,7 +207,64 @@ fn summarise(config: &Config, scenario: &Scenario, dir: PathBuf) -> Result<DemoR
         sources,
         onset_curve,
         onset_missing,
+        nowcast,
+        nowcast_method,
+        backtest,
     })
+}
+
+type NowcastSummary = (Vec<(NowcastRow, u32, u32)>, String, String);
+
+/// Backtests the county feed by onset, lets `auto` pick the method, and lines up the last 14
+/// days of its nowcast with what the feed will eventually show and with the true onsets.
+fn nowcast_against_truth(
+    config: &Config,
+    scenario: &Scenario,
+    county_id: i64,
+    last: i64,
+) -> Result<NowcastSummary> {
+    let source = config.source(COUNTY_SOURCE).context("county source missing")?;
+    let request = BacktestRequest {
+        field: Field::OnsetDate,
+        from: None,
+        to: None,
+        lag: config.analysis.backtest_lag,
+        max_horizon: 14,
+        methods: config.analysis.nowcast_methods.clone(),
+    };
+    let mut store = Store::open(&config.store.path)?;
+    let (_, cells, from, to) = analyse::backtest(&mut store, config, source, &request)?;
+    drop(store);
+    let mut backtest =
+        format!("  nowcasts made on each day {from}..{to}, scored {} days later:\n", request.lag);
+    backtest.push_str(&commands::backtest_summary(&cells));
+    let reader = Reader::open(&config.store.path)?;
+    let (method, _) = analyse::resolve_method(&reader, county_id, Field::OnsetDate, "auto")?;
+    let key = TriangleKey::all(Field::OnsetDate);
+    let mut rows = reader.nowcast(last, (Field::OnsetDate.name(), "all", "", &method))?;
+    if rows.is_empty() {
+        let tri = analyse::load_triangle(&reader, county_id, last, &key, &config.analysis, 0)?;
+        rows =
+            analyse::run_method(&method, &tri, &config.analysis, analyse::seed_for(last, &key, &method)).rows;
+    }
+    let eventual = demo::feeds::eventual_county_onsets(scenario);
+    let truth = scenario.true_onsets();
+    let at = |date: NaiveDate, counts: &[u32]| {
+        usize::try_from((date - scenario.start).num_days())
+            .ok()
+            .and_then(|d| counts.get(d))
+            .copied()
+            .unwrap_or(0)
+    };
+    let recent: Vec<_> = rows
+        .into_iter()
+        .filter(|r| r.horizon < 14)
+        .map(|r| {
+            let (e, t) = (at(r.date, &eventual), at(r.date, &truth));
+            (r, e, t)
+        })
+        .collect();
+    Ok((recent, method, backtest))
 }
 
 impl DemoReport {
@@ -236,13 +302,29 @@ impl DemoReport {
             "  ({} records have no onset date; they are missing, not imputed)",
             self.onset_missing
         );
-        let _ =
-            writeln!(out, "\nThe last 14 days by onset (recent days look low: reports are still arriving):");
-        let _ = writeln!(out, "  onset_date   known   true");
-        for (date, known, truth) in self.onset_curve.iter().rev().take(14).rev() {
-            let _ = writeln!(out, "  {date}  {known:>6} {truth:>6}");
+        let _ = writeln!(
+            out,
+            "\nThe last 14 days by onset: recent days look low because reports are still arriving.\nNowcast ({}) on the last day against what the feed will eventually show, and the truth:",
+            self.nowcast_method
+        );
+        let _ = writeln!(out, "  onset_date  known  median  90% interval  eventual  true");
+        let mut inside = 0;
+        for (row, eventual, truth) in &self.nowcast {
+            inside += (row.lower90 <= *eventual as f64 && *eventual as f64 <= row.upper90) as usize;
+            let band = format!("[{:.0}, {:.0}]", row.lower90, row.upper90);
+            let _ = writeln!(
+                out,
+                "  {}  {:>5}  {:>6.0}  {band:>12}  {eventual:>8}  {truth:>4}",
+                row.date, row.observed, row.median
+            );
         }
-        let _ = writeln!(out, "\nStore and files: {}", self.dir.display());
+        let _ = writeln!(
+            out,
+            "  {inside} of {} days have the eventual count inside the 90% interval",
+            self.nowcast.len()
+        );
+        let _ = writeln!(out, "\nBacktest of the county feed by onset:\n{}", self.backtest);
+        let _ = writeln!(out, "Store and files: {}", self.dir.display());
         let _ = writeln!(
             out,
             "Try: tidemark --config {} snapshots --source {COUNTY_SOURCE}",
@@ -255,7 +337,12 @@ impl DemoReport {
         );
         let _ = writeln!(
             out,
-            "\nCounts are as reported, not corrected for reporting delay; treat recent days as incomplete."
+            "     tidemark --config {} nowcast --source {COUNTY_SOURCE} --by onset",
+            self.config.display()
+        );
+        let _ = writeln!(
+            out,
+            "\nCurves are as reported; nowcasts are estimates with stated uncertainty, not counts. Treat\nrecent days as incomplete and follow your jurisdiction's own protocols and case definitions."
         );
         out
     }

@@ -27,6 +27,18 @@ fn is_exported_twice(case: &TrueCase) -> bool {
     case.id % 1201 == 5
 }
 
+/// What the county feed will eventually show per onset day, once every report is in: the
+/// nowcast's target (cases never given an onset, or rejected, are not in it).
+pub fn eventual_county_onsets(scenario: &Scenario) -> Vec<u32> {
+    let mut counts = vec![0u32; scenario.days as usize];
+    for case in scenario.cases.iter().filter(|c| !has_blank_key(c) && !has_impossible_onset(c)) {
+        if let Some(onset) = case.onset_shown(i32::MAX) {
+            counts[onset as usize] += 1;
+        }
+    }
+    counts
+}
+
 /// The county reporting system's full extract on `day`: every case reported by then.
 pub fn county_csv(scenario: &Scenario, day: i32) -> String {
     let mut out = String::with_capacity(256 * scenario.cases.len());
