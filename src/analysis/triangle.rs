@@ -110,6 +110,31 @@ impl Triangle {
     }
 }
 
+/// Builds the triangle of reference dates `first_date..=last_day` from the store's deltas:
+/// `(reference date, snapshot day, net change)`. A change dated before its reference date
+/// counts at delay 0; changes after `last_day`, or at a delay beyond `max_delay` (column D is
+/// the count known at delay D), are left out.
+pub fn from_deltas(
+    deltas: &[(NaiveDate, NaiveDate, f64)],
+    first_date: NaiveDate,
+    last_day: NaiveDate,
+    max_delay: usize,
+) -> Triangle {
+    let days = ((last_day - first_date).num_days() + 1).max(0) as usize;
+    let mut steps = vec![vec![0.0; max_delay + 1]; days];
+    for &(reference, day, delta) in deltas {
+        let t = (reference - first_date).num_days();
+        if t < 0 || t as usize >= days || day > last_day {
+            continue;
+        }
+        let d = (day - reference).num_days().max(0) as usize;
+        if d <= max_delay {
+            steps[t as usize][d] += delta;
+        }
+    }
+    Triangle::from_fn(first_date, last_day, max_delay, |t, d| steps[t][..=d].iter().sum())
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -159,29 +184,4 @@ mod tests {
         assert_eq!(inc.n[0], [5.0, 3.0, 0.0, 2.0]);
         assert_eq!((inc.downward_cells, inc.downward_total), (1, 1.0));
     }
-}
-
-/// Builds the triangle of reference dates `first_date..=last_day` from the store's deltas:
-/// `(reference date, snapshot day, net change)`. A change dated before its reference date
-/// counts at delay 0; changes after `last_day`, or at a delay beyond `max_delay` (column D is
-/// the count known at delay D), are left out.
-pub fn from_deltas(
-    deltas: &[(NaiveDate, NaiveDate, f64)],
-    first_date: NaiveDate,
-    last_day: NaiveDate,
-    max_delay: usize,
-) -> Triangle {
-    let days = ((last_day - first_date).num_days() + 1).max(0) as usize;
-    let mut steps = vec![vec![0.0; max_delay + 1]; days];
-    for &(reference, day, delta) in deltas {
-        let t = (reference - first_date).num_days();
-        if t < 0 || t as usize >= days || day > last_day {
-            continue;
-        }
-        let d = (day - reference).num_days().max(0) as usize;
-        if d <= max_delay {
-            steps[t as usize][d] += delta;
-        }
-    }
-    Triangle::from_fn(first_date, last_day, max_delay, |t, d| steps[t][..=d].iter().sum())
 }

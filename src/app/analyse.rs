@@ -6,7 +6,7 @@ use anyhow::{Context, Result};
 use chrono::{Days, NaiveDate};
 
 use crate::analysis::backtest::{self, BacktestCell, NAIVE};
-use crate::analysis::nowcast::{Nowcast, hazard};
+use crate::analysis::nowcast::{Nowcast, hazard, smooth};
 use crate::analysis::triangle::{self, Triangle};
 use crate::config::{AnalysisConfig, Config, SourceConfig};
 use crate::model::Field;
@@ -59,7 +59,10 @@ pub fn load_triangle(
 /// Nowcasts a triangle with a named method; the seed makes draws reproducible.
 pub fn run_method(method: &str, tri: &Triangle, analysis: &AnalysisConfig, seed: u64) -> Nowcast {
     match method {
-        // SMOOTH-PENDING: wired to smooth::nowcast once that module lands.
+        "smooth" => {
+            let params = smooth::SmoothParams { draws: analysis.draws, ..smooth::SmoothParams::default() };
+            smooth::nowcast(tri, &params, seed)
+        }
         _ => {
             let params = hazard::HazardParams {
                 window: analysis.window,

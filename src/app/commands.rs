@@ -429,8 +429,9 @@ pub fn nowcast(config: &Config, args: &NowcastArgs<'_>) -> Result<String> {
     let as_of = args.as_of.map(parse_time_arg).transpose()?;
     let reader = Reader::open(&config.store.path)?;
     let source_id = reader.source_id(args.source)?.context("the source has no snapshots yet")?;
-    let snapshot_id =
-        reader.snapshot_as_of(source_id, as_of)?.context("the source has no applied snapshot at that time")?;
+    let snapshot_id = reader
+        .snapshot_as_of(source_id, as_of)?
+        .context("the source has no applied snapshot at that time")?;
     let (method, note) = analyse::resolve_method(&reader, source_id, field, args.method)?;
     let mut strata = vec![TriangleKey::all(field)];
     if let Some(text) = args.stratify {
@@ -445,14 +446,27 @@ pub fn nowcast(config: &Config, args: &NowcastArgs<'_>) -> Result<String> {
             .collect();
     }
     let mut table = Table::new(&[
-        "ref_date", "stratum", "horizon", "observed", "median", "lower50", "upper50", "lower90", "upper90", "lower95",
-        "upper95", "completeness", "method", "snapshot_id",
+        "ref_date",
+        "stratum",
+        "horizon",
+        "observed",
+        "median",
+        "lower50",
+        "upper50",
+        "lower90",
+        "upper90",
+        "lower95",
+        "upper95",
+        "completeness",
+        "method",
+        "snapshot_id",
     ]);
     for key in &strata {
         let stored = reader.nowcast(snapshot_id, (field.name(), &key.kind, &key.stratum, &method))?;
         let rows = if stored.is_empty() {
             let tri = analyse::load_triangle(&reader, source_id, snapshot_id, key, &config.analysis, 0)?;
-            analyse::run_method(&method, &tri, &config.analysis, analyse::seed_for(snapshot_id, key, &method)).rows
+            analyse::run_method(&method, &tri, &config.analysis, analyse::seed_for(snapshot_id, key, &method))
+                .rows
         } else {
             stored
         };
@@ -510,8 +524,10 @@ pub fn backtest(config: &Config, args: &BacktestArgs<'_>) -> Result<String> {
         return Err(usage(format!("--by {field}: not in analysis.reference_fields, so no triangle is kept")));
     }
     let day = |text: Option<&str>| -> Result<Option<NaiveDate>> {
-        text.map(|t| NaiveDate::parse_from_str(t, "%Y-%m-%d").map_err(|_| usage(format!("{t:?} is not YYYY-MM-DD"))))
-            .transpose()
+        text.map(|t| {
+            NaiveDate::parse_from_str(t, "%Y-%m-%d").map_err(|_| usage(format!("{t:?} is not YYYY-MM-DD")))
+        })
+        .transpose()
     };
     let request = BacktestRequest {
         field,
@@ -524,7 +540,15 @@ pub fn backtest(config: &Config, args: &BacktestArgs<'_>) -> Result<String> {
     let mut store = Store::open(&config.store.path)?;
     let (snapshot_id, cells, from, to) = analyse::backtest(&mut store, config, source, &request)?;
     let mut table = Table::new(&[
-        "method", "horizon", "n", "coverage50", "coverage90", "coverage95", "wis", "rel_error", "snapshot_id",
+        "method",
+        "horizon",
+        "n",
+        "coverage50",
+        "coverage90",
+        "coverage95",
+        "wis",
+        "rel_error",
+        "snapshot_id",
     ]);
     for c in &cells {
         table.push(vec![
@@ -552,7 +576,7 @@ pub fn backtest(config: &Config, args: &BacktestArgs<'_>) -> Result<String> {
 
 /// One line per method: mean coverage and WIS over horizons 0..7, and the ratio to naive.
 pub fn backtest_summary(cells: &[crate::analysis::backtest::BacktestCell]) -> String {
-    use crate::analysis::backtest::{mean_wis, NAIVE};
+    use crate::analysis::backtest::{NAIVE, mean_wis};
     let naive = mean_wis(cells, NAIVE, 7);
     let mut methods: Vec<&str> = cells.iter().map(|c| c.method.as_str()).collect();
     methods.dedup();
@@ -560,7 +584,8 @@ pub fn backtest_summary(cells: &[crate::analysis::backtest::BacktestCell]) -> St
     methods.dedup();
     let mut out = String::new();
     for method in methods {
-        let chosen: Vec<_> = cells.iter().filter(|c| c.method == method && c.horizon <= 7 && c.n > 0).collect();
+        let chosen: Vec<_> =
+            cells.iter().filter(|c| c.method == method && c.horizon <= 7 && c.n > 0).collect();
         let n: usize = chosen.iter().map(|c| c.n).sum();
         let cover = |f: fn(&crate::analysis::backtest::BacktestCell) -> f64| {
             chosen.iter().map(|c| f(c) * c.n as f64).sum::<f64>() / n.max(1) as f64

@@ -228,6 +228,8 @@ async fn finish_poll(
     error: Option<String>,
 ) {
     let took = started.elapsed();
+    // A poll cut short by shutdown is not a failure of the source.
+    let error = error.filter(|_| !shared.shutdown.is_cancelled());
     shared.metrics.poll_finished(&source.name, took, error.is_none());
     shared.metrics.update(&source.name, |c| {
         for outcome in &outcomes {

@@ -171,10 +171,10 @@ fn stage(
     let mut rows = 0u64;
     extract::parse(reader, source.format, &source.mapping, latest, |row| {
         rows += 1;
-        if rows % CANCEL_CHECK_EVERY == 0 && cancelled() {
+        if rows.is_multiple_of(CANCEL_CHECK_EVERY) && cancelled() {
             return Err(StoreError::Cancelled);
         }
-        if rows % PROGRESS_EVERY == 0 {
+        if rows.is_multiple_of(PROGRESS_EVERY) {
             tracing::info!(target: "tidemark::progress", source = %source.name, rows, "staging rows");
         }
         ingest.add(row)

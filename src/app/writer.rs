@@ -1,6 +1,6 @@
 //! The one writer: a dedicated thread owns the `Store` (and with it the writer lock) and runs
 //! jobs sent to it one at a time, so every write is serialised and a blocking SQLite
-//! transaction never stalls the async runtime. rusqlite's `Connection` is `Send` but not
+//! transaction never stalls the async runtime. SQLite connections are `Send` but not
 //! `Sync`, which is exactly this shape.
 
 use std::sync::mpsc;

@@ -75,7 +75,7 @@ fn county_row(scenario: &Scenario, case: &TrueCase, day: i32, exported_at: &str)
     };
     let hospitalised = match known(case.admission) {
         Some(_) => "Y",
-        None if case.admission.is_none() && case.id % 5 != 0 => "N",
+        None if case.admission.is_none() && !case.id.is_multiple_of(5) => "N",
         None => "",
     };
     let mut symptoms = case.symptoms.clone();
@@ -111,7 +111,7 @@ fn county_row(scenario: &Scenario, case: &TrueCase, day: i32, exported_at: &str)
 fn county_age(case: &TrueCase) -> String {
     let years = case.age_years;
     match case.id % 20 {
-        _ if years < 1.0 && case.id % 2 == 0 => format!("{} weeks", (years * 52.0).floor().max(1.0)),
+        _ if years < 1.0 && case.id.is_multiple_of(2) => format!("{} weeks", (years * 52.0).floor().max(1.0)),
         _ if years < 2.0 => format!("{} months", (years * 12.0).floor().max(1.0)),
         0 => "unknown".into(),
         1 | 2 => {

@@ -162,7 +162,7 @@ mod tests {
             listing.problems
         );
         // Root can read a 0000 file; only an unprivileged user sees the permission problem.
-        let root = fs::File::open(feed.join("locked.csv")).is_ok();
+        let root = File::open(feed.join("locked.csv")).is_ok();
         assert_eq!(listing.problems.iter().any(|p| p.starts_with("locked.csv: cannot be read")), !root);
     }
 

@@ -21,6 +21,9 @@ pub struct TriangleSpec {
     pub age_edges: Vec<u32>,
 }
 
+/// A stored nowcast's key: (ref_field, stratum_kind, stratum, method).
+pub type NowcastKey = (String, String, String, String);
+
 /// Stratum label of records without a value in the stratum's field.
 pub const MISSING_STRATUM: &str = "(missing)";
 
@@ -99,7 +102,7 @@ impl Store {
         &mut self,
         snapshot_id: i64,
         source_id: i64,
-        nowcasts: &[((String, String, String, String), Vec<NowcastRow>)],
+        nowcasts: &[(NowcastKey, Vec<NowcastRow>)],
     ) -> Result<(), StoreError> {
         let tx = self.conn.transaction()?;
         {
