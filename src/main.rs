@@ -194,7 +194,9 @@ fn init_tracing(daemon: bool, json: bool) {
     let default = if daemon { "info" } else { "warn,tidemark::progress=info" };
     let filter = tracing_subscriber::EnvFilter::try_from_env("TIDEMARK_LOG")
         .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(default));
-    let builder = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
+    let ansi = std::io::IsTerminal::is_terminal(&std::io::stderr());
+    let builder =
+        tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr).with_ansi(ansi);
     let _ = if json { builder.json().try_init() } else { builder.try_init() };
 }
 

@@ -7,13 +7,11 @@
 
 use super::nowcast::NowcastRow;
 
-/// The central prediction intervals of a `NowcastRow` as (alpha, lower, upper) accessors:
-/// the 50%, 90% and 95% intervals have alpha = 0.5, 0.1 and 0.05.
-const ROW_INTERVALS: [(f64, fn(&NowcastRow) -> (f64, f64)); 3] = [
-    (0.5, |row| (row.lower50, row.upper50)),
-    (0.1, |row| (row.lower90, row.upper90)),
-    (0.05, |row| (row.lower95, row.upper95)),
-];
+/// The central prediction intervals of a `NowcastRow` as (alpha, lower, upper): the 50%, 90%
+/// and 95% intervals have alpha = 0.5, 0.1 and 0.05.
+fn row_intervals(row: &NowcastRow) -> [(f64, f64, f64); 3] {
+    [(0.5, row.lower50, row.upper50), (0.1, row.lower90, row.upper90), (0.05, row.lower95, row.upper95)]
+}
 
 /// Interval score of the central (1 - alpha) interval [lower, upper] for the observed `y`:
 /// `(u - l) + (2/alpha)(l - y)1{y < l} + (2/alpha)(y - u)1{y > u}`. The width rewards
@@ -44,14 +42,7 @@ pub fn wis(median: f64, intervals: &[(f64, f64, f64)], y: f64) -> f64 {
 /// Weighted interval score of one nowcast row (its median and 50/90/95% intervals) against
 /// the eventual count `y`.
 pub fn wis_of_row(row: &NowcastRow, y: f64) -> f64 {
-    let intervals: Vec<(f64, f64, f64)> = ROW_INTERVALS
-        .iter()
-        .map(|(alpha, bounds)| {
-            let (lower, upper) = bounds(row);
-            (*alpha, lower, upper)
-        })
-        .collect();
-    wis(row.median, &intervals, y)
+    wis(row.median, &row_intervals(row), y)
 }
 
 /// Whether `y` lies in the closed interval [lower, upper].

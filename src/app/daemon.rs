@@ -228,8 +228,10 @@ async fn finish_poll(
     error: Option<String>,
 ) {
     let took = started.elapsed();
-    // A poll cut short by shutdown is not a failure of the source.
-    let error = error.filter(|_| !shared.shutdown.is_cancelled());
+    // A poll cut short by shutdown says nothing about the source's health: not recorded.
+    if error.is_some() && outcomes.is_empty() && shared.shutdown.is_cancelled() {
+        return;
+    }
     shared.metrics.poll_finished(&source.name, took, error.is_none());
     shared.metrics.update(&source.name, |c| {
         for outcome in &outcomes {

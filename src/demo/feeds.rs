@@ -32,8 +32,11 @@ fn is_exported_twice(case: &TrueCase) -> bool {
 pub fn eventual_county_onsets(scenario: &Scenario) -> Vec<u32> {
     let mut counts = vec![0u32; scenario.days as usize];
     for case in scenario.cases.iter().filter(|c| !has_blank_key(c) && !has_impossible_onset(c)) {
-        if let Some(onset) = case.onset_shown(i32::MAX) {
-            counts[onset as usize] += 1;
+        // A corrected onset can fall outside the scenario's days; it is not on the curve.
+        if let Some(slot) =
+            case.onset_shown(i32::MAX).and_then(|o| usize::try_from(o).ok()).and_then(|o| counts.get_mut(o))
+        {
+            *slot += 1;
         }
     }
     counts

@@ -29,6 +29,9 @@ pub(super) fn parse<E>(
         return Err(ExtractError::Empty.into());
     }
     let delimiter = mapping.delimiter.unwrap_or_else(|| detect_delimiter(head));
+    // The CSV reader counts lines by '\n' only; a file ended by bare '\r' is numbered by
+    // record instead (exact unless a quoted cell spans lines).
+    let cr_only = cr_only_line_ends(head);
     let mut reader = csv::ReaderBuilder::new()
         .has_headers(false)
         .flexible(true)
@@ -41,15 +44,31 @@ pub(super) fn parse<E>(
     let layout = Layout::from_header(&record, mapping)?;
     let mut raw_writer = RawWriter::new(delimiter);
     let mut last_line = 1;
+    let mut last_spans_lines = false;
     while read_record(&mut reader, &mut record)? {
-        last_line = record.position().map(|p| p.line()).unwrap_or(last_line + 1);
+        last_line = match record.position() {
+            Some(p) if !cr_only => p.line(),
+            _ => last_line + 1,
+        };
+        last_spans_lines = record.iter().any(|cell| cell.contains(&b'\n'));
         let row = layout.row(&record, last_line, mapping, latest, &mut raw_writer);
         sink(row).map_err(ParseError::Sink)?;
     }
-    if reader.into_inner().quotes % 2 == 1 {
+    // An unterminated quote swallows the rest of the file into the last record: an odd
+    // number of quote bytes overall, and a last record whose cell runs over lines. (A stray
+    // quote inside an unquoted cell, such as an inch mark, is odd too, but harmless.)
+    if reader.into_inner().quotes % 2 == 1 && last_spans_lines {
         return Err(ExtractError::UnterminatedQuote { line: last_line }.into());
     }
     Ok(())
+}
+
+/// Whether the first line ends with a bare '\r' (old Mac line ends).
+fn cr_only_line_ends(head: &[u8]) -> bool {
+    match head.iter().position(|&b| b == b'\r' || b == b'\n') {
+        Some(idx) => head[idx] == b'\r' && head.get(idx + 1) != Some(&b'\n'),
+        None => false,
+    }
 }
 
 fn read_record<R: Read>(

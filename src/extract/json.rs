@@ -31,7 +31,10 @@ pub(super) fn parse_lines<E>(
             break;
         }
         line += 1;
-        let bytes = trim_ascii(&buffer);
+        let mut bytes = trim_ascii(&buffer);
+        if line == 1 {
+            bytes = bytes.strip_prefix(&UTF8_BOM[..]).unwrap_or(bytes);
+        }
         if bytes.is_empty() {
             continue;
         }
@@ -67,6 +70,8 @@ pub(super) fn parse_array<E>(
     latest: NaiveDate,
     sink: &mut impl FnMut(Row) -> Result<(), E>,
 ) -> Result<(), ParseError<E>> {
+    let mut input = input;
+    skip_bom_and_blank(&mut input)?;
     let mut deserializer = serde_json::Deserializer::from_reader(input);
     let mut records = Records { mapping, latest, sink, sink_error: None, count: 0 };
     let result = (&mut records).deserialize(&mut deserializer).and_then(|()| deserializer.end());
@@ -188,6 +193,27 @@ fn text_value(text: &str) -> RawValue {
 
 fn reject(line: u64, kind: ProblemKind, message: String, raw: String) -> Row {
     Row::Rejected(Problem { line, field: None, kind, message, raw: Some(raw) })
+}
+
+const UTF8_BOM: [u8; 3] = [0xEF, 0xBB, 0xBF];
+
+/// Skips a UTF-8 BOM and leading whitespace; a file with nothing else is empty.
+fn skip_bom_and_blank(input: &mut Box<dyn BufRead + '_>) -> Result<(), ExtractError> {
+    if input.fill_buf()?.starts_with(&UTF8_BOM) {
+        input.consume(UTF8_BOM.len());
+    }
+    loop {
+        let buffer = input.fill_buf()?;
+        if buffer.is_empty() {
+            return Err(ExtractError::Empty);
+        }
+        let blank = buffer.iter().take_while(|b| b.is_ascii_whitespace()).count();
+        let done = blank < buffer.len();
+        input.consume(blank);
+        if done {
+            return Ok(());
+        }
+    }
 }
 
 fn trim_ascii(bytes: &[u8]) -> &[u8] {

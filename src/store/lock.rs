@@ -22,6 +22,14 @@ impl WriterLock {
     }
 }
 
+impl Drop for WriterLock {
+    /// Unlocks explicitly: a child process forked at this moment may still share the open
+    /// file until it execs, and closing our descriptor alone would leave the lock held.
+    fn drop(&mut self) {
+        let _ = self._file.unlock();
+    }
+}
+
 /// The lock file of a store.
 pub fn lock_path(store: &Path) -> PathBuf {
     let mut name = store.file_name().unwrap_or_default().to_os_string();

@@ -93,14 +93,18 @@ impl Store {
         last_applied(&self.conn, source_id)
     }
 
-    /// An earlier snapshot of the source with the same bytes that was applied, held or
-    /// rejected (a failed one may be retried after a mapping fix).
+    /// A snapshot with the same bytes that is the source's latest applied one, or a held or
+    /// rejected one after it: nothing new. The same bytes as an *older*, superseded snapshot
+    /// are a real full extract that restores that state, and are applied; a failed one may be
+    /// retried after a mapping fix.
     pub fn duplicate_of(&self, source_id: i64, sha256: &str) -> Result<Option<i64>, StoreError> {
         Ok(self
             .conn
             .query_row(
                 "SELECT min(snapshot_id) FROM snapshot WHERE source_id = ?1 AND sha256 = ?2
-                 AND status IN ('applied', 'held', 'rejected')",
+                 AND status IN ('applied', 'held', 'rejected')
+                 AND snapshot_id >= coalesce(
+                     (SELECT max(snapshot_id) FROM snapshot WHERE source_id = ?1 AND status = 'applied'), 0)",
                 (source_id, sha256),
                 |row| row.get(0),
             )

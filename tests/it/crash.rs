@@ -28,7 +28,11 @@ fn extract(day: usize) -> String {
     for idx in 0..ROWS + day * 500 {
         let onset = 1 + (idx * 7 + if idx % 3 == 0 { day } else { 0 }) % 28;
         let district = ["Amberlee", "Brackwater", "Dunhollow"][idx % 3];
-        out.push_str(&format!("C-{idx:06},2026-02-{onset:02},{district},{},cough;38.{} C\n", idx % 90, idx % 10));
+        out.push_str(&format!(
+            "C-{idx:06},2026-02-{onset:02},{district},{},cough;38.{} C\n",
+            idx % 90,
+            idx % 10
+        ));
     }
     out
 }
@@ -45,8 +49,10 @@ fn ingest(config: &Path, file: &Path, as_of: &str) -> Command {
     cmd
 }
 
-/// (key, onset) of every current record, and (status, counts) of every snapshot.
-fn state(db: &Path) -> (Vec<(String, Option<String>)>, Vec<(String, i64, i64)>) {
+/// (key, onset) of every current record, and (status, new, changed) of every snapshot.
+type StoreState = (Vec<(String, Option<String>)>, Vec<(String, i64, i64)>);
+
+fn state(db: &Path) -> StoreState {
     let conn = Connection::open(db).unwrap();
     let mut stmt = conn
         .prepare("SELECT case_key, onset_date FROM case_version WHERE valid_to IS NULL ORDER BY case_key")
@@ -55,7 +61,8 @@ fn state(db: &Path) -> (Vec<(String, Option<String>)>, Vec<(String, i64, i64)>) 
     let mut stmt = conn
         .prepare("SELECT status, rows_new, rows_changed FROM snapshot WHERE status = 'applied' ORDER BY snapshot_id")
         .unwrap();
-    let snapshots = stmt.query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?))).unwrap().map(Result::unwrap).collect();
+    let snapshots =
+        stmt.query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?))).unwrap().map(Result::unwrap).collect();
     (current, snapshots)
 }
 
@@ -137,7 +144,10 @@ fn sigkill_during_ingest_leaves_a_consistent_store_that_converges() {
         if state(&db).1.len() < want.1.len() {
             interrupted += 1;
         }
-        assert!(ingest(&config, &second, "2026-03-02").status().unwrap().success(), "re-ingest after kill {kill}");
+        assert!(
+            ingest(&config, &second, "2026-03-02").status().unwrap().success(),
+            "re-ingest after kill {kill}"
+        );
         check_consistent(&db);
         let got = state(&db);
         assert_eq!(got.0, want.0, "current records differ after kill {kill} ({delay:?})");

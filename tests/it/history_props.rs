@@ -48,7 +48,8 @@ fn edit() -> impl Strategy<Value = Edit> {
 }
 
 fn apply(state: &mut BTreeMap<String, Row>, order: &mut u64, edit: &Edit) {
-    let pick = |state: &BTreeMap<String, Row>, idx: usize| state.keys().nth(idx % state.len().max(1)).cloned();
+    let pick =
+        |state: &BTreeMap<String, Row>, idx: usize| state.keys().nth(idx % state.len().max(1)).cloned();
     match edit {
         Edit::Add(key, row) => {
             state.insert(format!("C-{key:04}"), row.clone());
@@ -129,7 +130,8 @@ fn check_history(initial: Vec<(u16, Row)>, edits: Vec<Vec<Edit>>) -> Result<(), 
             .into_iter()
             .map(|r| {
                 let onset = r.date(Field::OnsetDate).map(|d| (d - start()).num_days() as u8);
-                let jurisdiction = JURISDICTIONS.iter().position(|j| Some(*j) == r.jurisdiction.as_deref()).unwrap();
+                let jurisdiction =
+                    JURISDICTIONS.iter().position(|j| Some(*j) == r.jurisdiction.as_deref()).unwrap();
                 let age = r.age.unwrap().lo as u8;
                 (r.case_key, Row { onset, jurisdiction, age })
             })

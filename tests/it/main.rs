@@ -1,9 +1,14 @@
 //! Integration tests: one binary, one module per area. Real SQLite files in temporary
 //! folders, the real `tidemark` binary where a process matters.
 
+mod backup;
 mod bad_corpus;
 mod cli;
 mod crash;
+mod folder_source;
 mod history_props;
+mod run_process;
+mod support;
 mod tidy;
+mod url_source;
 mod versioning;

@@ -106,7 +106,11 @@ fn run_ingests_dropped_files_serves_ops_and_refuses_a_second_writer() {
     fs::write(dir.path().join("inbox/county-2026-03-01.csv"), extract(20)).unwrap();
     fs::write(dir.path().join("inbox/county-2026-03-02.csv"), extract(25)).unwrap();
     wait_for("two snapshots", Duration::from_secs(20), || applied(&db) == 2);
-
+    // The counters move when the poll ends, just after its snapshots are committed.
+    let counted = "tidemark_ingests_total{source=\"county\",status=\"applied\"} 2";
+    wait_for("the metrics", Duration::from_secs(20), || {
+        get(port, "/metrics").is_some_and(|(_, m)| m.contains(counted))
+    });
     let (status, metrics) = get(port, "/metrics").unwrap();
     assert_eq!(status, 200);
     assert!(metrics.contains("tidemark_ingests_total{source=\"county\",status=\"applied\"} 2"), "{metrics}");

@@ -101,59 +101,17 @@ pub fn fit(obs: &[DelayObs], family: Family, options: &FitOptions, seed: u64) ->
         return unfitted(family, warnings);
     };
     let log_likelihood = -estimate.value;
-
-    let mut unidentified = Vec::new();
-    if let Some(name) = space.touching(estimate.x) {
-        unidentified.push(format!("the maximum lies on the boundary ({name} at its limit)"));
-    }
-    let profile = problem.profile_mean(&counts, 3.0 * dist.mean());
-    if log_likelihood - profile < PROFILE_DROP {
-        unidentified.push(
-            "the likelihood profile is flat: a mean three times the estimate is inside the 95% \
-             likelihood region"
-                .to_string(),
-        );
-    }
-
-    if let Some(longest) = data.longest_horizon
-        && dist.quantile(0.95) > longest as f64
-    {
-        unidentified.push(format!(
-            "the fitted 95th percentile ({:.1} days) lies beyond the longest observable delay \
-             ({longest} days)",
-            dist.quantile(0.95)
-        ));
-    }
-
+    let mut unidentified = problem.likelihood_checks(&counts, &estimate, &dist);
+    unidentified.extend(tail_check(&dist, data.longest_horizon));
     let mut rng = StdRng::seed_from_u64(seed);
     let boot = problem.bootstrap(&data.design, estimate.x, options.bootstrap, &mut rng);
     let intervals = boot.intervals(options.level);
-    if boot.replicates > 0 && boot.at_boundary as f64 > 0.1 * boot.replicates as f64 {
-        unidentified.push(format!(
-            "{} of {} bootstrap refits end on the parameter boundary",
-            boot.at_boundary, boot.replicates
-        ));
-    }
-    if let Some([mean_interval, ..]) = intervals
-        && mean_interval.upper > 3.0 * dist.mean()
-    {
-        unidentified.push(format!(
-            "the bootstrap interval of the mean reaches {:.1} days, over three times the \
-             estimate",
-            mean_interval.upper
-        ));
-    }
+    unidentified.extend(boot.checks(intervals, dist.mean()));
     let identifiable = unidentified.is_empty();
     if !identifiable {
-        warnings.push(format!(
-            "{} fit: the upper tail and the mean are not identified ({}); delays this long are \
-             not yet observable under the right truncation (Seaman et al. 2022), so the mean and \
-             95th percentile are not estimates and their intervals are unbounded above",
-            family.name(),
-            unidentified.join("; ")
-        ));
+        warnings.push(not_identified_warning(family, &unidentified));
     }
-    let unbounded = |interval: Interval| Interval {
+    let bounded = |interval: Interval| Interval {
         upper: if identifiable { interval.upper } else { f64::INFINITY },
         ..interval
     };
@@ -165,14 +123,37 @@ pub fn fit(obs: &[DelayObs], family: Family, options: &FitOptions, seed: u64) ->
         mean: dist.mean(),
         median: dist.median(),
         p95: dist.quantile(0.95),
-        mean_interval: intervals.map(|i| unbounded(i[0])),
+        mean_interval: intervals.map(|i| bounded(i[0])),
         median_interval: intervals.map(|i| i[1]),
-        p95_interval: intervals.map(|i| unbounded(i[2])),
+        p95_interval: intervals.map(|i| bounded(i[2])),
         bootstrap_replicates: boot.replicates,
         n: data.n,
         identifiable,
         warnings,
     }
+}
+
+fn not_identified_warning(family: Family, reasons: &[String]) -> String {
+    format!(
+        "{} fit: the upper tail and the mean are not identified ({}); delays this long are not \
+         yet observable under the right truncation (Seaman et al. 2022), so the mean and 95th \
+         percentile are not estimates and their intervals are unbounded above",
+        family.name(),
+        reasons.join("; ")
+    )
+}
+
+/// The upper tail is extrapolation when every record is truncated and the fitted 95th
+/// percentile lies beyond the longest horizon.
+fn tail_check(dist: &Dist, longest_horizon: Option<i64>) -> Option<String> {
+    let longest = longest_horizon?;
+    let p95 = dist.quantile(0.95);
+    (p95 > longest as f64).then(|| {
+        format!(
+            "the fitted 95th percentile ({p95:.1} days) lies beyond the longest observable delay \
+             ({longest} days)"
+        )
+    })
 }
 
 /// Fits every family and sorts them by AIC, best first (fits without an AIC last).
@@ -328,12 +309,12 @@ impl Space {
     fn starts(&self, mean: f64, cv: f64) -> Vec<[f64; 2]> {
         [(1.0, cv), (1.0, 1.0), (1.5, cv), (3.0, cv * 1.2)]
             .into_iter()
-            .map(|(inflate, cv)| self.from_moments(mean * inflate, cv))
+            .map(|(inflate, cv)| self.theta_from_moments(mean * inflate, cv))
             .map(|theta| self.bounds.project(theta))
             .collect()
     }
 
-    fn from_moments(&self, mean: f64, cv: f64) -> [f64; 2] {
+    fn theta_from_moments(&self, mean: f64, cv: f64) -> [f64; 2] {
         match self.family {
             Family::Gamma => [(1.0 / (cv * cv)).ln(), mean.ln()],
             Family::Lognormal => {
@@ -419,6 +400,23 @@ impl<'a> Problem<'a> {
         -minimize_1d(|shape| self.negative_ll(space.at_mean(mean, shape), counts), lo, hi, 40)
     }
 
+    /// A maximum on the boundary, or a flat profile of the mean towards larger values.
+    fn likelihood_checks(&mut self, counts: &Counts, estimate: &Estimate, dist: &Dist) -> Vec<String> {
+        let mut problems = Vec::new();
+        if let Some(name) = self.space.touching(estimate.x) {
+            problems.push(format!("the maximum lies on the boundary ({name} at its limit)"));
+        }
+        let profile = self.profile_mean(counts, 3.0 * dist.mean());
+        if -estimate.value - profile < PROFILE_DROP {
+            problems.push(
+                "the likelihood profile is flat: a mean three times the estimate is inside the \
+                 95% likelihood region"
+                    .to_string(),
+            );
+        }
+        problems
+    }
+
     fn bootstrap(&mut self, design: &Design, estimate: [f64; 2], resamples: usize, rng: &mut StdRng) -> Boot {
         let mut boot = Boot { draws: Vec::with_capacity(resamples), replicates: 0, at_boundary: 0 };
         for _ in 0..resamples {
@@ -469,6 +467,25 @@ impl Boot {
             values.sort_by(f64::total_cmp);
             Interval { lower: sorted_quantile(&values, alpha), upper: sorted_quantile(&values, 1.0 - alpha) }
         }))
+    }
+
+    /// Refits that end on the boundary, or an interval of the mean reaching far above it.
+    fn checks(&self, intervals: Option<[Interval; 3]>, mean: f64) -> Vec<String> {
+        let mut problems = Vec::new();
+        if self.replicates > 0 && self.at_boundary as f64 > 0.1 * self.replicates as f64 {
+            problems.push(format!(
+                "{} of {} bootstrap refits end on the parameter boundary",
+                self.at_boundary, self.replicates
+            ));
+        }
+        let upper = intervals.map_or(f64::NAN, |i| i[0].upper);
+        if upper > 3.0 * mean {
+            problems.push(format!(
+                "the bootstrap interval of the mean reaches {upper:.1} days, over three times \
+                 the estimate"
+            ));
+        }
+        problems
     }
 }
 

@@ -38,18 +38,6 @@ use crate::analysis::triangle::Triangle;
 /// Method name in results and on the command line.
 pub const METHOD: &str = "smooth";
 
-/// How the delay distribution may change over reference dates.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum DelayTrend {
-    /// One delay distribution for the whole window.
-    Fixed,
-    /// A smooth exponential tilt `b_t d / 7`: the distribution stretches or shrinks.
-    Scale,
-    /// Tilts `b_t d / 7 + c_t ln(1 + d)`: mean and shape may both change (the two sufficient
-    /// statistics of the gamma family).
-    ScaleAndShape,
-}
-
 /// Parameters of the `smooth` nowcast.
 #[derive(Debug, Clone, PartialEq)]
 pub struct SmoothParams {
@@ -58,14 +46,22 @@ pub struct SmoothParams {
     pub window: usize,
     /// Precision of the second-order random walk on log incidence (the prior sd of a second
     /// difference is `1 / sqrt(penalty)`). Default `None`: chosen by Laplace marginal
-    /// likelihood over 10^-1 .. 10^5.
+    /// likelihood over 10^-1, 10^-0.5, .., 10^5.
     pub incidence_penalty: Option<f64>,
-    /// How the delay distribution may change over time (default `ScaleAndShape`).
-    pub delay_trend: DelayTrend,
-    /// Precision of the daily random-walk steps of the delay tilts (a prior sd of
-    /// `1 / sqrt(penalty)` per day for each tilt coefficient). Default `None`: chosen by
-    /// Laplace marginal likelihood over 10^0 .. 10^4.
+    /// Whether the delay distribution may stretch or shrink over reference dates (default
+    /// true); false: one delay distribution for the whole window.
+    pub delay_changes: bool,
+    /// Precision per day of the random walk of the log stretch of the delay distribution (a
+    /// prior scale of `1 / sqrt(penalty)` per day). Default `None`: chosen by Laplace
+    /// marginal likelihood over 1, 10, .., 10^4.
     pub delay_trend_penalty: Option<f64>,
+    /// Degrees of freedom of the Student-t distribution of the log stretch's steps between
+    /// knots (default 2): heavy tails let a sudden change in reporting show as one large step
+    /// while the stretch stays smooth elsewhere. Zero or less: Gaussian steps.
+    pub delay_change_dof: f64,
+    /// Days between the knots of the log stretch (default 7, counted back from the last
+    /// date); it is linear between knots.
+    pub delay_trend_knots: usize,
     /// Precision of the second-difference penalty on the baseline log delay weights across
     /// delays, multiplied by `(1 + d)^2` at delay d (default 1). The log pmf of a gamma or
     /// lognormal delay bends like `1 / d^2`, so this leaves such shapes nearly free while
@@ -84,8 +80,10 @@ impl Default for SmoothParams {
         SmoothParams {
             window: 120,
             incidence_penalty: None,
-            delay_trend: DelayTrend::ScaleAndShape,
+            delay_changes: true,
             delay_trend_penalty: None,
+            delay_change_dof: 2.0,
+            delay_trend_knots: 7,
             delay_shape_penalty: 1.0,
             overdispersion: true,
             draws: 1000,
@@ -233,8 +231,9 @@ fn predict(
     if !delay.converged {
         problems.push("the delay model fit did not fully converge".to_string());
     }
+    let baseline = delay_model.baseline(&delay.minimum.x);
     let log_completeness: Vec<f64> =
-        (0..window.len()).map(|r| delay_model.log_completeness(&delay.minimum.x, r)).collect();
+        (0..window.len()).map(|r| delay_model.log_completeness(&baseline, &delay.minimum.x, r)).collect();
     let Some(incidence) = fit_incidence(window, &log_completeness, params) else {
         problems.push(
             "the incidence model could not be fitted: the nowcast is the count observed so far".to_string(),
@@ -272,15 +271,159 @@ fn assemble_rows(tri: &Triangle, window: &Window, predictive: Option<Predictive>
 }
 
 // ---------------------------------------------------------------------------------------
-// Delay model: multinomial logit with tilts that follow random walks over reference dates
+// Delay model: a baseline delay distribution stretched in time by a factor that follows a
+// random walk over reference dates
+
+/// Knots of the log stretch over the window's reference dates: every `spacing` rows counted
+/// back from the last row, plus the first row; a row's log stretch interpolates linearly
+/// between the two knots around it.
+#[derive(Debug)]
+struct Knots {
+    positions: Vec<usize>,
+    /// For each window row: (lower knot, its weight, upper knot, its weight).
+    weights: Vec<(usize, f64, usize, f64)>,
+}
+
+impl Knots {
+    fn new(rows: usize, spacing: usize) -> Knots {
+        let spacing = spacing.max(1);
+        let mut positions: Vec<usize> =
+            (0..).map(|i| i * spacing).take_while(|&back| back < rows).map(|back| rows - 1 - back).collect();
+        if positions.last() != Some(&0) {
+            positions.push(0);
+        }
+        positions.reverse();
+        let weights = (0..rows).map(|r| Knots::interpolate(&positions, r)).collect();
+        Knots { positions, weights }
+    }
+
+    fn interpolate(positions: &[usize], r: usize) -> (usize, f64, usize, f64) {
+        let upper = positions.partition_point(|&p| p < r).min(positions.len() - 1);
+        if upper == 0 || positions[upper] == r {
+            return (upper, 1.0, upper, 0.0);
+        }
+        let (lo, hi) = (positions[upper - 1], positions[upper]);
+        let u = (r - lo) as f64 / (hi - lo) as f64;
+        (upper - 1, 1.0 - u, upper, u)
+    }
+
+    fn len(&self) -> usize {
+        self.positions.len()
+    }
+}
+
+/// The baseline delay distribution as a continuous cdf G on [0, D + 1]: linear within each
+/// day from day 1 on (reports spread evenly over the day), and a power law `G(u) = G(1) u^a`
+/// within day 0 with `a = log2(G(2) / G(1))`, so that a stretched distribution starts
+/// rising the way its first two days do instead of jumping.
+#[derive(Debug)]
+struct Baseline {
+    pmf: Vec<f64>,
+    /// `prefix[j]`: the baseline cdf at day j (the sum of the pmf below j).
+    prefix: Vec<f64>,
+    /// Exponent of the power law within day 0.
+    power: f64,
+}
+
+impl Baseline {
+    fn new(log_weights: &[f64]) -> Baseline {
+        let pmf = softmax(log_weights);
+        let mut prefix = Vec::with_capacity(pmf.len() + 1);
+        prefix.push(0.0);
+        for p in &pmf {
+            prefix.push(prefix.last().copied().unwrap_or(0.0) + p);
+        }
+        let power = if pmf.len() > 1 { (1.0 + pmf[1] / pmf[0]).log2() } else { 1.0 };
+        Baseline { pmf, prefix, power }
+    }
+
+    fn end(&self) -> f64 {
+        self.pmf.len() as f64
+    }
+
+    fn cdf(&self, u: f64) -> f64 {
+        if u <= 0.0 {
+            0.0
+        } else if u < 1.0 {
+            self.pmf[0] * u.powf(self.power)
+        } else if u >= self.end() {
+            1.0
+        } else {
+            let j = u.floor() as usize;
+            self.prefix[j] + (u - j as f64) * self.pmf[j]
+        }
+    }
+
+    /// Density just below u (the derivative of the cdf from the left).
+    fn density_below(&self, u: f64) -> f64 {
+        if u <= 0.0 || u > self.end() {
+            0.0
+        } else if u <= 1.0 {
+            self.power * self.pmf[0] * u.powf(self.power - 1.0)
+        } else {
+            self.pmf[u.ceil() as usize - 1]
+        }
+    }
+
+    /// `pi_i dG(u)/dpi_i` for u within day 0 (only days 0 and 1 enter), as (day, value).
+    fn first_day_gradient(&self, u: f64) -> [(usize, f64); 2] {
+        if u <= 0.0 || self.pmf.len() < 2 {
+            return [(0, self.cdf(u.min(1.0))), (1, 0.0)];
+        }
+        let g = self.cdf(u.min(1.0));
+        let log_u = u.min(1.0).ln();
+        let two = self.pmf[0] + self.pmf[1];
+        // a = log2(two / pi_0): da/dpi_0 = (1/two - 1/pi_0) / ln 2, da/dpi_1 = (1/two) / ln 2.
+        let da0 = (1.0 / two - 1.0 / self.pmf[0]) / std::f64::consts::LN_2;
+        let da1 = (1.0 / two) / std::f64::consts::LN_2;
+        [(0, g * (1.0 + self.pmf[0] * log_u * da0)), (1, g * self.pmf[1] * log_u * da1)]
+    }
+
+    /// The baseline mass of `[u0, u1)` and `pi_i dmass/dpi_i` for the days it depends on.
+    /// The mass is homogeneous of degree 1 in the pmf, so these sum to the mass.
+    fn mass_gradient(&self, u0: f64, u1: f64) -> (f64, Vec<(usize, f64)>) {
+        let mass = self.cdf(u1) - self.cdf(u0);
+        let mut gradient = Vec::new();
+        if u0 < 1.0 {
+            let [(i0, a0), (i1, a1)] = self.first_day_gradient(u1);
+            let [(_, b0), (_, b1)] = self.first_day_gradient(u0);
+            gradient.push((i0, a0 - b0));
+            if self.pmf.len() > 1 {
+                gradient.push((i1, a1 - b1));
+            }
+        }
+        let last = (u1.min(self.end()).ceil() as usize).min(self.pmf.len());
+        for j in (u0.floor() as usize).max(1)..last {
+            let overlap = u1.min(j as f64 + 1.0) - u0.max(j as f64);
+            if overlap > 0.0 {
+                match gradient.iter_mut().find(|(i, _)| *i == j) {
+                    Some(entry) => entry.1 += overlap * self.pmf[j],
+                    None => gradient.push((j, overlap * self.pmf[j])),
+                }
+            }
+        }
+        (mass, gradient)
+    }
+}
+
+/// Largest log stretch used (a factor of e^3, about 20, either way).
+const MAX_LOG_STRETCH: f64 = 3.0;
+/// Precision that pins the first knot's log stretch to zero: the baseline is the delay
+/// distribution at the start of the window.
+const ANCHOR: f64 = 1e6;
 
 #[derive(Debug)]
 struct DelayModel<'a> {
     window: &'a Window,
-    /// `basis[d][j]`: the tilt covariates of delay d.
-    basis: Vec<Vec<f64>>,
+    /// Whether the log stretch varies (one coefficient per knot) or not.
     terms: usize,
+    knots: Knots,
+    /// Baseline smoothness, anchor and ridge (fixed quadratic part of the penalty).
     penalty: Matrix,
+    /// Precision per day of the log stretch's random-walk steps.
+    trend_penalty: f64,
+    /// Degrees of freedom of the Student-t steps (infinite: Gaussian).
+    dof: f64,
 }
 
 #[derive(Debug)]
@@ -291,58 +434,97 @@ struct DelayFit {
 
 impl<'a> DelayModel<'a> {
     fn new(window: &'a Window, params: &SmoothParams, trend_penalty: f64) -> DelayModel<'a> {
-        let terms = match params.delay_trend {
-            DelayTrend::Fixed => 0,
-            DelayTrend::Scale => 1,
-            DelayTrend::ScaleAndShape => 2,
-        };
-        let basis = (0..=window.max_delay)
-            .map(|d| [d as f64 / 7.0, (1.0 + d as f64).ln()].into_iter().take(terms).collect())
-            .collect();
-        let mut model = DelayModel { window, basis, terms, penalty: Matrix::zeros(0) };
-        model.penalty = model.penalty_matrix(params.delay_shape_penalty, trend_penalty);
+        let terms = usize::from(params.delay_changes);
+        let knots = Knots::new(window.len(), params.delay_trend_knots);
+        let dof = if params.delay_change_dof > 0.0 { params.delay_change_dof } else { f64::INFINITY };
+        let mut model = DelayModel { window, terms, knots, penalty: Matrix::zeros(0), trend_penalty, dof };
+        model.penalty = model.baseline_penalty(params.delay_shape_penalty);
         model
     }
 
     fn len(&self) -> usize {
-        self.window.max_delay + 1 + self.terms * self.window.len()
+        self.window.max_delay + 1 + self.terms * self.knots.len()
     }
 
-    fn tilt_index(&self, r: usize, j: usize) -> usize {
-        self.window.max_delay + 1 + r * self.terms + j
+    fn knot_index(&self, knot: usize) -> usize {
+        self.window.max_delay + 1 + knot
     }
 
-    /// Second differences of the baseline across delays, first differences of each tilt
-    /// across reference dates, and the ridge.
-    fn penalty_matrix(&self, shape_penalty: f64, trend_penalty: f64) -> Matrix {
+    /// Second differences of the baseline across delays, the anchor, and the ridge.
+    fn baseline_penalty(&self, shape_penalty: f64) -> Matrix {
         let mut p = Matrix::zeros(self.len());
         for d in 2..=self.window.max_delay {
             // Centred at d - 1; weight (1 + (d - 1))^2 (see `SmoothParams::delay_shape_penalty`).
             p.add_outer(&[(d, 1.0), (d - 1, -2.0), (d - 2, 1.0)], shape_penalty * (d * d) as f64);
         }
-        for j in 0..self.terms {
-            for r in 1..self.window.len() {
-                p.add_outer(
-                    &[(self.tilt_index(r, j), 1.0), (self.tilt_index(r - 1, j), -1.0)],
-                    trend_penalty,
-                );
-            }
+        if self.terms > 0 {
+            p.add(self.knot_index(0), self.knot_index(0), ANCHOR);
         }
         (0..self.len()).for_each(|i| p.add(i, i, RIDGE));
         p
     }
 
-    /// Log weights `alpha_d + tilt_r(d)` of window row r for delays 0..=upto.
-    fn log_weights(&self, theta: &[f64], r: usize, upto: usize) -> Vec<f64> {
-        let tilts = &theta[self.tilt_index(r, 0)..self.tilt_index(r, 0) + self.terms];
-        (0..=upto).map(|d| theta[d] + dot(tilts, &self.basis[d])).collect()
+    /// The steps of the log stretch between consecutive knots: (knot, days since the
+    /// previous knot, step, squared step scaled to its precision).
+    fn steps<'s>(&'s self, theta: &'s [f64]) -> impl Iterator<Item = (usize, f64, f64, f64)> + 's {
+        (1..self.knots.len()).filter(|_| self.terms > 0).map(move |k| {
+            let gap = (self.knots.positions[k] - self.knots.positions[k - 1]) as f64;
+            let step = theta[self.knot_index(k)] - theta[self.knot_index(k - 1)];
+            (k, gap, step, self.trend_penalty * step * step / gap)
+        })
+    }
+
+    /// Minus the log prior density of one step (up to a constant): `q / 2` for Gaussian
+    /// steps, `(dof + 1) / 2 ln(1 + q / dof)` for Student-t steps, q the scaled squared step.
+    fn step_penalty(&self, scaled: f64) -> f64 {
+        if self.dof.is_finite() { 0.5 * (self.dof + 1.0) * (scaled / self.dof).ln_1p() } else { 0.5 * scaled }
+    }
+
+    /// Weight of a step in the reweighted quadratic (IRLS) form of its penalty: the
+    /// derivative of `step_penalty` with respect to `q / 2`.
+    fn step_weight(&self, scaled: f64) -> f64 {
+        if self.dof.is_finite() { (self.dof + 1.0) / (self.dof + scaled) } else { 1.0 }
+    }
+
+    /// Adds the steps' penalty gradient and reweighted Hessian.
+    fn add_step_derivatives(&self, theta: &[f64], gradient: &mut [f64], hessian: &mut Matrix) {
+        for (k, gap, step, scaled) in self.steps(theta) {
+            let weight = self.step_weight(scaled) * self.trend_penalty / gap;
+            let (hi, lo) = (self.knot_index(k), self.knot_index(k - 1));
+            gradient[hi] += weight * step;
+            gradient[lo] -= weight * step;
+            hessian.add_outer(&[(hi, 1.0), (lo, -1.0)], weight);
+        }
+    }
+
+    /// Laplace approximation of the log marginal likelihood, up to a constant that does not
+    /// depend on the step precision: `-f + (S / 2) ln(precision) - ln|H| / 2` with S steps.
+    fn evidence(&self, minimum: &Minimum) -> f64 {
+        let steps = (self.terms * (self.knots.len() - 1)) as f64;
+        -minimum.value + 0.5 * steps * self.trend_penalty.ln() - 0.5 * minimum.hessian.log_det()
+    }
+
+    /// The stretch factor of window row r, and the knots it comes from with their weights.
+    fn stretch(&self, theta: &[f64], r: usize) -> (f64, [(usize, f64); 2]) {
+        let (lo, w_lo, hi, w_hi) = self.knots.weights[r];
+        if self.terms == 0 {
+            return (1.0, [(0, 0.0), (0, 0.0)]);
+        }
+        let log_stretch = w_lo * theta[self.knot_index(lo)] + w_hi * theta[self.knot_index(hi)];
+        (log_stretch.clamp(-MAX_LOG_STRETCH, MAX_LOG_STRETCH).exp(), [(lo, w_lo), (hi, w_hi)])
+    }
+
+    fn baseline(&self, theta: &[f64]) -> Baseline {
+        Baseline::new(&theta[..=self.window.max_delay])
     }
 
     /// `ln F_r(k_r)`: log of the share of row r's eventual count reported by its largest
-    /// observed delay.
-    fn log_completeness(&self, theta: &[f64], r: usize) -> f64 {
-        let weights = self.log_weights(theta, r, self.window.max_delay);
-        log_sum_exp(&weights[..=self.window.observed[r]]) - log_sum_exp(&weights)
+    /// observed delay. Delay d of row r covers baseline days `[d, d + 1) / stretch`.
+    fn log_completeness(&self, baseline: &Baseline, theta: &[f64], r: usize) -> f64 {
+        let (stretch, _) = self.stretch(theta, r);
+        let reported = (self.window.observed[r] + 1) as f64 / stretch;
+        let all = (self.window.max_delay + 1) as f64 / stretch;
+        baseline.cdf(reported).ln() - baseline.cdf(all).ln()
     }
 
     /// Rows that inform the delay split: more than one observed delay and some reports.
@@ -350,6 +532,7 @@ impl<'a> DelayModel<'a> {
         (0..self.window.len()).filter(|&r| self.window.observed[r] > 0 && self.window.totals[r] > 0.0)
     }
 
+    /// Start: log shares of the pooled complete rows, no stretch.
     fn initial(&self) -> Vec<f64> {
         let mut theta = vec![0.0; self.len()];
         let complete = (0..self.window.len()).filter(|&r| self.window.observed[r] == self.window.max_delay);
@@ -362,19 +545,135 @@ impl<'a> DelayModel<'a> {
         theta
     }
 
-    /// Laplace approximation of the log marginal likelihood (up to a constant).
-    fn evidence(&self, minimum: &Minimum) -> Option<f64> {
-        laplace_evidence(&self.penalty, minimum)
+    /// Log likelihood of row r's split over its observed delays:
+    /// `sum_d n_d ln A_d - O ln C`, A_d the baseline mass of delay d's stretched interval and
+    /// C their sum.
+    fn row_log_likelihood(&self, baseline: &Baseline, theta: &[f64], r: usize) -> f64 {
+        let (stretch, _) = self.stretch(theta, r);
+        let k = self.window.observed[r];
+        let mut sum = 0.0;
+        for (d, &n) in self.window.n[r].iter().enumerate().take(k + 1) {
+            if n > 0.0 {
+                let mass = baseline.cdf((d + 1) as f64 / stretch) - baseline.cdf(d as f64 / stretch);
+                sum += n * mass.ln();
+            }
+        }
+        sum - self.window.totals[r] * baseline.cdf((k + 1) as f64 / stretch).ln()
+    }
+
+    /// Adds row r's score and Fisher information. With `x_d` the gradient of `ln A_d` in the
+    /// baseline weights (through the responsibilities `pi_j overlap_dj / A_d`) and the log
+    /// stretch, and `q_d = A_d / C`: score `sum_d (n_d - O q_d) x_d`, information
+    /// `O (sum_d q_d x_d x_d^T - xbar xbar^T)` with `xbar = sum_d q_d x_d` (the softmax
+    /// normaliser cancels).
+    fn add_row_derivatives(
+        &self,
+        baseline: &Baseline,
+        theta: &[f64],
+        r: usize,
+        gradient: &mut [f64],
+        hessian: &mut Matrix,
+    ) {
+        let (stretch, knots) = self.stretch(theta, r);
+        let k = self.window.observed[r];
+        let total = self.window.totals[r];
+        let top = (((k + 1) as f64 / stretch).floor() as usize).clamp(1, self.window.max_delay);
+        let slot = top + 1; // local index of the log stretch
+        let norm = baseline.cdf((k + 1) as f64 / stretch);
+        let mut xbar = vec![0.0; top + 2];
+        let mut score = vec![0.0; top + 2];
+        let mut info = Matrix::zeros(top + 2);
+        for d in 0..=k {
+            let (u0, u1) = (d as f64 / stretch, (d + 1) as f64 / stretch);
+            let (mass, gradient) = baseline.mass_gradient(u0, u1);
+            if !(mass > 0.0) {
+                continue;
+            }
+            let mut x: Vec<(usize, f64)> = gradient.into_iter().map(|(j, v)| (j, v / mass)).collect();
+            if self.terms > 0 {
+                x.push((slot, -(u1 * baseline.density_below(u1) - u0 * baseline.density_below(u0)) / mass));
+            }
+            let q = mass / norm;
+            let residual = self.window.n[r][d] - total * q;
+            for &(i, v) in &x {
+                xbar[i] += q * v;
+                score[i] += residual * v;
+            }
+            info.add_outer(&x, total * q);
+        }
+        for i in 0..xbar.len() {
+            for j in 0..xbar.len() {
+                info.add(i, j, -total * xbar[i] * xbar[j]);
+            }
+        }
+        self.scatter(&score, &info, slot, knots, gradient, hessian);
+    }
+
+    /// Adds a row's local score and information to the global gradient (of the negative log
+    /// likelihood) and Hessian; the local log-stretch slot maps to the row's two knots.
+    fn scatter(
+        &self,
+        score: &[f64],
+        info: &Matrix,
+        slot: usize,
+        knots: [(usize, f64); 2],
+        gradient: &mut [f64],
+        hessian: &mut Matrix,
+    ) {
+        let targets = |i: usize| -> Vec<(usize, f64)> {
+            if i < slot {
+                vec![(i, 1.0)]
+            } else if self.terms > 0 {
+                knots.iter().filter(|(_, w)| *w > 0.0).map(|&(knot, w)| (self.knot_index(knot), w)).collect()
+            } else {
+                Vec::new()
+            }
+        };
+        let mapped: Vec<Vec<(usize, f64)>> = (0..score.len()).map(targets).collect();
+        for (i, to) in mapped.iter().enumerate() {
+            for &(gi, wi) in to {
+                gradient[gi] -= wi * score[i];
+                for (j, to_j) in mapped.iter().enumerate() {
+                    for &(gj, wj) in to_j {
+                        hessian.add(gi, gj, wi * wj * info.at(i, j));
+                    }
+                }
+            }
+        }
     }
 }
 
-/// Fits the delay model, choosing the strength of the tilts' random walks by Laplace
+impl Objective for DelayModel<'_> {
+    /// Negative penalized log likelihood of the split of each row over its observed delays.
+    fn value(&self, theta: &[f64]) -> f64 {
+        let baseline = self.baseline(theta);
+        let log_lik: f64 =
+            self.informative_rows().map(|r| self.row_log_likelihood(&baseline, theta, r)).sum();
+        let steps: f64 = self.steps(theta).map(|(.., scaled)| self.step_penalty(scaled)).sum();
+        0.5 * self.penalty.quadratic(theta) + steps - log_lik
+    }
+
+    /// Exact gradient; the Hessian is the Fisher information plus the penalty, with the
+    /// Student-t steps in reweighted (IRLS) form, which keeps it positive definite.
+    fn derivatives(&self, theta: &[f64]) -> (Vec<f64>, Matrix) {
+        let baseline = self.baseline(theta);
+        let mut gradient = self.penalty.times(theta);
+        let mut hessian = self.penalty.clone();
+        self.add_step_derivatives(theta, &mut gradient, &mut hessian);
+        for r in self.informative_rows() {
+            self.add_row_derivatives(&baseline, theta, r, &mut gradient, &mut hessian);
+        }
+        (gradient, hessian)
+    }
+}
+
+/// Fits the delay model, choosing the precision of the log stretch's random walk by Laplace
 /// marginal likelihood unless it is given.
 fn fit_delay<'a>(window: &'a Window, params: &SmoothParams) -> Option<(DelayModel<'a>, DelayFit)> {
-    let strengths: Vec<f64> = match (params.delay_trend, params.delay_trend_penalty) {
-        (DelayTrend::Fixed, _) => vec![1.0],
-        (_, Some(strength)) => vec![strength.max(0.0)],
-        (_, None) => (0..=8).map(|i| 10f64.powf(i as f64 / 2.0)).collect(),
+    let strengths: Vec<f64> = match (params.delay_changes, params.delay_trend_penalty) {
+        (false, _) => vec![1.0],
+        (true, Some(strength)) => vec![strength.max(1e-9)],
+        (true, None) => (0..=4).map(|i| 10f64.powi(i)).collect(),
     };
     let mut best: Option<(f64, DelayModel<'a>, DelayFit)> = None;
     let mut start: Option<Vec<f64>> = None;
@@ -382,72 +681,13 @@ fn fit_delay<'a>(window: &'a Window, params: &SmoothParams) -> Option<(DelayMode
         let model = DelayModel::new(window, params, strength);
         let initial = start.take().unwrap_or_else(|| model.initial());
         let Some((minimum, converged)) = minimise(&model, initial) else { continue };
-        let Some(evidence) = model.evidence(&minimum) else { continue };
+        let evidence = model.evidence(&minimum);
         start = Some(minimum.x.clone());
         if best.as_ref().is_none_or(|(e, ..)| evidence > *e) {
             best = Some((evidence, model, DelayFit { minimum, converged }));
         }
     }
     best.map(|(_, model, fit)| (model, fit))
-}
-
-impl Objective for DelayModel<'_> {
-    /// Negative penalized log likelihood of the split of each row over its observed delays.
-    fn value(&self, theta: &[f64]) -> f64 {
-        let log_lik: f64 = self
-            .informative_rows()
-            .map(|r| {
-                let w = self.log_weights(theta, r, self.window.observed[r]);
-                dot(&self.window.n[r], &w) - self.window.totals[r] * log_sum_exp(&w)
-            })
-            .sum();
-        0.5 * self.penalty.quadratic(theta) - log_lik
-    }
-
-    fn derivatives(&self, theta: &[f64]) -> (Vec<f64>, Matrix) {
-        let mut gradient = self.penalty.times(theta);
-        let mut hessian = self.penalty.clone();
-        for r in self.informative_rows() {
-            self.add_row_derivatives(theta, r, &mut gradient, &mut hessian);
-        }
-        (gradient, hessian)
-    }
-}
-
-impl DelayModel<'_> {
-    /// Adds row r's multinomial score and information: for log weights w with softmax pi and
-    /// total O, the score is `n - O pi` and the information `O (diag pi - pi pi^T)`, mapped to
-    /// the baseline (identity) and the row's tilts (basis).
-    fn add_row_derivatives(&self, theta: &[f64], r: usize, gradient: &mut [f64], hessian: &mut Matrix) {
-        let k = self.window.observed[r];
-        let total = self.window.totals[r];
-        let pi = softmax(&self.log_weights(theta, r, k));
-        let zbar: Vec<f64> =
-            (0..self.terms).map(|j| (0..=k).map(|d| pi[d] * self.basis[d][j]).sum()).collect();
-        let tilt = self.tilt_index(r, 0);
-        for d in 0..=k {
-            let residual = self.window.n[r][d] - total * pi[d];
-            gradient[d] -= residual;
-            for j in 0..self.terms {
-                gradient[tilt + j] -= residual * self.basis[d][j];
-            }
-            hessian.add(d, d, total * pi[d]);
-            for e in 0..=k {
-                hessian.add(d, e, -total * pi[d] * pi[e]);
-            }
-            for j in 0..self.terms {
-                let v = total * pi[d] * (self.basis[d][j] - zbar[j]);
-                hessian.add(d, tilt + j, v);
-                hessian.add(tilt + j, d, v);
-            }
-        }
-        for j in 0..self.terms {
-            for l in 0..self.terms {
-                let second: f64 = (0..=k).map(|d| pi[d] * self.basis[d][j] * self.basis[d][l]).sum();
-                hessian.add(tilt + j, tilt + l, total * (second - zbar[j] * zbar[l]));
-            }
-        }
-    }
 }
 
 // ---------------------------------------------------------------------------------------
@@ -464,6 +704,8 @@ struct IncidenceModel<'a> {
 #[derive(Debug)]
 struct IncidenceFit {
     minimum: Minimum,
+    /// Laplace posterior covariance of log incidence.
+    covariance: Matrix,
     /// Fitted means of the reported totals, `lambda_t F_t`.
     fitted: Vec<f64>,
     /// Quasi-Poisson dispersion (1 for Poisson-like data).
@@ -527,13 +769,11 @@ fn fit_incidence(window: &Window, log_completeness: &[f64], params: &SmoothParam
         }
     }
     let (_, minimum) = best?;
+    let covariance = minimum.hessian.inverse();
     let fitted: Vec<f64> = minimum.x.iter().zip(log_completeness).map(|(e, o)| (e + o).exp()).collect();
-    let dispersion = if params.overdispersion {
-        pearson_dispersion(&window.totals, &fitted, &minimum.covariance)
-    } else {
-        1.0
-    };
-    Some(IncidenceFit { minimum, fitted, dispersion })
+    let dispersion =
+        if params.overdispersion { pearson_dispersion(&window.totals, &fitted, &covariance) } else { 1.0 };
+    Some(IncidenceFit { minimum, covariance, fitted, dispersion })
 }
 
 /// Laplace approximation of the log marginal likelihood (up to a constant):
@@ -568,9 +808,7 @@ fn pearson_dispersion(totals: &[f64], fitted: &[f64], covariance: &Matrix) -> f6
 struct Sampler<'a> {
     delay_model: &'a DelayModel<'a>,
     theta: &'a [f64],
-    /// Delay coefficients that matter for incomplete rows, and the Cholesky factor of their
-    /// posterior covariance.
-    theta_indices: Vec<usize>,
+    /// Cholesky factor of the posterior covariance of the delay coefficients.
     theta_factor: Cholesky,
     /// Incomplete window rows, their fitted log incidence and log completeness.
     rows: Vec<usize>,
@@ -592,12 +830,8 @@ impl<'a> Sampler<'a> {
         window: &Window,
     ) -> Option<Sampler<'a>> {
         let rows = window.incomplete();
-        let mut theta_indices: Vec<usize> = (0..=window.max_delay).collect();
-        for &r in &rows {
-            theta_indices.extend((0..delay_model.terms).map(|j| delay_model.tilt_index(r, j)));
-        }
-        let theta_factor = delay.minimum.covariance.submatrix(&theta_indices).cholesky()?;
-        let sigma = &incidence.minimum.covariance;
+        let theta_factor = delay.minimum.hessian.inverse().cholesky()?;
+        let sigma = &incidence.covariance;
         let response = rows
             .iter()
             .map(|&i| rows.iter().map(|&c| -sigma.at(i, c) * incidence.fitted[c]).collect())
@@ -607,7 +841,6 @@ impl<'a> Sampler<'a> {
         Some(Sampler {
             delay_model,
             theta: &delay.minimum.x,
-            theta_indices,
             theta_factor,
             eta: rows.iter().map(|&r| incidence.minimum.x[r]).collect(),
             log_completeness: rows.iter().map(|&r| log_completeness[r]).collect(),
@@ -624,8 +857,9 @@ impl<'a> Sampler<'a> {
         let mut theta = self.theta.to_vec();
         for _ in 0..draws {
             self.draw_theta(&mut rng, &mut theta);
+            let baseline = self.delay_model.baseline(&theta);
             let log_f: Vec<f64> =
-                self.rows.iter().map(|&r| self.delay_model.log_completeness(&theta, r)).collect();
+                self.rows.iter().map(|&r| self.delay_model.log_completeness(&baseline, &theta, r)).collect();
             let eta = self.draw_eta(&mut rng, &log_f);
             for (i, &r) in self.rows.iter().enumerate() {
                 let unreported = eta[i].min(MAX_LOG_RATE).exp() * -log_f[i].exp_m1();
@@ -644,7 +878,7 @@ impl<'a> Sampler<'a> {
 
     fn draw_theta(&self, rng: &mut impl Rng, theta: &mut [f64]) {
         let shift = self.theta_factor.times_normal(rng);
-        for (&i, s) in self.theta_indices.iter().zip(shift) {
+        for (i, s) in shift.into_iter().enumerate() {
             theta[i] = self.theta[i] + s;
         }
     }
@@ -686,10 +920,9 @@ trait Objective {
 struct Minimum {
     x: Vec<f64>,
     value: f64,
-    /// Cholesky factor of the Hessian at `x`.
+    /// Cholesky factor of the Hessian at `x` (its inverse is the Laplace posterior
+    /// covariance).
     hessian: Cholesky,
-    /// Inverse Hessian: the Laplace posterior covariance.
-    covariance: Matrix,
 }
 
 /// Newton's method with backtracking; returns the minimum and whether it converged. `None`
@@ -701,7 +934,9 @@ fn minimise(objective: &impl Objective, mut x: Vec<f64>) -> Option<(Minimum, boo
         return None;
     }
     let mut converged = false;
+    let mut iterations = 0; // TRACE
     for _ in 0..MAX_ITERATIONS {
+        iterations += 1; // TRACE
         let (gradient, hessian) = objective.derivatives(&x);
         let step = hessian.cholesky()?.solve(&gradient);
         let decrement = dot(&gradient, &step);
@@ -719,10 +954,12 @@ fn minimise(objective: &impl Objective, mut x: Vec<f64>) -> Option<(Minimum, boo
         x = next;
         value = next_value;
     }
+    if std::env::var("SMOOTH_TRACE").is_ok() {
+        eprintln!("TRACE n={} iterations={iterations} converged={converged} value={value}", x.len());
+    } // TRACE
     let (_, hessian) = objective.derivatives(&x);
     let hessian = hessian.cholesky()?;
-    let covariance = hessian.inverse();
-    Some((Minimum { x, value, hessian, covariance }, converged))
+    Some((Minimum { x, value, hessian }, converged))
 }
 
 /// Halves the Newton step until the value decreases enough (Armijo condition).
@@ -953,20 +1190,69 @@ mod tests {
     #[test]
     #[ignore]
     fn explore() {
-        for (name, scenario) in [("constant", constant_scenario()), ("shift", shift_scenario())] {
-            for (trend, kb) in [(DelayTrend::Fixed, None), (DelayTrend::ScaleAndShape, None), (DelayTrend::ScaleAndShape, Some(100.0)), (DelayTrend::ScaleAndShape, Some(1000.0)), (DelayTrend::Scale, None)] {
-                let params = SmoothParams { delay_trend: trend, delay_trend_penalty: kb, draws: 500, ..SmoothParams::default() };
+        let incidence = epidemic_curve(100, 10.0, 150.0, 70.0, 18.0, 25.0);
+        let shift_at = |day: usize| {
+            Scenario::delay_shift(
+                incidence.clone(),
+                30,
+                discretised_gamma(3.0, 0.6, 30),
+                discretised_gamma(7.0, 0.6, 30),
+                day,
+            )
+        };
+        let cases: Vec<(&str, Scenario)> = vec![
+            ("constant", constant_scenario()),
+            ("shift80", shift_at(80)),
+            ("shift90", shift_at(90)),
+            ("shift70", shift_at(70)),
+        ];
+        let configs: Vec<(bool, Option<f64>, f64, usize)> = std::env::var("CONFIGS")
+            .ok()
+            .map(|v| {
+                v.split(',')
+                    .map(|c| {
+                        let f: Vec<&str> = c.split(':').collect();
+                        let trend = match f[0] {
+                            "F" => false,
+                            _ => true,
+                        };
+                        (
+                            trend,
+                            f[1].parse().ok(),
+                            f.get(2).and_then(|v| v.parse().ok()).unwrap_or(2.0),
+                            f.get(3).and_then(|v| v.parse().ok()).unwrap_or(7),
+                        )
+                    })
+                    .collect()
+            })
+            .unwrap_or_else(|| vec![(true, None, 2.0, 7)]);
+        let only: Option<String> = std::env::var("ONLY").ok();
+        for (name, scenario) in &cases {
+            if only.as_ref().is_some_and(|o| !o.split(',').any(|x| x == *name)) {
+                continue;
+            }
+            for &(trend, kb, dof, spacing) in &configs {
+                let params = SmoothParams {
+                    delay_changes: trend,
+                    delay_trend_penalty: kb,
+                    delay_change_dof: dof,
+                    delay_trend_knots: spacing,
+                    draws: 500,
+                    ..SmoothParams::default()
+                };
                 let mut acc = Score::default();
                 let mut by_h: Vec<Score> = (0..8).map(|_| Score::default()).collect();
                 let started = std::time::Instant::now();
                 for seed in 0..30 {
-                    let (tri, truth) = simulate(&scenario, seed);
+                    let (tri, truth) = simulate(scenario, seed);
                     let nc = nowcast(&tri, &params, seed);
                     score(&nc, &truth, 0..=7, &mut acc);
-                    for h in 0..8 { score(&nc, &truth, h..=h, &mut by_h[h]); }
+                    for h in 0..8 {
+                        score(&nc, &truth, h..=h, &mut by_h[h]);
+                    }
                 }
                 eprintln!(
-                    "{name} {trend:?} {kb:?}: cov90 {:.3} cov50 {:.3} wis {:.2} naive {:.2} bias {:.3} ({:?})\n   bias {:?}\n   wis {:?}\n   cov90 {:?}",
+                    "{name} {trend:?} {kb:?} dof {dof} knots {spacing}: cov90 {:.3} cov50 {:.3} wis {:.2} naive {:.2} bias {:.3} ({:?})\n   bias {:?}\n   wis {:?}\n   cov90 {:?}",
                     acc.covered90 / acc.n,
                     acc.covered50 / acc.n,
                     acc.wis / acc.n,
@@ -991,24 +1277,42 @@ mod debug_tests {
     #[ignore]
     fn debug_one() {
         let incidence = epidemic_curve(100, 10.0, 150.0, 70.0, 18.0, 25.0);
-        let scenario = Scenario::constant_delay(incidence, 30, discretised_gamma(5.0, 0.6, 30));
-        let (tri, truth) = simulate(&scenario, 3);
-        let params = SmoothParams { delay_trend: DelayTrend::Fixed, draws: 500, ..SmoothParams::default() };
-        let window = Window::new(&tri, &params, &mut vec![]);
-        let (model, fit) = fit_delay(&window, &params).unwrap();
-        let (fit, conv) = (fit.minimum, fit.converged);
-        eprintln!("converged {conv} value {}", fit.value);
-        let p = softmax(&model.log_weights(&fit.x, 0, 30));
-        eprintln!("p {:?}", p.iter().map(|v| format!("{v:.4}")).collect::<Vec<_>>());
-        eprintln!("true {:?}", scenario.delay_pmf(0).iter().map(|v| format!("{v:.4}")).collect::<Vec<_>>());
-        let lf: Vec<f64> = (0..window.len()).map(|r| model.log_completeness(&fit.x, r)).collect();
-        let inc = fit_incidence(&window, &lf, &params).unwrap();
-        eprintln!("dispersion {}", inc.dispersion);
-        let nc = nowcast(&tri, &params, 1);
-        for row in nc.rows.iter().rev().take(10) {
-            let y = truth[truth.len() - 1 - row.horizon];
-            eprintln!("h{} obs {} truth {} med {} [{}, {}] 95 [{}, {}] F {:.3}", row.horizon, row.observed, y, row.median, row.lower90, row.upper90, row.lower95, row.upper95, row.completeness);
+        let scenario = Scenario::delay_shift(
+            incidence,
+            30,
+            discretised_gamma(3.0, 0.6, 30),
+            discretised_gamma(7.0, 0.6, 30),
+            90,
+        );
+        let params = SmoothParams { draws: 500, ..SmoothParams::default() };
+        for seed in 0..30 {
+            let (tri, truth) = simulate(&scenario, seed);
+            let window = Window::new(&tri, &params, &mut vec![]);
+            let (model, fit) = fit_delay(&window, &params).unwrap();
+            let means: Vec<String> = [60, 85, 92, 96, 99]
+                .iter()
+                .map(|&r| {
+                    let (stretch, _) = model.stretch(&fit.minimum.x, r);
+                    let b = model.baseline(&fit.minimum.x);
+                    let mean: f64 = (0..=30)
+                        .map(|d| (d as f64) * (b.cdf((d + 1) as f64 / stretch) - b.cdf(d as f64 / stretch)))
+                        .sum::<f64>()
+                        / b.cdf(31.0 / stretch);
+                    format!("{mean:.2}")
+                })
+                .collect();
+            let nc = nowcast(&tri, &params, 1);
+            let row = &nc.rows[99];
+            eprintln!(
+                "seed {seed} kb {} means {means:?} h0 obs {} truth {} med {} [{}, {}] F {:.4}",
+                model.trend_penalty,
+                row.observed,
+                truth[99],
+                row.median,
+                row.lower90,
+                row.upper90,
+                row.completeness
+            );
         }
-        eprintln!("{:?}", nc.problems);
     }
 }

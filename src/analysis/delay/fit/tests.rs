@@ -159,7 +159,7 @@ fn negative_delays_are_excluded_and_empty_data_is_reported() {
 #[test]
 #[ignore]
 fn timing_100k_records() {
-    let growth = Growth { primaries: 400_000, ..GROWTH };
+    let growth = Growth { primaries: 600_000, ..GROWTH };
     let obs = observed(&growth, &Gamma::new(4.938, 1.0 / 0.2774).unwrap(), 21);
     assert!(obs.len() >= 100_000, "{}", obs.len());
     let obs = &obs[..100_000];
