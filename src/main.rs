@@ -117,6 +117,33 @@ enum Command {
         #[command(flatten)]
         listing: Listing,
     },
+    /// Reporting and other delays: summary and fits with censoring and truncation.
+    Delays {
+        #[arg(long)]
+        source: String,
+        /// Start: a date field.
+        #[arg(long, value_name = "FIELD")]
+        from: String,
+        /// End: a date field, or first_seen (the day the record first appeared in the store).
+        #[arg(long, value_name = "FIELD")]
+        to: String,
+        /// auto (lowest AIC), gamma, lognormal or weibull.
+        #[arg(long, default_value = "auto")]
+        family: String,
+        #[arg(long, value_name = "TIME")]
+        as_of: Option<String>,
+        /// One fit per stratum: jurisdiction, age or sex.
+        #[arg(long, value_name = "FIELD")]
+        stratify: Option<String>,
+        /// One row per week of the start date, to show a trend.
+        #[arg(long)]
+        by_week: bool,
+        /// Mann-Whitney U tests between the groups of this field.
+        #[arg(long, value_name = "FIELD")]
+        compare_by: Option<String>,
+        #[command(flatten)]
+        listing: Listing,
+    },
     /// Run one read-only SQL statement against the store.
     Query {
         sql: String,
@@ -261,6 +288,20 @@ fn run(cli: Cli) -> Result<u8> {
                 format: listing.format,
             };
             commands::backtest(&load(flag)?, &args)?
+        }
+        Command::Delays { source, from, to, family, as_of, stratify, by_week, compare_by, listing } => {
+            let args = commands::DelaysArgs {
+                source: &source,
+                from: &from,
+                to: &to,
+                family: &family,
+                as_of: as_of.as_deref(),
+                stratify: stratify.as_deref(),
+                by_week,
+                compare_by: compare_by.as_deref(),
+                format: listing.format,
+            };
+            commands::delays(&load(flag)?, &args)?
         }
         Command::Query { sql, listing } => commands::query(&load(flag)?, &sql, listing.format)?,
         Command::Run { no_ops } => {

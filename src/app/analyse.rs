@@ -6,9 +6,10 @@ use anyhow::{Context, Result};
 use chrono::{Days, NaiveDate};
 
 use crate::analysis::backtest::{self, BacktestCell, NAIVE};
+use crate::analysis::delay::{self, DelayFit, DelayObs, DelaySummary, FitOptions};
 use crate::analysis::nowcast::{Nowcast, hazard, smooth};
 use crate::analysis::triangle::{self, Triangle};
-use crate::config::{AnalysisConfig, Config, SourceConfig};
+use crate::config::{AnalysisConfig, Config, DelayEnd, SourceConfig};
 use crate::model::Field;
 use crate::store::{Reader, Store};
 
@@ -219,4 +220,72 @@ fn store_backtest(
 ) -> Result<()> {
     store.write_backtest(snapshot_id, source_id, request.field.name(), cells, (from, to, request.lag))?;
     Ok(())
+}
+
+/// Delay observations between two fields from the records valid at `snapshot_id`, by
+/// stratum label (`""` without stratification): each record's delay and its truncation
+/// horizon (the snapshot day minus the start date).
+pub fn delay_observations(
+    reader: &Reader,
+    source_id: i64,
+    snapshot_id: i64,
+    (from, to): (Field, DelayEnd),
+    stratum: Option<Field>,
+    age_edges: &[u32],
+) -> Result<Vec<(String, NaiveDate, DelayObs)>> {
+    let day = snapshot_day(reader, snapshot_id)?;
+    let to_field = match to {
+        DelayEnd::Field(field) => Some(field),
+        DelayEnd::FirstSeen => None,
+    };
+    let rows = reader.delay_rows(source_id, snapshot_id, from, to_field, stratum, age_edges)?;
+    Ok(rows
+        .into_iter()
+        .map(|r| {
+            let obs =
+                DelayObs { delay: (r.to - r.from).num_days(), horizon: Some((day - r.from).num_days()) };
+            (r.stratum, r.from, obs)
+        })
+        .collect())
+}
+
+/// Fits every family to one set of observations (best AIC first) and summarises them.
+pub fn fit_delays(obs: &[DelayObs], bootstrap: usize, seed: u64) -> (DelaySummary, Vec<DelayFit>) {
+    let delays: Vec<i64> = obs.iter().map(|o| o.delay).collect();
+    let options = FitOptions { bootstrap, ..FitOptions::default() };
+    (delay::summarize(&delays), delay::fit_all(obs, &options, seed))
+}
+
+/// After an applied snapshot: fit the configured delay distributions (whole source) and
+/// store them with the snapshot.
+pub fn delays_snapshot(
+    store: &mut Store,
+    config: &Config,
+    source: &SourceConfig,
+    snapshot_id: i64,
+) -> Result<usize> {
+    let reader = Reader::open(&config.store.path)?;
+    let Some(source_id) = reader.source_id(&source.name)? else { return Ok(0) };
+    let mut written = 0;
+    for &(from, to) in &config.analysis.delays {
+        let obs: Vec<DelayObs> = delay_observations(
+            &reader,
+            source_id,
+            snapshot_id,
+            (from, to),
+            None,
+            &config.analysis.age_bands,
+        )?
+        .into_iter()
+        .map(|(_, _, o)| o)
+        .collect();
+        if obs.is_empty() {
+            continue;
+        }
+        let seed = seed_for(snapshot_id, &TriangleKey::all(from), to.name());
+        let (_, fits) = fit_delays(&obs, config.analysis.bootstrap, seed);
+        store.write_delay_fits(snapshot_id, source_id, (from.name(), to.name(), "all", ""), &fits)?;
+        written += 1;
+    }
+    Ok(written)
 }

@@ -50,6 +50,8 @@ pub struct AnalysisConfig {
     pub backtest_lag: usize,
     /// Delay distributions fitted after each applied snapshot.
     pub delays: Vec<(Field, DelayEnd)>,
+    /// Bootstrap resamples behind the delay fits' intervals.
+    pub bootstrap: usize,
 }
 
 impl Default for AnalysisConfig {
@@ -69,6 +71,7 @@ impl Default for AnalysisConfig {
                 (Field::SpecimenDate, DelayEnd::Field(Field::ResultDate)),
                 (Field::OnsetDate, DelayEnd::Field(Field::DeathDate)),
             ],
+            bootstrap: 100,
         }
     }
 }
@@ -86,6 +89,7 @@ pub struct RawAnalysis {
     pub draws: Option<usize>,
     pub backtest_lag: Option<usize>,
     pub delays: Option<Vec<String>>,
+    pub bootstrap: Option<usize>,
 }
 
 pub fn build(raw: RawAnalysis, problems: &mut Vec<String>) -> AnalysisConfig {
@@ -114,6 +118,7 @@ pub fn build(raw: RawAnalysis, problems: &mut Vec<String>) -> AnalysisConfig {
     positive("window", raw.window, &mut config.window);
     positive("draws", raw.draws, &mut config.draws);
     positive("backtest_lag", raw.backtest_lag, &mut config.backtest_lag);
+    positive("bootstrap", raw.bootstrap, &mut config.bootstrap);
     if let Some(methods) = raw.nowcast_methods {
         for method in methods.iter().filter(|m| !NOWCAST_METHODS.contains(&m.as_str())) {
             push("nowcast_methods", format!("\"{method}\" is not one of hazard, smooth"));

@@ -10,6 +10,7 @@ use rusqlite::{Connection, params};
 use super::read::stratum_sql;
 use super::{Reader, Store, StoreError};
 use crate::analysis::backtest::BacktestCell;
+use crate::analysis::delay::DelayFit;
 use crate::analysis::nowcast::NowcastRow;
 use crate::model::Field;
 
@@ -138,6 +139,67 @@ impl Store {
                         r.completeness
                     ])?;
                 }
+            }
+        }
+        tx.commit()?;
+        Ok(())
+    }
+
+    /// Stores the delay fits of one (from, to, stratum kind, stratum) computed at
+    /// `snapshot_id`, ranked by AIC in the order given.
+    pub fn write_delay_fits(
+        &mut self,
+        snapshot_id: i64,
+        source_id: i64,
+        (from, to, kind, stratum): (&str, &str, &str, &str),
+        fits: &[DelayFit],
+    ) -> Result<(), StoreError> {
+        let tx = self.conn.transaction()?;
+        tx.execute(
+            "DELETE FROM delay_fit WHERE snapshot_id = ?1 AND from_field = ?2 AND to_field = ?3
+             AND stratum_kind = ?4 AND stratum = ?5",
+            params![snapshot_id, from, to, kind, stratum],
+        )?;
+        {
+            let mut stmt = tx.prepare(
+                "INSERT INTO delay_fit (snapshot_id, source_id, from_field, to_field, stratum_kind, stratum,
+                     family, n, param1, param2, log_likelihood, aic, rank, mean, mean_lo, mean_hi, median,
+                     median_lo, median_hi, p95, p95_lo, p95_hi, identifiable, warnings)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19,
+                     ?20, ?21, ?22, ?23, ?24)",
+            )?;
+            let finite = |x: f64| x.is_finite().then_some(x);
+            for (rank, f) in fits.iter().enumerate() {
+                let lo =
+                    |i: &Option<crate::analysis::delay::Interval>| i.as_ref().and_then(|i| finite(i.lower));
+                let hi =
+                    |i: &Option<crate::analysis::delay::Interval>| i.as_ref().and_then(|i| finite(i.upper));
+                stmt.execute(params![
+                    snapshot_id,
+                    source_id,
+                    from,
+                    to,
+                    kind,
+                    stratum,
+                    f.family.name(),
+                    f.n as i64,
+                    finite(f.params[0]),
+                    finite(f.params[1]),
+                    finite(f.log_likelihood),
+                    finite(f.aic),
+                    rank as i64 + 1,
+                    finite(f.mean),
+                    lo(&f.mean_interval),
+                    hi(&f.mean_interval),
+                    finite(f.median),
+                    lo(&f.median_interval),
+                    hi(&f.median_interval),
+                    finite(f.p95),
+                    lo(&f.p95_interval),
+                    hi(&f.p95_interval),
+                    f.identifiable,
+                    (!f.warnings.is_empty()).then(|| f.warnings.join("; ")),
+                ])?;
             }
         }
         tx.commit()?;
