@@ -535,7 +535,7 @@ pub fn backtest(config: &Config, args: &BacktestArgs<'_>) -> Result<String> {
         to: day(args.to)?,
         lag: args.lag.unwrap_or(config.analysis.backtest_lag),
         max_horizon: 14,
-        methods: config.analysis.nowcast_methods.clone(),
+        methods: config::analysis::NOWCAST_METHODS.iter().map(|m| m.to_string()).collect(),
     };
     let mut store = Store::open(&config.store.path)?;
     let (snapshot_id, cells, from, to) = analyse::backtest(&mut store, config, source, &request)?;

@@ -230,7 +230,7 @@ fn nowcast_against_truth(
         to: None,
         lag: config.analysis.backtest_lag,
         max_horizon: 14,
-        methods: config.analysis.nowcast_methods.clone(),
+        methods: crate::config::analysis::NOWCAST_METHODS.iter().map(|m| m.to_string()).collect(),
     };
     let mut store = Store::open(&config.store.path)?;
     let (_, cells, from, to) = analyse::backtest(&mut store, config, source, &request)?;
