@@ -29,7 +29,8 @@ fn triangles(strata: usize) -> Vec<tidemark::analysis::triangle::Triangle> {
     (0..strata)
         .map(|k| {
             let delay = simulate::discretised_gamma(6.0 + k as f64 * 0.5, 0.7, 60);
-            let incidence: Vec<f64> = (0..120).map(|t| 20.0 + 15.0 * ((t as f64) / 20.0).sin().abs()).collect();
+            let incidence: Vec<f64> =
+                (0..120).map(|t| 20.0 + 15.0 * ((t as f64) / 20.0).sin().abs()).collect();
             let scenario = Scenario {
                 days: 120,
                 max_delay: 60,
@@ -63,13 +64,21 @@ fn delay_records(n: usize) -> Vec<DelayObs> {
 fn main() {
     let cpu = std::fs::read_to_string("/proc/cpuinfo")
         .ok()
-        .and_then(|t| t.lines().find(|l| l.starts_with("model name")).map(|l| l.split(':').nth(1).unwrap_or("").trim().to_string()))
+        .and_then(|t| {
+            t.lines()
+                .find(|l| l.starts_with("model name"))
+                .map(|l| l.split(':').nth(1).unwrap_or("").trim().to_string())
+        })
         .unwrap_or_default();
     println!("machine: {} cores, {cpu}", std::thread::available_parallelism().map(|n| n.get()).unwrap_or(0));
     let tris = triangles(10);
     let params = hazard::HazardParams { draws: 2000, window: 42, ..hazard::HazardParams::default() };
-    let (took, rows) = best_of(3, || tris.iter().map(|t| hazard::nowcast(t, &params, 1).rows.len()).sum::<usize>());
-    println!("hazard nowcast, 10 strata x 120 days, D=60, 2000 draws: {:.3} s ({rows} rows; target <= 2 s)", took.as_secs_f64());
+    let (took, rows) =
+        best_of(3, || tris.iter().map(|t| hazard::nowcast(t, &params, 1).rows.len()).sum::<usize>());
+    println!(
+        "hazard nowcast, 10 strata x 120 days, D=60, 2000 draws: {:.3} s ({rows} rows; target <= 2 s)",
+        took.as_secs_f64()
+    );
     let smooth_params = smooth::SmoothParams { draws: 2000, ..smooth::SmoothParams::default() };
     let (took, _) = best_of(3, || smooth::nowcast(&tris[0], &smooth_params, 1).rows.len());
     println!("smooth nowcast, 1 stratum x 120 days, D=60, 2000 draws: {:.3} s", took.as_secs_f64());
