@@ -117,16 +117,30 @@ pub fn seed_for(snapshot_id: i64, key: &TriangleKey, method: &str) -> u64 {
     text.bytes().fold(0xcbf2_9ce4_8422_2325u64, |h, b| (h ^ b as u64).wrapping_mul(0x0100_0000_01b3))
 }
 
-/// After an applied snapshot: nowcast every maintained triangle and store the results. The
-/// whole source gets every configured method; strata get `hazard` (cheap enough for many).
-pub fn nowcast_snapshot(
+/// After an applied snapshot: the nowcasts and the delay fits of that snapshot, stored with
+/// it. Returns how many of each were written.
+pub fn analyse_snapshot(
     store: &mut Store,
     config: &Config,
     source: &SourceConfig,
     snapshot_id: i64,
-) -> Result<usize> {
+) -> Result<(usize, usize)> {
     let reader = Reader::open(&config.store.path)?;
-    let Some(source_id) = reader.source_id(&source.name)? else { return Ok(0) };
+    let Some(source_id) = reader.source_id(&source.name)? else { return Ok((0, 0)) };
+    let nowcasts = nowcast_snapshot(store, &reader, config, source_id, snapshot_id)?;
+    let delays = delays_snapshot(store, &reader, config, source_id, snapshot_id)?;
+    Ok((nowcasts, delays))
+}
+
+/// Nowcasts every maintained triangle. The whole source gets every configured method;
+/// strata get `hazard` (cheap enough for many).
+fn nowcast_snapshot(
+    store: &mut Store,
+    reader: &Reader,
+    config: &Config,
+    source_id: i64,
+    snapshot_id: i64,
+) -> Result<usize> {
     let analysis = &config.analysis;
     let mut results = Vec::new();
     for &field in &analysis.reference_fields {
@@ -138,7 +152,7 @@ pub fn nowcast_snapshot(
             }
         }
         for (key, methods) in keys {
-            let tri = load_triangle(&reader, source_id, snapshot_id, &key, analysis, 0)?;
+            let tri = load_triangle(reader, source_id, snapshot_id, &key, analysis, 0)?;
             for method in methods {
                 let nowcast = run_method(&method, &tri, analysis, seed_for(snapshot_id, &key, &method));
                 let recent: Vec<_> =
@@ -256,16 +270,14 @@ pub fn fit_delays(obs: &[DelayObs], bootstrap: usize, seed: u64) -> (DelaySummar
     (delay::summarize(&delays), delay::fit_all(obs, &options, seed))
 }
 
-/// After an applied snapshot: fit the configured delay distributions (whole source) and
-/// store them with the snapshot.
-pub fn delays_snapshot(
+/// Fits the configured delay distributions (whole source).
+fn delays_snapshot(
     store: &mut Store,
+    reader: &Reader,
     config: &Config,
-    source: &SourceConfig,
+    source_id: i64,
     snapshot_id: i64,
 ) -> Result<usize> {
-    let reader = Reader::open(&config.store.path)?;
-    let Some(source_id) = reader.source_id(&source.name)? else { return Ok(0) };
     let mut written = 0;
     for &(from, to) in &config.analysis.delays {
         let obs: Vec<DelayObs> = delay_observations(

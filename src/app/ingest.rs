@@ -119,16 +119,18 @@ pub fn ingest_archived(
     Ok(outcome)
 }
 
-/// Recomputes the nowcasts after an applied snapshot. A failure here is logged, not
-/// returned: the snapshot itself is applied and safe, and the next one recomputes.
+/// Recomputes the nowcasts and delay fits after an applied snapshot. A failure here is
+/// logged, not returned: the snapshot itself is applied and safe, and the next one
+/// recomputes.
 fn analyse_applied(store: &mut Store, config: &Config, source: &SourceConfig, snapshot_id: i64) {
     let started = std::time::Instant::now();
-    match super::analyse::nowcast_snapshot(store, config, source, snapshot_id) {
-        Ok(n) => {
-            tracing::debug!(source = %source.name, snapshot_id, nowcasts = n, ms = started.elapsed().as_millis() as u64, "nowcasts stored")
-        }
+    match super::analyse::analyse_snapshot(store, config, source, snapshot_id) {
+        Ok((nowcasts, delay_fits)) => tracing::debug!(
+            source = %source.name, snapshot_id, nowcasts, delay_fits,
+            ms = started.elapsed().as_millis() as u64, "analyses stored"
+        ),
         Err(err) => {
-            tracing::warn!(source = %source.name, snapshot_id, error = %format!("{err:#}"), "nowcasts not computed")
+            tracing::warn!(source = %source.name, snapshot_id, error = %format!("{err:#}"), "analyses not computed")
         }
     }
 }

@@ -124,7 +124,7 @@ nowcast_methods = ["hazard"]
 reference_fields = ["onset_date", "report_date"]
 strata = ["jurisdiction", "age"]
 delays = ["onset_date->report_date", "onset_date->first_seen", "onset_date->death_date"]
-bootstrap = 25
+bootstrap = 10
 
 [[source]]
 name = "county-reports"
