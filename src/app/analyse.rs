@@ -280,17 +280,11 @@ fn delays_snapshot(
 ) -> Result<usize> {
     let mut written = 0;
     for &(from, to) in &config.analysis.delays {
-        let obs: Vec<DelayObs> = delay_observations(
-            &reader,
-            source_id,
-            snapshot_id,
-            (from, to),
-            None,
-            &config.analysis.age_bands,
-        )?
-        .into_iter()
-        .map(|(_, _, o)| o)
-        .collect();
+        let obs: Vec<DelayObs> =
+            delay_observations(reader, source_id, snapshot_id, (from, to), None, &config.analysis.age_bands)?
+                .into_iter()
+                .map(|(_, _, o)| o)
+                .collect();
         if obs.is_empty() {
             continue;
         }

@@ -1,32 +1,37 @@
 //! The `smooth` nowcast: log incidence varies smoothly over reference dates and the delay
-//! distribution may change over time. Expected increments are `mu[t][d] = lambda_t p_t(d)`
-//! with Poisson counts. Because a Poisson row is a Poisson total times a multinomial split,
-//! the likelihood factorises exactly into (1) the split of each row's reports over its
-//! observed delays, a multinomial with probabilities `p_t(d) / F_t(k_t)` (`k_t` the largest
-//! observed delay, `F_t` the delay cdf), and (2) each row's reported total, Poisson with mean
-//! `lambda_t F_t(k_t)`. The model is fitted in that order, both parts by penalized Newton
-//! (IRLS), and uncertainty comes from Laplace (Gaussian) approximations of both posteriors.
+//! distribution may stretch or shrink over time. Expected increments are
+//! `mu[t][d] = lambda_t p_t(d)` with Poisson counts. A Poisson row is a Poisson total times a
+//! multinomial split, so the likelihood factorises exactly into (1) the split of each row's
+//! reports over its observed delays 0..=k_t, multinomial with probabilities
+//! `p_t(d) / F_t(k_t)` (`F_t` the delay cdf), and (2) each row's reported total, Poisson with
+//! mean `lambda_t F_t(k_t)`. The two parts are fitted in that order, each by penalized Newton
+//! (IRLS, Fisher scoring for the delays), and uncertainty comes from Laplace (Gaussian)
+//! approximations of both posteriors.
 //!
-//! Delay model: `p_t(d)` is a multinomial logit over delays 0..=D,
-//! `log p_t(d) = alpha_d + b_t d / 7 + c_t ln(1 + d) - normaliser`, with a second-difference
-//! penalty on `alpha` across delays and first-order random walks on `b_t` (a shift of the
-//! whole distribution, an exponential tilt) and `c_t` (a change of shape) over reference
-//! dates. The two tilts keep a discretised gamma delay close to a gamma when its mean or shape
-//! changes, and the random walks carry the change seen in recent, short-observed rows to the
-//! delays that have not been seen yet.
+//! Delay model: a baseline pmf over delays 0..=D (a multinomial logit, with a
+//! second-difference penalty across delays), read as a smooth cdf G (monotone cubic within
+//! each day), and a stretch factor `s_t = exp(sigma_t)` per reference date: row t's delays
+//! are the baseline's multiplied by `s_t`, `P(delay <= d) = G((d + 1) / s_t)`, conditioned on
+//! delay <= D. A reporting backlog that doubles every delay is `s = 2`. `sigma_t` is zero at
+//! the start of the window and follows a random walk over reference dates with Student-t
+//! steps (heavy tails: a sudden change in reporting is one large step, elsewhere the stretch
+//! stays smooth); its step precision is chosen by Laplace marginal likelihood. A stretch
+//! reads the well-reported short delays of the baseline to predict the long delays of recent
+//! rows, which is how a lengthening seen in the first days after reference dates is carried
+//! to the delays not yet seen. Shape changes other than a stretch are not modelled.
 //!
 //! Incidence model: `log lambda_t` has a second-order random-walk penalty (linear trends are
-//! free); its strength is chosen by the Laplace approximation of the marginal likelihood over
-//! a grid unless given. Extra-Poisson variation of daily totals is estimated from Pearson
-//! residuals (quasi-Poisson) and widens the posterior and the predictive of unreported cases.
+//! free), its strength chosen by Laplace marginal likelihood over a grid unless given.
+//! Extra-Poisson variation of daily totals is estimated from Pearson residuals
+//! (quasi-Poisson) and widens the posterior and the predictive of unreported cases.
 //!
-//! Predictive draws: the delay parameters are drawn from their Gaussian posterior, log
-//! incidence from its Gaussian posterior shifted to first order for the drawn completeness
-//! (`d eta / d log F = -H^-1 diag(mu)`), and the cases still to be reported from a Poisson
-//! (negative binomial if overdispersed) with mean `lambda_t (1 - F_t(k_t))`; each draw of the
-//! eventual count is the count known so far plus that. Only draws from the fitted model: the
-//! intervals assume its structure (smooth log incidence, a delay distribution whose change is
-//! a smooth tilt) and the penalty strengths.
+//! Predictive draws: delay parameters from their Gaussian posterior; log incidence from its
+//! Gaussian posterior, shifted to first order for the drawn completeness
+//! (`d eta / d ln F = -H^-1 diag(mu)`); the cases still to be reported from a Poisson
+//! (negative binomial when overdispersed) with mean `lambda_t (1 - F_t(k_t))`. Each draw of
+//! the eventual count is the count known so far plus those. The intervals are model-based:
+//! they assume smooth log incidence, a delay distribution that changes by stretching, and
+//! independent (or quasi-Poisson) counts; they do not cover reporting changes of other kinds.
 
 use rand::rngs::StdRng;
 use rand::{Rng, SeedableRng};
@@ -53,14 +58,15 @@ pub struct SmoothParams {
     pub delay_changes: bool,
     /// Precision per day of the random walk of the log stretch of the delay distribution (a
     /// prior scale of `1 / sqrt(penalty)` per day). Default `None`: chosen by Laplace
-    /// marginal likelihood over 1, 10, .., 10^4.
+    /// marginal likelihood over 10, 100, 1000, 10^4.
     pub delay_trend_penalty: Option<f64>,
     /// Degrees of freedom of the Student-t distribution of the log stretch's steps between
     /// knots (default 2): heavy tails let a sudden change in reporting show as one large step
     /// while the stretch stays smooth elsewhere. Zero or less: Gaussian steps.
     pub delay_change_dof: f64,
-    /// Days between the knots of the log stretch (default 7, counted back from the last
-    /// date); it is linear between knots.
+    /// Days between the knots of the log stretch (default 1: every reference date; counted
+    /// back from the last date); it is linear between knots. Wider spacing is faster but
+    /// smears a sudden change over the knots around it.
     pub delay_trend_knots: usize,
     /// Precision of the second-difference penalty on the baseline log delay weights across
     /// delays, multiplied by `(1 + d)^2` at delay d (default 1). The log pmf of a gamma or
@@ -83,7 +89,7 @@ impl Default for SmoothParams {
             delay_changes: true,
             delay_trend_penalty: None,
             delay_change_dof: 2.0,
-            delay_trend_knots: 7,
+            delay_trend_knots: 1,
             delay_shape_penalty: 1.0,
             overdispersion: true,
             draws: 1000,
@@ -91,15 +97,15 @@ impl Default for SmoothParams {
     }
 }
 
-/// Ridge on every coefficient: it fixes the level of the multinomial logit and the split
-/// between baseline and tilts, which the likelihood cannot see, and keeps never-reported
-/// delays finite. Small enough not to matter where there are data.
+/// Ridge on every delay coefficient: it fixes the level of the multinomial logit, which the
+/// likelihood cannot see, and keeps never-reported delays finite. Small enough not to matter
+/// where there are data.
 const RIDGE: f64 = 1e-4;
 /// Ridge on log incidence (a prior sd of 1000 on its level).
 const INCIDENCE_RIDGE: f64 = 1e-6;
 /// Log incidence above this is clamped in draws (e^40 cases is no count).
 const MAX_LOG_RATE: f64 = 40.0;
-/// Largest quasi-Poisson dispersion used; a larger estimate is reported as a problem.
+/// Largest quasi-Poisson dispersion used (a larger estimate is capped).
 const MAX_DISPERSION: f64 = 50.0;
 
 /// Nowcasts every reference date of `tri` with the `smooth` method. Reproducible for a seed.
@@ -312,17 +318,29 @@ impl Knots {
     }
 }
 
-/// The baseline delay distribution as a continuous cdf G on [0, D + 1]: linear within each
-/// day from day 1 on (reports spread evenly over the day), and a power law `G(u) = G(1) u^a`
-/// within day 0 with `a = log2(G(2) / G(1))`, so that a stretched distribution starts
-/// rising the way its first two days do instead of jumping.
+/// The baseline delay distribution as a smooth cdf G: at whole days it is the sum of the
+/// pmf below the day, within each day a monotone cubic (Hermite, with the harmonic mean of
+/// the two neighbouring days' masses as the density at the day boundary, and density 0 at
+/// delay 0), beyond day D + 1 the last density decaying by e^-1 per day (a little mass, so
+/// that a shrunk distribution keeps a small chance of reports at its longest delays). The
+/// density is continuous, so the likelihood is smooth in the stretch.
 #[derive(Debug)]
 struct Baseline {
     pmf: Vec<f64>,
-    /// `prefix[j]`: the baseline cdf at day j (the sum of the pmf below j).
+    /// `prefix[j]`: the baseline cdf at day j (the sum of the pmf below j), j = 0..=D+1.
     prefix: Vec<f64>,
-    /// Exponent of the power law within day 0.
-    power: f64,
+    /// `slope[j]`: the density at day boundary j, j = 0..=D+1.
+    slope: Vec<f64>,
+}
+
+/// Cubic Hermite basis on [0, 1] for the end value, start slope and end slope, and their
+/// derivatives.
+fn hermite(t: f64) -> [f64; 3] {
+    [t * t * (3.0 - 2.0 * t), t * (1.0 - t) * (1.0 - t), t * t * (t - 1.0)]
+}
+
+fn hermite_derivative(t: f64) -> [f64; 3] {
+    [6.0 * t * (1.0 - t), (1.0 - t) * (1.0 - 3.0 * t), t * (3.0 * t - 2.0)]
 }
 
 impl Baseline {
@@ -333,76 +351,99 @@ impl Baseline {
         for p in &pmf {
             prefix.push(prefix.last().copied().unwrap_or(0.0) + p);
         }
-        let power = if pmf.len() > 1 { (1.0 + pmf[1] / pmf[0]).log2() } else { 1.0 };
-        Baseline { pmf, prefix, power }
+        let last = pmf.len() - 1;
+        let slope = (0..=pmf.len())
+            .map(|j| match j {
+                0 => 0.0,
+                j if j > last => 0.5 * pmf[last],
+                j => 2.0 * pmf[j - 1] * pmf[j] / (pmf[j - 1] + pmf[j]),
+            })
+            .collect();
+        Baseline { pmf, prefix, slope }
     }
 
+    /// D + 1: where the pmf ends.
     fn end(&self) -> f64 {
         self.pmf.len() as f64
     }
 
-    fn cdf(&self, u: f64) -> f64 {
-        if u <= 0.0 {
-            0.0
-        } else if u < 1.0 {
-            self.pmf[0] * u.powf(self.power)
-        } else if u >= self.end() {
-            1.0
+    /// The whole day containing u (D + 1 for the tail) and the position within it.
+    fn day(&self, u: f64) -> (usize, f64) {
+        let u = u.max(0.0);
+        if u >= self.end() {
+            (self.pmf.len(), u - self.end())
         } else {
             let j = u.floor() as usize;
-            self.prefix[j] + (u - j as f64) * self.pmf[j]
+            (j, u - j as f64)
         }
     }
 
-    /// Density just below u (the derivative of the cdf from the left).
-    fn density_below(&self, u: f64) -> f64 {
-        if u <= 0.0 || u > self.end() {
-            0.0
-        } else if u <= 1.0 {
-            self.power * self.pmf[0] * u.powf(self.power - 1.0)
-        } else {
-            self.pmf[u.ceil() as usize - 1]
-        }
+    fn cdf(&self, u: f64) -> f64 {
+        let (j, t) = self.day(u);
+        self.prefix[j] + self.within(j, t)
     }
 
-    /// `pi_i dG(u)/dpi_i` for u within day 0 (only days 0 and 1 enter), as (day, value).
-    fn first_day_gradient(&self, u: f64) -> [(usize, f64); 2] {
-        if u <= 0.0 || self.pmf.len() < 2 {
-            return [(0, self.cdf(u.min(1.0))), (1, 0.0)];
+    /// The cdf's increase from the start of day j to position t within it.
+    fn within(&self, j: usize, t: f64) -> f64 {
+        if j == self.pmf.len() {
+            return self.slope[j] * -(-t).exp_m1();
         }
-        let g = self.cdf(u.min(1.0));
-        let log_u = u.min(1.0).ln();
-        let two = self.pmf[0] + self.pmf[1];
-        // a = log2(two / pi_0): da/dpi_0 = (1/two - 1/pi_0) / ln 2, da/dpi_1 = (1/two) / ln 2.
-        let da0 = (1.0 / two - 1.0 / self.pmf[0]) / std::f64::consts::LN_2;
-        let da1 = (1.0 / two) / std::f64::consts::LN_2;
-        [(0, g * (1.0 + self.pmf[0] * log_u * da0)), (1, g * self.pmf[1] * log_u * da1)]
+        let [h01, h10, h11] = hermite(t);
+        self.pmf[j] * h01 + self.slope[j] * h10 + self.slope[j + 1] * h11
     }
 
-    /// The baseline mass of `[u0, u1)` and `pi_i dmass/dpi_i` for the days it depends on.
-    /// The mass is homogeneous of degree 1 in the pmf, so these sum to the mass.
-    fn mass_gradient(&self, u0: f64, u1: f64) -> (f64, Vec<(usize, f64)>) {
-        let mass = self.cdf(u1) - self.cdf(u0);
-        let mut gradient = Vec::new();
-        if u0 < 1.0 {
-            let [(i0, a0), (i1, a1)] = self.first_day_gradient(u1);
-            let [(_, b0), (_, b1)] = self.first_day_gradient(u0);
-            gradient.push((i0, a0 - b0));
-            if self.pmf.len() > 1 {
-                gradient.push((i1, a1 - b1));
+    fn density(&self, u: f64) -> f64 {
+        if u <= 0.0 {
+            return 0.0;
+        }
+        let (j, t) = self.day(u);
+        if j == self.pmf.len() {
+            return self.slope[j] * (-t).exp();
+        }
+        let [d01, d10, d11] = hermite_derivative(t);
+        self.pmf[j] * d01 + self.slope[j] * d10 + self.slope[j + 1] * d11
+    }
+
+    /// `pi_i d slope_j / d pi_i` for the (at most two) days the boundary slope depends on.
+    fn slope_gradient(&self, j: usize) -> [(usize, f64); 2] {
+        let last = self.pmf.len() - 1;
+        match j {
+            0 => [(0, 0.0), (0, 0.0)],
+            j if j > last => [(last, self.slope[j]), (last, 0.0)],
+            j => {
+                let (a, b) = (self.pmf[j - 1], self.pmf[j]);
+                let s2 = (a + b) * (a + b);
+                [(j - 1, 2.0 * a * b * b / s2), (j, 2.0 * b * a * a / s2)]
             }
         }
-        let last = (u1.min(self.end()).ceil() as usize).min(self.pmf.len());
-        for j in (u0.floor() as usize).max(1)..last {
-            let overlap = u1.min(j as f64 + 1.0) - u0.max(j as f64);
-            if overlap > 0.0 {
-                match gradient.iter_mut().find(|(i, _)| *i == j) {
-                    Some(entry) => entry.1 += overlap * self.pmf[j],
-                    None => gradient.push((j, overlap * self.pmf[j])),
-                }
-            }
+    }
+
+    /// `pi_i d/dpi_i` of `within(j, t)`, as (day, value) pairs.
+    fn within_gradient(&self, j: usize, t: f64, out: &mut Vec<(usize, f64)>, sign: f64) {
+        if j == self.pmf.len() {
+            out.push((j - 1, sign * self.within(j, t)));
+            return;
         }
-        (mass, gradient)
+        let [h01, h10, h11] = hermite(t);
+        out.push((j, sign * self.pmf[j] * h01));
+        for (i, v) in self.slope_gradient(j) {
+            out.push((i, sign * h10 * v));
+        }
+        for (i, v) in self.slope_gradient(j + 1) {
+            out.push((i, sign * h11 * v));
+        }
+    }
+
+    /// The baseline mass of `[u0, u1)` and `pi_i dmass/dpi_i` for the days it depends on
+    /// (unsorted, possibly repeated). The mass is homogeneous of degree 1 in the pmf.
+    fn mass_gradient(&self, u0: f64, u1: f64, gradient: &mut Vec<(usize, f64)>) -> f64 {
+        let (j0, t0) = self.day(u0);
+        let (j1, t1) = self.day(u1);
+        gradient.clear();
+        gradient.extend((j0..j1).map(|i| (i, self.pmf[i])));
+        self.within_gradient(j1, t1, gradient, 1.0);
+        self.within_gradient(j0, t0, gradient, -1.0);
+        self.prefix[j1] - self.prefix[j0] + self.within(j1, t1) - self.within(j0, t0)
     }
 }
 
@@ -562,10 +603,10 @@ impl<'a> DelayModel<'a> {
     }
 
     /// Adds row r's score and Fisher information. With `x_d` the gradient of `ln A_d` in the
-    /// baseline weights (through the responsibilities `pi_j overlap_dj / A_d`) and the log
-    /// stretch, and `q_d = A_d / C`: score `sum_d (n_d - O q_d) x_d`, information
+    /// baseline weights (through `pi_j dA_d/dpi_j / A_d`) and the log stretch, and
+    /// `q_d = A_d / C`: score `sum_d (n_d - O q_d) x_d`, information
     /// `O (sum_d q_d x_d x_d^T - xbar xbar^T)` with `xbar = sum_d q_d x_d` (the softmax
-    /// normaliser cancels).
+    /// normaliser cancels). The log stretch maps to the row's two knots.
     fn add_row_derivatives(
         &self,
         baseline: &Baseline,
@@ -577,67 +618,43 @@ impl<'a> DelayModel<'a> {
         let (stretch, knots) = self.stretch(theta, r);
         let k = self.window.observed[r];
         let total = self.window.totals[r];
-        let top = (((k + 1) as f64 / stretch).floor() as usize).clamp(1, self.window.max_delay);
-        let slot = top + 1; // local index of the log stretch
+        let top = (((k + 1) as f64 / stretch).floor() as usize + 1).min(self.window.max_delay);
         let norm = baseline.cdf((k + 1) as f64 / stretch);
-        let mut xbar = vec![0.0; top + 2];
-        let mut score = vec![0.0; top + 2];
-        let mut info = Matrix::zeros(top + 2);
+        // Global indices of the local coordinates: baseline days 0..=top, then the knots.
+        let mut index: Vec<usize> = (0..=top).collect();
+        let mut knot_weight = Vec::new();
+        if self.terms > 0 {
+            for (knot, w) in knots.into_iter().filter(|(_, w)| *w > 0.0) {
+                index.push(self.knot_index(knot));
+                knot_weight.push(w);
+            }
+        }
+        let mut xbar = vec![0.0; index.len()];
+        let mut x: Vec<(usize, f64)> = Vec::new();
         for d in 0..=k {
             let (u0, u1) = (d as f64 / stretch, (d + 1) as f64 / stretch);
-            let (mass, gradient) = baseline.mass_gradient(u0, u1);
-            if !(mass > 0.0) {
+            let mass = baseline.mass_gradient(u0, u1, &mut x);
+            if mass.is_nan() || mass <= 0.0 {
                 continue;
             }
-            let mut x: Vec<(usize, f64)> = gradient.into_iter().map(|(j, v)| (j, v / mass)).collect();
-            if self.terms > 0 {
-                x.push((slot, -(u1 * baseline.density_below(u1) - u0 * baseline.density_below(u0)) / mass));
-            }
+            x.iter_mut().for_each(|(_, v)| *v /= mass);
+            let log_stretch = -(u1 * baseline.density(u1) - u0 * baseline.density(u0)) / mass;
+            x.extend(knot_weight.iter().enumerate().map(|(i, w)| (top + 1 + i, w * log_stretch)));
             let q = mass / norm;
             let residual = self.window.n[r][d] - total * q;
             for &(i, v) in &x {
                 xbar[i] += q * v;
-                score[i] += residual * v;
+                gradient[index[i]] -= residual * v;
             }
-            info.add_outer(&x, total * q);
-        }
-        for i in 0..xbar.len() {
-            for j in 0..xbar.len() {
-                info.add(i, j, -total * xbar[i] * xbar[j]);
-            }
-        }
-        self.scatter(&score, &info, slot, knots, gradient, hessian);
-    }
-
-    /// Adds a row's local score and information to the global gradient (of the negative log
-    /// likelihood) and Hessian; the local log-stretch slot maps to the row's two knots.
-    fn scatter(
-        &self,
-        score: &[f64],
-        info: &Matrix,
-        slot: usize,
-        knots: [(usize, f64); 2],
-        gradient: &mut [f64],
-        hessian: &mut Matrix,
-    ) {
-        let targets = |i: usize| -> Vec<(usize, f64)> {
-            if i < slot {
-                vec![(i, 1.0)]
-            } else if self.terms > 0 {
-                knots.iter().filter(|(_, w)| *w > 0.0).map(|&(knot, w)| (self.knot_index(knot), w)).collect()
-            } else {
-                Vec::new()
-            }
-        };
-        let mapped: Vec<Vec<(usize, f64)>> = (0..score.len()).map(targets).collect();
-        for (i, to) in mapped.iter().enumerate() {
-            for &(gi, wi) in to {
-                gradient[gi] -= wi * score[i];
-                for (j, to_j) in mapped.iter().enumerate() {
-                    for &(gj, wj) in to_j {
-                        hessian.add(gi, gj, wi * wj * info.at(i, j));
-                    }
+            for &(i, a) in &x {
+                for &(j, b) in &x {
+                    hessian.add(index[i], index[j], total * q * a * b);
                 }
+            }
+        }
+        for (i, &gi) in index.iter().enumerate() {
+            for (j, &gj) in index.iter().enumerate() {
+                hessian.add(gi, gj, -total * xbar[i] * xbar[j]);
             }
         }
     }
@@ -673,7 +690,7 @@ fn fit_delay<'a>(window: &'a Window, params: &SmoothParams) -> Option<(DelayMode
     let strengths: Vec<f64> = match (params.delay_changes, params.delay_trend_penalty) {
         (false, _) => vec![1.0],
         (true, Some(strength)) => vec![strength.max(1e-9)],
-        (true, None) => (0..=4).map(|i| 10f64.powi(i)).collect(),
+        (true, None) => (1..=4).map(|i| 10f64.powi(i)).collect(),
     };
     let mut best: Option<(f64, DelayModel<'a>, DelayFit)> = None;
     let mut start: Option<Vec<f64>> = None;
@@ -934,9 +951,7 @@ fn minimise(objective: &impl Objective, mut x: Vec<f64>) -> Option<(Minimum, boo
         return None;
     }
     let mut converged = false;
-    let mut iterations = 0; // TRACE
     for _ in 0..MAX_ITERATIONS {
-        iterations += 1; // TRACE
         let (gradient, hessian) = objective.derivatives(&x);
         let step = hessian.cholesky()?.solve(&gradient);
         let decrement = dot(&gradient, &step);
@@ -954,9 +969,6 @@ fn minimise(objective: &impl Objective, mut x: Vec<f64>) -> Option<(Minimum, boo
         x = next;
         value = next_value;
     }
-    if std::env::var("SMOOTH_TRACE").is_ok() {
-        eprintln!("TRACE n={} iterations={iterations} converged={converged} value={value}", x.len());
-    } // TRACE
     let (_, hessian) = objective.derivatives(&x);
     let hessian = hessian.cholesky()?;
     Some((Minimum { x, value, hessian }, converged))
@@ -1133,44 +1145,234 @@ fn softmax(w: &[f64]) -> Vec<f64> {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::analysis::nowcast::hazard::{self, HazardParams};
+    use crate::analysis::score::{wis, wis_of_row};
     use crate::analysis::simulate::{Scenario, discretised_gamma, epidemic_curve, simulate};
     use chrono::{Days, NaiveDate};
 
-    /// Weighted interval score of a row (Bracher et al. 2021, PLoS Comput Biol 17:e1008618):
-    /// median and the 50/90/95% intervals, `(0.5|y-m| + sum_k (a_k/2) IS_a_k) / (K + 0.5)`.
-    fn wis(row: &NowcastRow, y: f64) -> f64 {
-        let interval =
-            |l: f64, u: f64, a: f64| (u - l) + (2.0 / a) * (l - y).max(0.0) + (2.0 / a) * (y - u).max(0.0);
-        let sum = 0.5 * (y - row.median).abs()
-            + 0.25 * interval(row.lower50, row.upper50, 0.5)
-            + 0.05 * interval(row.lower90, row.upper90, 0.1)
-            + 0.025 * interval(row.lower95, row.upper95, 0.05);
-        sum / 3.5
+    fn start() -> NaiveDate {
+        NaiveDate::from_ymd_opt(2026, 3, 1).unwrap()
     }
 
+    fn triangle(rows: usize, max_delay: usize, known: impl Fn(usize, usize) -> f64) -> Triangle {
+        let last = start() + Days::new(rows as u64) - Days::new(1);
+        Triangle::from_fn(start(), last, max_delay, known)
+    }
+
+    fn quick() -> SmoothParams {
+        SmoothParams { draws: 300, ..SmoothParams::default() }
+    }
+
+    /// Every number finite, intervals nested around the median, never below the count so far.
+    fn assert_sane(nowcast: &Nowcast) {
+        for row in &nowcast.rows {
+            let values =
+                [row.observed, row.median, row.mean, row.lower50, row.upper50, row.lower90, row.upper90];
+            assert!(
+                values
+                    .iter()
+                    .chain([row.lower95, row.upper95, row.completeness].iter())
+                    .all(|v| v.is_finite()),
+                "{row:?}"
+            );
+            assert!(
+                row.lower95 <= row.lower90 && row.lower90 <= row.lower50 && row.lower50 <= row.median,
+                "{row:?}"
+            );
+            assert!(
+                row.median <= row.upper50 && row.upper50 <= row.upper90 && row.upper90 <= row.upper95,
+                "{row:?}"
+            );
+            assert!(row.lower95 >= row.observed, "{row:?}");
+            assert!(row.completeness > 0.0 && row.completeness <= 1.0 + 1e-12, "{row:?}");
+        }
+    }
+
+    #[test]
+    fn thin_and_odd_triangles_give_problems_not_panics() {
+        let empty = nowcast(&triangle(0, 5, |_, _| 0.0), &quick(), 1);
+        assert!(empty.rows.is_empty() && !empty.problems.is_empty());
+
+        let zeros = nowcast(&triangle(30, 7, |_, _| 0.0), &quick(), 1);
+        assert_sane(&zeros);
+        assert_eq!(zeros.rows.len(), 30);
+        assert!(zeros.problems.iter().any(|p| p.contains("no cases")));
+
+        let single = nowcast(&triangle(1, 7, |_, _| 5.0), &quick(), 1);
+        assert_sane(&single);
+        assert_eq!(single.rows[0].median, 5.0);
+
+        let short = nowcast(&triangle(3, 10, |_, d| 4.0 + 2.0 * d as f64), &quick(), 1);
+        assert_sane(&short);
+        assert!(short.problems.iter().any(|p| p.contains("not observed")));
+
+        let no_delay = nowcast(&triangle(10, 0, |t, _| t as f64), &quick(), 1);
+        assert_sane(&no_delay);
+        assert!(no_delay.rows.iter().all(|r| r.median == r.observed && r.completeness == 1.0));
+
+        // A healthy series whose last five reference dates have no reports at all.
+        let (tri, _) =
+            simulate(&Scenario::constant_delay(vec![40.0; 50], 10, discretised_gamma(3.0, 0.6, 10)), 4);
+        let silent = Triangle {
+            cumulative: tri
+                .cumulative
+                .iter()
+                .enumerate()
+                .map(|(t, row)| if t >= 45 { vec![0.0; row.len()] } else { row.clone() })
+                .collect(),
+            ..tri
+        };
+        assert_sane(&nowcast(&silent, &quick(), 1));
+
+        let sparse =
+            nowcast(&triangle(40, 14, |t, d| if t % 9 == 0 && d >= 2 { 1.0 } else { 0.0 }), &quick(), 1);
+        assert_sane(&sparse);
+        assert!(sparse.problems.iter().any(|p| p.contains("poorly determined")));
+    }
+
+    #[test]
+    fn bad_cells_and_downward_revisions_are_reported() {
+        let mut tri = triangle(30, 5, |t, d| 10.0 + t as f64 + 3.0 * d as f64);
+        tri.cumulative[3][2] = f64::NAN;
+        tri.cumulative[5][4] = 1.0; // a decrease
+        let result = nowcast(&tri, &quick(), 2);
+        assert_sane(&result);
+        assert!(result.problems.iter().any(|p| p.contains("not finite")));
+        assert!(result.problems.iter().any(|p| p.contains("downward")));
+    }
+
+    #[test]
+    fn reproducible_and_complete_rows_are_as_observed() {
+        let (tri, _) =
+            simulate(&Scenario::constant_delay(vec![30.0; 40], 8, discretised_gamma(3.0, 0.6, 8)), 9);
+        let first = nowcast(&tri, &quick(), 17);
+        assert_eq!(first, nowcast(&tri, &quick(), 17));
+        assert_eq!(first.method, "smooth");
+        assert_sane(&first);
+        for row in first.rows.iter().filter(|r| r.horizon >= 8) {
+            assert_eq!(
+                (row.median, row.lower95, row.upper95, row.completeness),
+                (row.observed, row.observed, row.observed, 1.0)
+            );
+        }
+        // Recent rows are incomplete, so their nowcast is above what is known so far.
+        assert!(first.rows.last().is_some_and(|r| r.completeness < 0.5 && r.median > r.observed));
+    }
+
+    #[test]
+    fn delay_gradient_matches_finite_differences() {
+        // Check: central differences of the objective (practice: a derivative check); the
+        // model is smooth in all coefficients because the baseline cdf is C1.
+        let incidence = epidemic_curve(40, 10.0, 120.0, 25.0, 10.0, 15.0);
+        let s = Scenario::delay_shift(
+            incidence,
+            12,
+            discretised_gamma(3.0, 0.6, 12),
+            discretised_gamma(6.0, 0.6, 12),
+            30,
+        );
+        let (tri, _) = simulate(&s, 1);
+        let params = SmoothParams { delay_change_dof: 2.0, ..SmoothParams::default() };
+        let window = Window::new(&tri, &params, &mut Vec::new());
+        let model = DelayModel::new(&window, &params, 100.0);
+        let mut theta = model.initial();
+        for (i, v) in theta.iter_mut().enumerate().skip(13) {
+            *v = 0.04 * ((i * 7 % 11) as f64 - 5.0); // stretches both ways, incl. shrinking
+        }
+        let (gradient, _) = model.derivatives(&theta);
+        for i in 0..theta.len() {
+            let h = 1e-6;
+            let (mut up, mut down) = (theta.clone(), theta.clone());
+            up[i] += h;
+            down[i] -= h;
+            let numeric = (model.value(&up) - model.value(&down)) / (2.0 * h);
+            assert!(
+                (numeric - gradient[i]).abs() < 1e-4 * (1.0 + numeric.abs()),
+                "{i}: {numeric} vs {}",
+                gradient[i]
+            );
+        }
+    }
+
+    #[test]
+    fn dense_cholesky_solves_and_inverts() {
+        // Check: A = [[4,2,0],[2,5,1],[0,1,3]] times x = [1, -1, 2] is b = [2, -1, 5], and
+        // det A = 4 * 14 - 2 * 6 = 44 (by hand).
+        let mut a = Matrix::zeros(3);
+        for (i, j, v) in
+            [(0, 0, 4.0), (0, 1, 2.0), (1, 0, 2.0), (1, 1, 5.0), (1, 2, 1.0), (2, 1, 1.0), (2, 2, 3.0)]
+        {
+            a.add(i, j, v);
+        }
+        let chol = a.cholesky().unwrap();
+        let x = chol.solve(&[2.0, -1.0, 5.0]);
+        for (got, want) in x.iter().zip([1.0, -1.0, 2.0]) {
+            assert!((got - want).abs() < 1e-12);
+        }
+        assert!((chol.log_det() - 44f64.ln()).abs() < 1e-12);
+        let inverse = chol.inverse();
+        for i in 0..3 {
+            for j in 0..3 {
+                let product: f64 = (0..3).map(|k| a.at(i, k) * inverse.at(k, j)).sum();
+                assert!((product - f64::from(u8::from(i == j))).abs() < 1e-12);
+            }
+        }
+    }
+
+    /// Scores of one method over seeds and horizons 0..=7.
     #[derive(Debug, Default)]
-    struct Score {
+    struct Tally {
         n: f64,
         covered90: f64,
-        covered50: f64,
         wis: f64,
         naive: f64,
         relative_error: f64,
     }
 
-    fn score(nowcast: &Nowcast, truth: &[f64], horizons: std::ops::RangeInclusive<usize>, acc: &mut Score) {
-        for row in nowcast.rows.iter().filter(|r| horizons.contains(&r.horizon)) {
-            let t = truth.len() - 1 - row.horizon;
-            let y = truth[t];
-            acc.n += 1.0;
-            acc.covered90 += f64::from(row.lower90 <= y && y <= row.upper90);
-            acc.covered50 += f64::from(row.lower50 <= y && y <= row.upper50);
-            acc.wis += wis(row, y);
-            acc.naive += (y - row.observed).abs();
-            acc.relative_error += (row.median - y) / y.max(1.0);
+    impl Tally {
+        fn add(&mut self, nowcast: &Nowcast, truth: &[f64]) {
+            for row in nowcast.rows.iter().filter(|r| r.horizon <= 7) {
+                let y = truth[truth.len() - 1 - row.horizon];
+                self.n += 1.0;
+                self.covered90 += f64::from(row.lower90 <= y && y <= row.upper90);
+                self.wis += wis_of_row(row, y);
+                // The naive forecast: the count observed so far as a point forecast with no
+                // intervals, whose WIS is its absolute error (Bracher et al. 2021, K = 0).
+                self.naive += wis(row.observed, &[], y);
+                self.relative_error += (row.median - y) / y.max(1.0);
+            }
+        }
+
+        fn summary(&self) -> (f64, f64, f64, f64) {
+            (self.covered90 / self.n, self.wis / self.n, self.naive / self.n, self.relative_error / self.n)
         }
     }
 
+    #[test]
+    fn constant_delay_point_estimates_and_coverage() {
+        // Check: simulation with known truth (analysis::simulate). A rising-and-falling
+        // epidemic, gamma delay with mean 4 days; 30 seeds, horizons 0..7 (240 intervals):
+        // 90% coverage between 80% and 98% (issue 4 acceptance band) and the mean relative
+        // error of the median within 8% (a tolerance for 30 noisy seeds, chosen here).
+        let incidence = epidemic_curve(70, 10.0, 120.0, 50.0, 15.0, 20.0);
+        let scenario = Scenario::constant_delay(incidence, 20, discretised_gamma(4.0, 0.6, 20));
+        let params = SmoothParams { draws: 400, ..SmoothParams::default() };
+        let mut tally = Tally::default();
+        for seed in 0..30 {
+            let (tri, truth) = simulate(&scenario, 1000 + seed);
+            tally.add(&nowcast(&tri, &params, seed), &truth);
+        }
+        let (coverage, mean_wis, naive, bias) = tally.summary();
+        eprintln!(
+            "constant delay: 90% coverage {coverage:.3}, WIS {mean_wis:.2}, naive {naive:.2}, relative error {bias:.3}"
+        );
+        assert!((0.80..=0.98).contains(&coverage), "coverage {coverage}");
+        assert!(bias.abs() < 0.08, "relative error {bias}");
+        assert!(mean_wis < 0.5 * naive, "WIS {mean_wis} vs naive {naive}");
+    }
+
+    /// The delay-shift simulation of issue 4: mean delay 3 days before the shift and 7 after,
+    /// the shift 20 days before the last reference date.
     fn shift_scenario() -> Scenario {
         let incidence = epidemic_curve(100, 10.0, 150.0, 70.0, 18.0, 25.0);
         Scenario::delay_shift(
@@ -1182,201 +1384,83 @@ mod tests {
         )
     }
 
-    fn constant_scenario() -> Scenario {
-        let incidence = epidemic_curve(100, 10.0, 150.0, 70.0, 18.0, 25.0);
-        Scenario::constant_delay(incidence, 30, discretised_gamma(5.0, 0.6, 30))
+    fn compare_after_shift(seeds: u64, draws: usize) -> (Tally, Tally) {
+        compare(&shift_scenario(), seeds, draws)
     }
 
-    #[test]
-    #[ignore]
-    fn explore() {
-        let incidence = epidemic_curve(100, 10.0, 150.0, 70.0, 18.0, 25.0);
-        let shift_at = |day: usize| {
-            Scenario::delay_shift(
-                incidence.clone(),
-                30,
-                discretised_gamma(3.0, 0.6, 30),
-                discretised_gamma(7.0, 0.6, 30),
-                day,
-            )
-        };
-        let cases: Vec<(&str, Scenario)> = vec![
-            ("constant", constant_scenario()),
-            ("shift80", shift_at(80)),
-            ("shift90", shift_at(90)),
-            ("shift70", shift_at(70)),
-        ];
-        let configs: Vec<(bool, Option<f64>, f64, usize)> = std::env::var("CONFIGS")
-            .ok()
-            .map(|v| {
-                v.split(',')
-                    .map(|c| {
-                        let f: Vec<&str> = c.split(':').collect();
-                        let trend = match f[0] {
-                            "F" => false,
-                            _ => true,
-                        };
-                        (
-                            trend,
-                            f[1].parse().ok(),
-                            f.get(2).and_then(|v| v.parse().ok()).unwrap_or(2.0),
-                            f.get(3).and_then(|v| v.parse().ok()).unwrap_or(7),
-                        )
-                    })
-                    .collect()
-            })
-            .unwrap_or_else(|| vec![(true, None, 2.0, 7)]);
-        let only: Option<String> = std::env::var("ONLY").ok();
-        for (name, scenario) in &cases {
-            if only.as_ref().is_some_and(|o| !o.split(',').any(|x| x == *name)) {
-                continue;
-            }
-            for &(trend, kb, dof, spacing) in &configs {
-                let params = SmoothParams {
-                    delay_changes: trend,
-                    delay_trend_penalty: kb,
-                    delay_change_dof: dof,
-                    delay_trend_knots: spacing,
-                    draws: 500,
-                    ..SmoothParams::default()
-                };
-                let mut acc = Score::default();
-                let mut by_h: Vec<Score> = (0..8).map(|_| Score::default()).collect();
-                let started = std::time::Instant::now();
-                for seed in 0..30 {
-                    let (tri, truth) = simulate(scenario, seed);
-                    let nc = nowcast(&tri, &params, seed);
-                    score(&nc, &truth, 0..=7, &mut acc);
-                    for h in 0..8 {
-                        score(&nc, &truth, h..=h, &mut by_h[h]);
-                    }
-                }
-                eprintln!(
-                    "{name} {trend:?} {kb:?} dof {dof} knots {spacing}: cov90 {:.3} cov50 {:.3} wis {:.2} naive {:.2} bias {:.3} ({:?})\n   bias {:?}\n   wis {:?}\n   cov90 {:?}",
-                    acc.covered90 / acc.n,
-                    acc.covered50 / acc.n,
-                    acc.wis / acc.n,
-                    acc.naive / acc.n,
-                    acc.relative_error / acc.n,
-                    started.elapsed(),
-                    by_h.iter().map(|s| format!("{:.2}", s.relative_error / s.n)).collect::<Vec<_>>(),
-                    by_h.iter().map(|s| format!("{:.1}", s.wis / s.n)).collect::<Vec<_>>(),
-                    by_h.iter().map(|s| format!("{:.2}", s.covered90 / s.n)).collect::<Vec<_>>(),
-                );
-            }
+    fn compare(scenario: &Scenario, seeds: u64, draws: usize) -> (Tally, Tally) {
+        let smooth_params = SmoothParams { draws, ..SmoothParams::default() };
+        let hazard_params = HazardParams { draws, ..HazardParams::default() };
+        let (mut smooth, mut hazard) = (Tally::default(), Tally::default());
+        for seed in 0..seeds {
+            let (tri, truth) = simulate(scenario, 2000 + seed);
+            smooth.add(&nowcast(&tri, &smooth_params, seed), &truth);
+            hazard.add(&hazard::nowcast(&tri, &hazard_params, seed), &truth);
         }
+        (smooth, hazard)
     }
-}
-
-#[cfg(test)]
-mod debug_tests {
-    use super::*;
-    use crate::analysis::simulate::{Scenario, discretised_gamma, epidemic_curve, simulate};
 
     #[test]
-    #[ignore]
-    fn debug_one() {
-        let incidence = epidemic_curve(100, 10.0, 150.0, 70.0, 18.0, 25.0);
-        let scenario = Scenario::delay_shift(
-            incidence,
-            30,
-            discretised_gamma(3.0, 0.6, 30),
-            discretised_gamma(7.0, 0.6, 30),
-            90,
+    fn beats_hazard_when_the_delay_lengthens() {
+        // Check: simulation with known truth (analysis::simulate), issue 4 item 2: after a
+        // delay shift (mean 3 -> 7 days, 20 days before the end) the mean WIS of `smooth`
+        // over horizons 0..7 is lower than that of `hazard`, and (issue 4 item 3) at most
+        // half that of the naive "observed so far" count. 8 seeds keep the test quick; the
+        // ignored `measure_delay_shift` runs 30.
+        let (smooth, hazard) = compare_after_shift(8, 300);
+        let (s_cov, s_wis, naive, s_bias) = smooth.summary();
+        let (h_cov, h_wis, _, h_bias) = hazard.summary();
+        eprintln!(
+            "delay shift: smooth cov {s_cov:.3} WIS {s_wis:.2} bias {s_bias:.3}; hazard cov {h_cov:.3} WIS {h_wis:.2} bias {h_bias:.3}; naive WIS {naive:.2}"
         );
-        let params = SmoothParams {
-            draws: 500,
-            delay_change_dof: std::env::var("DOF").map_or(2.0, |v| v.parse().unwrap()),
-            delay_changes: std::env::var("FIXED").is_err(),
-            ..SmoothParams::default()
-        };
-        for seed in 0..30 {
-            let (tri, truth) = simulate(&scenario, seed);
-            let window = Window::new(&tri, &params, &mut vec![]);
-            let (model, fit) = fit_delay(&window, &params).unwrap();
-            let means: Vec<String> = [60, 85, 92, 96, 99]
-                .iter()
-                .map(|&r| {
-                    let (stretch, _) = model.stretch(&fit.minimum.x, r);
-                    let b = model.baseline(&fit.minimum.x);
-                    let mean: f64 = (0..=30)
-                        .map(|d| (d as f64) * (b.cdf((d + 1) as f64 / stretch) - b.cdf(d as f64 / stretch)))
-                        .sum::<f64>()
-                        / b.cdf(31.0 / stretch);
-                    format!("{mean:.2}")
-                })
-                .collect();
-            let nc = nowcast(&tri, &params, 1);
-            let row = &nc.rows[99];
-            eprintln!(
-                "seed {seed} kb {} means {means:?} h0 obs {} truth {} med {} [{}, {}] F {:.4}",
-                model.trend_penalty,
-                row.observed,
-                truth[99],
-                row.median,
-                row.lower90,
-                row.upper90,
-                row.completeness
-            );
-        }
+        assert!(s_wis < h_wis, "smooth {s_wis} vs hazard {h_wis}");
+        assert!(s_wis <= 0.5 * naive, "smooth {s_wis} vs naive {naive}");
     }
-}
-
-#[cfg(test)]
-mod gradient_check {
-    use super::*;
-    use crate::analysis::simulate::{Scenario, discretised_gamma, epidemic_curve, simulate};
 
     #[test]
-    #[ignore]
-    fn delay_gradient_matches_finite_differences() {
-        let incidence = epidemic_curve(60, 10.0, 150.0, 40.0, 18.0, 25.0);
-        let scenario = Scenario::delay_shift(
-            incidence,
-            15,
-            discretised_gamma(3.0, 0.6, 15),
-            discretised_gamma(7.0, 0.6, 15),
-            45,
+    #[ignore = "30 seeds with 1000 draws: run with --release -- --ignored"]
+    fn measure_delay_shift() {
+        // Check: simulation with known truth, as `beats_hazard_when_the_delay_lengthens`, with
+        // 30 seeds; also the issue 4 acceptance band for the 90% coverage of the best method.
+        let (smooth, hazard) = compare_after_shift(30, 1000);
+        let (s_cov, s_wis, naive, s_bias) = smooth.summary();
+        let (h_cov, h_wis, _, h_bias) = hazard.summary();
+        eprintln!(
+            "delay shift, 30 seeds: smooth cov {s_cov:.3} WIS {s_wis:.2} bias {s_bias:.3}; hazard cov {h_cov:.3} WIS {h_wis:.2} bias {h_bias:.3}; naive WIS {naive:.2}"
         );
-        let (tri, _) = simulate(&scenario, 1);
-        let params = SmoothParams { delay_change_dof: 0.0, ..SmoothParams::default() };
-        let window = Window::new(&tri, &params, &mut vec![]);
-        let model = DelayModel::new(&window, &params, 100.0);
-        let mut theta = model.initial();
-        let n = theta.len();
-        for (i, v) in theta.iter_mut().enumerate() {
-            if i > 15 {
-                *v = 0.05 * ((i * 7 % 11) as f64 - 5.0);
-            }
-        }
-        let (g, h) = model.derivatives(&theta);
-        let mut worst: f64 = 0.0;
-        for i in 0..n {
-            let eps = 1e-6;
-            let mut a = theta.clone();
-            a[i] += eps;
-            let mut b = theta.clone();
-            b[i] -= eps;
-            let fd = (model.value(&a) - model.value(&b)) / (2.0 * eps);
-            worst = worst.max((fd - g[i]).abs());
-            if i % 4 == 0 || i > 14 {
-                eprintln!("p{i} fd {fd} g {}", g[i]);
-            }
-            if (fd - g[i]).abs() > 1e-3 * (1.0 + fd.abs()) {
-                eprintln!("param {i}: fd {fd} analytic {}", g[i]);
-            }
-        }
-        eprintln!("worst gradient error {worst}");
-        // Fisher vs numerical Hessian diag for stretch params
-        for i in 16..n {
-            let eps = 1e-4;
-            let mut a = theta.clone();
-            a[i] += eps;
-            let mut b = theta.clone();
-            b[i] -= eps;
-            let (ga, _) = model.derivatives(&a);
-            let (gb, _) = model.derivatives(&b);
-            eprintln!("param {i}: numeric H_ii {} fisher {}", (ga[i] - gb[i]) / (2.0 * eps), h.at(i, i));
-        }
+        assert!(s_wis < h_wis && s_wis <= 0.5 * naive);
+        assert!((0.80..=0.98).contains(&s_cov), "coverage {s_cov}");
+        // For the record: the same comparison with a constant delay (mean 4 days).
+        let incidence = epidemic_curve(100, 10.0, 150.0, 70.0, 18.0, 25.0);
+        let constant = Scenario::constant_delay(incidence, 30, discretised_gamma(4.0, 0.6, 30));
+        let (smooth, hazard) = compare(&constant, 30, 1000);
+        let (s_cov, s_wis, naive, s_bias) = smooth.summary();
+        let (h_cov, h_wis, _, h_bias) = hazard.summary();
+        eprintln!(
+            "constant delay, 30 seeds: smooth cov {s_cov:.3} WIS {s_wis:.2} bias {s_bias:.3}; hazard cov {h_cov:.3} WIS {h_wis:.2} bias {h_bias:.3}; naive WIS {naive:.2}"
+        );
+    }
+
+    #[test]
+    #[ignore = "timing: run with --release -- --ignored --nocapture"]
+    fn timing_120_days_60_delays_2000_draws() {
+        // Issue 4 performance target (set for `hazard`): 120 reference days, maximum delay
+        // 60, 2,000 draws.
+        let incidence = epidemic_curve(120, 20.0, 400.0, 80.0, 20.0, 30.0);
+        let s = Scenario::delay_shift(
+            incidence,
+            60,
+            discretised_gamma(5.0, 0.7, 60),
+            discretised_gamma(9.0, 0.7, 60),
+            100,
+        );
+        let (tri, _) = simulate(&s, 3);
+        let params = SmoothParams { draws: 2000, ..SmoothParams::default() };
+        let started = std::time::Instant::now();
+        let result = nowcast(&tri, &params, 1);
+        let elapsed = started.elapsed();
+        eprintln!("smooth nowcast 120 x 60, 2000 draws: {elapsed:?}");
+        assert_sane(&result);
+        assert!(elapsed.as_secs_f64() < 2.0, "{elapsed:?}");
     }
 }
