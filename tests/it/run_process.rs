@@ -199,11 +199,15 @@ fn an_unreadable_file_is_reported_and_the_others_are_ingested() {
     fs::write(dir.path().join("inbox/county-2026-03-02.csv"), extract(6)).unwrap();
     let locked = dir.path().join("inbox/county-2026-03-02.csv");
     Command::new("chmod").arg("000").arg(&locked).status().unwrap();
+    // The build folder may not be reachable by `nobody` (a clone under a 0700 folder), so
+    // the unprivileged daemon runs from a copy of the binary inside the test folder.
+    let binary = dir.path().join("tidemark");
+    fs::copy(assert_cmd::cargo::cargo_bin!("tidemark"), &binary).unwrap();
     Command::new("chown").args(["-R", "65534:65534"]).arg(dir.path()).status().unwrap();
     Command::new("chown").arg("0:0").arg(&locked).status().unwrap();
     let mut daemon = Command::new("setpriv")
         .args(["--reuid=65534", "--regid=65534", "--clear-groups"])
-        .arg(assert_cmd::cargo::cargo_bin!("tidemark"))
+        .arg(&binary)
         .arg("--config")
         .arg(&config)
         .args(["run", "--no-ops"])
