@@ -16,6 +16,7 @@ use std::fs;
 use std::io::{BufWriter, Write};
 use std::path::{Path, PathBuf};
 use std::process::{Command, ExitCode};
+use std::sync::{Arc, Mutex};
 use std::time::Instant;
 
 use anyhow::{Context, Result, bail};
@@ -26,6 +27,9 @@ use tidemark::config::Config;
 use tidemark::extract::{self, Row};
 use tidemark::model::{CaseRecord, Field, Format};
 use tidemark::store::Store;
+use tracing::field::Visit;
+use tracing_subscriber::filter::LevelFilter;
+use tracing_subscriber::layer::{Context as LayerContext, Layer, SubscriberExt};
 
 /// Rows of the first extract unless `--rows` says otherwise (the issue's size).
 const DEFAULT_ROWS: u64 = 1_000_000;
@@ -169,7 +173,12 @@ fn main() -> ExitCode {
 /// What one child phase reported.
 #[derive(Debug, Clone, Default)]
 struct PhaseResult {
+    /// The machine's 1-minute load average when the phase started (others' work shows here).
+    load: f64,
     secs: f64,
+    /// For tidemark: seconds until the snapshot was committed (its "extract ingested" log
+    /// event); the rest of `secs` is the analyses `ingest_file` runs after the commit.
+    commit_secs: Option<f64>,
     rss_kb: u64,
     rows: u64,
     accepted: u64,
@@ -253,12 +262,14 @@ fn run_bench(args: &Args) -> Result<()> {
     );
     println!("tidemark / naive:");
     println!(
-        "  first ingest:  time {:.2}x, bytes {:.2}x",
+        "  first ingest:  time {:.2}x to commit ({:.2}x with the analyses), bytes {:.2}x",
+        t1.commit_secs.unwrap_or(t1.secs) / n1.secs.max(1e-9),
         t1.secs / n1.secs.max(1e-9),
         t1_bytes as f64 / n1_bytes.max(1) as f64
     );
     println!(
-        "  re-ingest:     time {:.2}x, bytes added {:.3}x ({:.1} MB vs {:.1} MB)",
+        "  re-ingest:     time {:.2}x to commit ({:.2}x with the analyses), bytes added {:.3}x ({:.1} MB vs {:.1} MB)",
+        t2.commit_secs.unwrap_or(t2.secs) / n2.secs.max(1e-9),
         t2.secs / n2.secs.max(1e-9),
         growth as f64 / naive_growth.max(1) as f64,
         mb(growth),
@@ -275,17 +286,26 @@ fn run_bench(args: &Args) -> Result<()> {
         "targets (issue 2, for {DEFAULT_ROWS} rows{}):",
         if scale < 1.0 { "; this run is smaller" } else { "" }
     );
-    let verdict = |ok: bool| if ok { "ok" } else { "MISSED" };
-    println!(
-        "  first ingest <= {TARGET_FIRST_SECS} s: {:.1} s {}",
-        t1.secs,
-        verdict(t1.secs <= TARGET_FIRST_SECS)
-    );
-    println!(
-        "  re-ingest <= {TARGET_REINGEST_SECS} s: {:.1} s {}",
-        t2.secs,
-        verdict(t2.secs <= TARGET_REINGEST_SECS)
-    );
+    // The targets are for the full size; a smaller run only shows that everything works
+    // (its store growth is dominated by the fixed per-snapshot triangle and nowcast rows).
+    let full = args.rows >= DEFAULT_ROWS;
+    let verdict = |ok: bool| match (full, ok) {
+        (false, _) => "(not comparable: smaller run)",
+        (true, true) => "ok",
+        (true, false) => "MISSED",
+    };
+    for (name, result, target) in
+        [("first ingest", &t1, TARGET_FIRST_SECS), ("re-ingest", &t2, TARGET_REINGEST_SECS)]
+    {
+        let commit = result.commit_secs.unwrap_or(result.secs);
+        println!(
+            "  {name} <= {target} s: {:.1} s to commit {}; {:.1} s with the analyses after it {}",
+            commit,
+            verdict(commit <= target),
+            result.secs,
+            verdict(result.secs <= target)
+        );
+    }
     let rss2 = t2.rss_kb as f64 / 1024.0;
     println!(
         "  re-ingest peak RSS <= {TARGET_REINGEST_RSS_MB} MB: {rss2:.0} MB {}",
@@ -326,8 +346,17 @@ fn table(lines: &[Line]) -> String {
     let mut out = String::new();
     let _ = writeln!(
         out,
-        "\n{:<24} {:>10} {:>9} {:>11} {:>13} {:>16} {:>14}",
-        "phase", "rows", "wall s", "rows/s", "peak RSS MB", "store MB", "growth"
+        "\n{:<24} {:>10} {:>8} {:>10} {:>10} {:>10} {:>12} {:>10} {:>16} {:>6}",
+        "phase",
+        "rows",
+        "wall s",
+        "commit s",
+        "analyse s",
+        "rows/s",
+        "peak RSS MB",
+        "store MB",
+        "growth",
+        "load"
     );
     let mut previous: Option<u64> = None;
     for (idx, line) in lines.iter().enumerate() {
@@ -339,27 +368,41 @@ fn table(lines: &[Line]) -> String {
             }
             None => "-".to_string(),
         };
+        let (commit, analyse) = match r.commit_secs {
+            Some(commit) => (format!("{commit:.2}"), format!("{:.2}", r.secs - commit)),
+            None => ("-".to_string(), "-".to_string()),
+        };
         let _ = writeln!(
             out,
-            "{:<24} {:>10} {:>9.2} {:>11.0} {:>13.0} {:>16.1} {:>14}",
+            "{:<24} {:>10} {:>8.2} {:>10} {:>10} {:>10.0} {:>12.0} {:>10.1} {:>16} {:>6.2}",
             line.name,
             r.rows,
             r.secs,
-            r.rows as f64 / r.secs.max(1e-9),
+            commit,
+            analyse,
+            r.rows as f64 / r.commit_secs.unwrap_or(r.secs).max(1e-9),
             r.rss_kb as f64 / 1024.0,
             mb(line.store_bytes),
-            growth
+            growth,
+            r.load
         );
         previous = Some(line.store_bytes);
     }
-    let _ =
-        writeln!(out, "(store MB = SQLite db + wal after a checkpoint; peak RSS of the phase's process)\n");
+    let _ = writeln!(
+        out,
+        "(wall s: all of ingest_file; commit s: until the snapshot was committed (archive, parse,\n \
+         versions, triangle deltas); analyse s: the nowcasts and delay fits ingest_file computes\n \
+         after the commit; rows/s over the commit time; store MB: SQLite db + wal after a\n \
+         checkpoint; peak RSS of the phase's own process; load: 1-minute load average when the\n \
+         phase started, i.e. other work on the machine)\n"
+    );
     out
 }
 
 /// Runs one phase in a child process of this binary and reads its result line.
 fn child(dir: &Path, phase: &str, file: &Path) -> Result<PhaseResult> {
     let exe = std::env::current_exe().context("finding the bench binary")?;
+    let load = load_average();
     let output = Command::new(exe)
         .args(["--phase", phase, "--dir"])
         .arg(dir)
@@ -380,12 +423,13 @@ fn child(dir: &Path, phase: &str, file: &Path) -> Result<PhaseResult> {
         .lines()
         .find_map(|l| l.strip_prefix("RESULT "))
         .with_context(|| format!("phase {phase} printed no result: {stdout}"))?;
-    let mut result = PhaseResult::default();
+    let mut result = PhaseResult { load, ..PhaseResult::default() };
     for pair in line.split_whitespace() {
         let (key, value) = pair.split_once('=').unwrap_or((pair, ""));
         let n = || value.parse::<u64>().unwrap_or_default();
         match key {
             "secs" => result.secs = value.parse().unwrap_or_default(),
+            "commit_secs" => result.commit_secs = value.parse().ok(),
             "rss_kb" => result.rss_kb = n(),
             "rows" => result.rows = n(),
             "accepted" => result.accepted = n(),
@@ -410,16 +454,19 @@ fn run_phase(phase: &str, args: &Args) -> Result<()> {
     let source = config.source(SOURCE).context("the bench source is missing")?;
     let result = match phase {
         "tidemark" => {
+            let committed = CommitClock::install();
             let started = Instant::now();
             let mut store = Store::open(&config.store.path)?;
             let outcome = ingest_file(&mut store, &config, source, file, None)?;
             let secs = started.elapsed().as_secs_f64();
+            let commit_secs = committed.lock().ok().and_then(|at| *at).map(|at| (at - started).as_secs_f64());
             drop(store);
             let rss_kb = peak_rss_kb();
             checkpoint(&config.store.path)?;
             let c = outcome.counts;
             PhaseResult {
                 secs,
+                commit_secs,
                 rss_kb,
                 rows: c.total,
                 accepted: c.accepted,
@@ -428,6 +475,7 @@ fn run_phase(phase: &str, args: &Args) -> Result<()> {
                 changed: c.changed,
                 removed: c.removed,
                 status: outcome.status.name().to_string(),
+                ..PhaseResult::default()
             }
         }
         "naive" => {
@@ -451,8 +499,17 @@ fn run_phase(phase: &str, args: &Args) -> Result<()> {
     };
     let r = &result;
     println!(
-        "RESULT secs={} rss_kb={} rows={} accepted={} rejected={} new={} changed={} removed={} status={}",
-        r.secs, r.rss_kb, r.rows, r.accepted, r.rejected, r.new, r.changed, r.removed, r.status
+        "RESULT secs={} commit_secs={} rss_kb={} rows={} accepted={} rejected={} new={} changed={} removed={} status={}",
+        r.secs,
+        r.commit_secs.map(|s| s.to_string()).unwrap_or_default(),
+        r.rss_kb,
+        r.rows,
+        r.accepted,
+        r.rejected,
+        r.new,
+        r.changed,
+        r.removed,
+        r.status
     );
     Ok(())
 }
@@ -527,6 +584,53 @@ fn checkpoint(path: &Path) -> Result<()> {
     let conn = Connection::open(path)?;
     conn.query_row("PRAGMA wal_checkpoint(TRUNCATE)", [], |_| Ok(()))?;
     Ok(())
+}
+
+/// Notes when the ingest logs "extract ingested", which it does right after committing the
+/// snapshot and before computing the analyses.
+struct CommitClock {
+    at: Arc<Mutex<Option<Instant>>>,
+}
+
+/// The event `CommitClock` waits for (`src/app/ingest.rs`).
+const COMMITTED_MESSAGE: &str = "extract ingested";
+
+impl CommitClock {
+    /// Installs the clock as this process's tracing subscriber and returns its reading.
+    fn install() -> Arc<Mutex<Option<Instant>>> {
+        let at = Arc::new(Mutex::new(None));
+        let layer = CommitClock { at: Arc::clone(&at) }.with_filter(LevelFilter::INFO);
+        let _ = tracing::subscriber::set_global_default(tracing_subscriber::registry().with(layer));
+        at
+    }
+}
+
+impl<S: tracing::Subscriber> Layer<S> for CommitClock {
+    fn on_event(&self, event: &tracing::Event<'_>, _: LayerContext<'_, S>) {
+        struct IsCommit(bool);
+        impl Visit for IsCommit {
+            fn record_debug(&mut self, field: &tracing::field::Field, value: &dyn std::fmt::Debug) {
+                if field.name() == "message" && format!("{value:?}") == COMMITTED_MESSAGE {
+                    self.0 = true;
+                }
+            }
+        }
+        let mut visit = IsCommit(false);
+        event.record(&mut visit);
+        if visit.0
+            && let Ok(mut at) = self.at.lock()
+        {
+            *at = Some(Instant::now());
+        }
+    }
+}
+
+/// The 1-minute load average.
+fn load_average() -> f64 {
+    fs::read_to_string("/proc/loadavg")
+        .ok()
+        .and_then(|text| text.split_whitespace().next()?.parse().ok())
+        .unwrap_or_default()
 }
 
 /// This process's peak resident set size (VmHWM), in KiB.
@@ -900,7 +1004,8 @@ fn write_extract(path: &Path, seed: u64, existing: u64, added: u64, as_of: Naive
         out.write_all(&row)?;
         generated.rows += 1;
     }
-    out.flush()?;
+    // On disk before any phase is timed, so that no phase pays for writing it back.
+    out.into_inner().map_err(|err| err.into_error())?.sync_all()?;
     generated.bytes = bytes;
     Ok(generated)
 }

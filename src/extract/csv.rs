@@ -8,6 +8,7 @@ use chrono::NaiveDate;
 
 use super::encoding::decode_cell;
 use super::mapping::{Mapped, Mapping, RawValue, map_row};
+use super::pipeline;
 use super::{ExtractError, MAX_FIELD_BYTES, MAX_RAW_BYTES, ParseError, Problem, ProblemKind, Row, raw_text};
 use crate::model::Field;
 
@@ -42,18 +43,29 @@ pub(super) fn parse<E>(
         return Err(ExtractError::Empty.into());
     }
     let layout = Layout::from_header(&record, mapping)?;
-    let mut raw_writer = RawWriter::new(delimiter);
     let mut last_line = 1;
     let mut last_spans_lines = false;
-    while read_record(&mut reader, &mut record)? {
+    // Records are read here and mapped on a second thread (see `pipeline`).
+    let read = |(record, line): &mut (csv::ByteRecord, u64)| -> Result<bool, ExtractError> {
+        if !read_record(&mut reader, record)? {
+            return Ok(false);
+        }
         last_line = match record.position() {
             Some(p) if !cr_only => p.line(),
             _ => last_line + 1,
         };
         last_spans_lines = record.iter().any(|cell| cell.contains(&b'\n'));
-        let row = layout.row(&record, last_line, mapping, latest, &mut raw_writer);
-        sink(row).map_err(ParseError::Sink)?;
-    }
+        *line = last_line;
+        Ok(true)
+    };
+    let map = |batch: &[(csv::ByteRecord, u64)]| {
+        let mut raw_writer = RawWriter::new(delimiter);
+        batch
+            .iter()
+            .map(|(record, line)| layout.row(record, *line, mapping, latest, &mut raw_writer))
+            .collect()
+    };
+    pipeline::run(read, || (csv::ByteRecord::new(), 0), map, sink)?;
     // An unterminated quote swallows the rest of the file into the last record: an odd
     // number of quote bytes overall, and a last record whose cell runs over lines. (A stray
     // quote inside an unquoted cell, such as an inch mark, is odd too, but harmless.)
@@ -178,7 +190,7 @@ impl Layout {
         for (name, idx) in &self.extras {
             match read_cell(&record[*idx], mapping) {
                 RawValue::Text(text) if !text.trim().is_empty() => {
-                    extra.insert(name.clone(), text);
+                    extra.insert(name.clone(), text.into_owned());
                 }
                 RawValue::Unreadable(kind, why) => extra_problems.push(Problem {
                     line,
@@ -204,7 +216,7 @@ impl Layout {
     }
 }
 
-fn read_cell(bytes: &[u8], mapping: &Mapping) -> RawValue {
+fn read_cell<'a>(bytes: &'a [u8], mapping: &Mapping) -> RawValue<'a> {
     if bytes.len() > MAX_FIELD_BYTES {
         return RawValue::Unreadable(ProblemKind::FieldTooLong, "cell longer than 64 KiB");
     }

@@ -1,6 +1,8 @@
 //! Decoding cells that are not UTF-8: the legacy single-byte encodings that older reporting
 //! systems still export. Tables only; no IO.
 
+use std::borrow::Cow;
+
 use super::mapping::LegacyEncoding;
 
 /// Windows-1252 code points for bytes 0x80..=0x9F (the WHATWG Encoding Standard's index;
@@ -24,11 +26,11 @@ pub fn decode_legacy(bytes: &[u8], encoding: LegacyEncoding) -> String {
         .collect()
 }
 
-/// UTF-8 first, then the configured fallback; `None` when neither applies.
-pub fn decode_cell(bytes: &[u8], fallback: Option<LegacyEncoding>) -> Option<String> {
+/// UTF-8 first (borrowed, no copy), then the configured fallback; `None` when neither applies.
+pub fn decode_cell(bytes: &[u8], fallback: Option<LegacyEncoding>) -> Option<Cow<'_, str>> {
     match std::str::from_utf8(bytes) {
-        Ok(text) => Some(text.to_string()),
-        Err(_) => fallback.map(|encoding| decode_legacy(bytes, encoding)),
+        Ok(text) => Some(Cow::Borrowed(text)),
+        Err(_) => fallback.map(|encoding| Cow::Owned(decode_legacy(bytes, encoding))),
     }
 }
 

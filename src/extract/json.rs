@@ -3,6 +3,7 @@
 //! bounded by the largest record. A syntax error in an array stops the file: there is no safe
 //! place to resume.
 
+use std::borrow::Cow;
 use std::collections::BTreeMap;
 use std::fmt;
 use std::io::BufRead;
@@ -13,6 +14,7 @@ use serde_json::{Map, Value};
 
 use super::encoding::decode_legacy;
 use super::mapping::{Mapped, Mapping, RawValue, map_row};
+use super::pipeline;
 use super::{ExtractError, MAX_FIELD_BYTES, ParseError, Problem, ProblemKind, Row, raw_text};
 use crate::model::Field;
 
@@ -22,26 +24,36 @@ pub(super) fn parse_lines<E>(
     latest: NaiveDate,
     sink: &mut impl FnMut(Row) -> Result<(), E>,
 ) -> Result<(), ParseError<E>> {
-    let mut buffer = Vec::new();
     let mut line = 0u64;
     let mut saw_any = false;
-    loop {
-        buffer.clear();
-        if input.read_until(b'\n', &mut buffer).map_err(ExtractError::Read)? == 0 {
-            break;
+    // Lines are read here and parsed on a second thread (see `pipeline`); blank lines are
+    // skipped but counted. The item holds exactly the bytes to parse.
+    let read = |(buffer, number): &mut (Vec<u8>, u64)| -> Result<bool, ExtractError> {
+        loop {
+            buffer.clear();
+            if input.read_until(b'\n', buffer).map_err(ExtractError::Read)? == 0 {
+                return Ok(false);
+            }
+            line += 1;
+            let mut start = buffer.len() - buffer.trim_ascii_start().len();
+            let end = start + trim_ascii(&buffer[start..]).len();
+            if line == 1 && buffer[start..end].starts_with(&UTF8_BOM) {
+                start += UTF8_BOM.len();
+            }
+            if start == end {
+                continue;
+            }
+            buffer.truncate(end);
+            buffer.drain(..start);
+            saw_any = true;
+            *number = line;
+            return Ok(true);
         }
-        line += 1;
-        let mut bytes = trim_ascii(&buffer);
-        if line == 1 {
-            bytes = bytes.strip_prefix(&UTF8_BOM[..]).unwrap_or(bytes);
-        }
-        if bytes.is_empty() {
-            continue;
-        }
-        saw_any = true;
-        let row = line_row(bytes, line, mapping, latest);
-        sink(row).map_err(ParseError::Sink)?;
-    }
+    };
+    let map = |batch: &[(Vec<u8>, u64)]| {
+        batch.iter().map(|(bytes, number)| line_row(bytes, *number, mapping, latest)).collect()
+    };
+    pipeline::run(read, || (Vec::new(), 0), map, sink)?;
     if !saw_any {
         return Err(ExtractError::Empty.into());
     }
@@ -157,12 +169,12 @@ fn object_row(
     }
 }
 
-fn raw_value(value: &Value) -> RawValue {
+fn raw_value(value: &Value) -> RawValue<'_> {
     match value {
         Value::Null => RawValue::Null,
         Value::String(text) => text_value(text),
-        Value::Number(number) => RawValue::Text(number.to_string()),
-        Value::Bool(flag) => RawValue::Text(flag.to_string()),
+        Value::Number(number) => RawValue::Text(Cow::Owned(number.to_string())),
+        Value::Bool(flag) => RawValue::Text(Cow::Owned(flag.to_string())),
         Value::Array(items) => {
             let texts: Option<Vec<String>> = items
                 .iter()
@@ -181,13 +193,13 @@ fn raw_value(value: &Value) -> RawValue {
     }
 }
 
-fn text_value(text: &str) -> RawValue {
+fn text_value(text: &str) -> RawValue<'_> {
     if text.len() > MAX_FIELD_BYTES {
         RawValue::Unreadable(ProblemKind::FieldTooLong, "value longer than 64 KiB")
     } else if text.contains('\0') {
         RawValue::Unreadable(ProblemKind::NulByte, "value contains a NUL character")
     } else {
-        RawValue::Text(text.to_string())
+        RawValue::Text(Cow::Borrowed(text))
     }
 }
 

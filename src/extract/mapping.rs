@@ -3,6 +3,7 @@
 //! is a typed `CaseRecord` plus the field problems found, or a rejection of the whole row.
 //! Pure: the row arrives as a lookup function, whatever its byte format was.
 
+use std::borrow::Cow;
 use std::collections::{BTreeMap, BTreeSet, HashMap};
 
 use chrono::NaiveDate;
@@ -98,18 +99,29 @@ impl Mapping {
     }
 
     fn apply_value_map<'a>(&'a self, field: Field, text: &'a str) -> &'a str {
-        self.values
-            .get(&field)
-            .and_then(|map| map.get(&text.trim().to_lowercase()))
-            .map(String::as_str)
-            .unwrap_or(text)
+        let Some(map) = self.values.get(&field) else { return text };
+        let key = text.trim();
+        let found = if key.is_ascii() && key.len() <= VALUE_KEY_STACK_BYTES {
+            // Short ASCII codes (the usual "F", "Y", "1") are lower-cased on the stack.
+            let mut buffer = [0u8; VALUE_KEY_STACK_BYTES];
+            let lowered = &mut buffer[..key.len()];
+            lowered.copy_from_slice(key.as_bytes());
+            lowered.make_ascii_lowercase();
+            std::str::from_utf8(lowered).ok().and_then(|lowered| map.get(lowered))
+        } else {
+            map.get(&key.to_lowercase())
+        };
+        found.map(String::as_str).unwrap_or(text)
     }
 }
 
-/// A cell as the byte format delivered it.
+/// Longest value-map key lower-cased without a heap allocation; longer ones take the slow path.
+const VALUE_KEY_STACK_BYTES: usize = 64;
+
+/// A cell as the byte format delivered it; text borrows the reader's buffer when it can.
 #[derive(Debug, Clone, PartialEq)]
-pub enum RawValue {
-    Text(String),
+pub enum RawValue<'a> {
+    Text(Cow<'a, str>),
     /// Items of a JSON array.
     List(Vec<String>),
     /// Explicit JSON null, or a column absent from this row.
@@ -128,11 +140,11 @@ pub enum Mapped {
 /// Maps one row. `get` returns the cell for a mapped field (`None` when the column is absent),
 /// `extra` holds the unmapped columns; `latest` is the extract's as-of date (later dates are
 /// impossible).
-pub fn map_row(
+pub fn map_row<'a>(
     mapping: &Mapping,
     line: u64,
     latest: NaiveDate,
-    get: impl Fn(Field) -> Option<RawValue>,
+    get: impl Fn(Field) -> Option<RawValue<'a>>,
     extra: BTreeMap<String, String>,
 ) -> Mapped {
     let case_key = match read_key(mapping, line, get(Field::CaseKey)) {
@@ -158,7 +170,7 @@ pub fn map_row(
     Mapped::Accepted { record, problems }
 }
 
-fn read_key(mapping: &Mapping, line: u64, raw: Option<RawValue>) -> Result<String, Problem> {
+fn read_key(mapping: &Mapping, line: u64, raw: Option<RawValue<'_>>) -> Result<String, Problem> {
     let reject = |kind, why: &str| Problem {
         line,
         field: Some(Field::CaseKey.name().to_string()),
@@ -180,7 +192,7 @@ fn set_field(
     mapping: &Mapping,
     record: &mut CaseRecord,
     field: Field,
-    raw: RawValue,
+    raw: RawValue<'_>,
     latest: NaiveDate,
 ) -> Result<(), FieldError> {
     let text = match raw {
@@ -277,7 +289,7 @@ mod tests {
         let latest = NaiveDate::from_ymd_opt(2026, 3, 10).unwrap();
         let get = |field: Field| {
             let column = m.column(field)?;
-            cells.iter().find(|(c, _)| *c == column).map(|(_, v)| RawValue::Text(v.to_string()))
+            cells.iter().find(|(c, _)| *c == column).map(|(_, v)| RawValue::Text(Cow::Owned(v.to_string())))
         };
         map_row(&m, 7, latest, get, BTreeMap::new())
     }

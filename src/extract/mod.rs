@@ -9,6 +9,7 @@ mod encoding;
 mod json;
 pub mod mapping;
 pub mod normalize;
+mod pipeline;
 
 use std::fmt;
 use std::io::{self, BufRead, BufReader, Read};
@@ -190,7 +191,11 @@ fn decompressed<'a>(reader: impl Read + 'a) -> io::Result<Box<dyn BufRead + 'a>>
 /// full length.
 fn raw_text(bytes: &[u8]) -> String {
     if bytes.len() <= MAX_RAW_BYTES {
-        return String::from_utf8_lossy(bytes).into_owned();
+        // Valid UTF-8 (the usual case) is copied as is, without the slower lossy scan.
+        return match std::str::from_utf8(bytes) {
+            Ok(text) => text.to_owned(),
+            Err(_) => String::from_utf8_lossy(bytes).into_owned(),
+        };
     }
     let mut text = String::from_utf8_lossy(&bytes[..MAX_RAW_BYTES]).into_owned();
     text.push_str(&format!(" [truncated; {} bytes]", bytes.len()));

@@ -22,6 +22,11 @@ pub type Invalid = &'static str;
 pub fn parse_date(text: &str, formats: &[String]) -> Result<NaiveDate, Invalid> {
     let text = text.trim();
     for format in formats {
+        match quick_date(text, format) {
+            Quick::Date(date) => return Ok(date),
+            Quick::NoMatch => continue,
+            Quick::Unsure => {}
+        }
         if let Ok(date) = NaiveDate::parse_from_str(text, format) {
             return Ok(date);
         }
@@ -34,23 +39,109 @@ pub fn parse_date(text: &str, formats: &[String]) -> Result<NaiveDate, Invalid> 
     Err("not a valid date in the configured formats")
 }
 
+/// What the fast path of `parse_date` made of a text for one format.
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum Quick {
+    /// The date chrono would have returned.
+    Date(NaiveDate),
+    /// chrono would have failed for this format too.
+    NoMatch,
+    /// Ask chrono.
+    Unsure,
+}
+
+/// The common case without chrono's format interpreter (which dominated parsing time):
+/// formats made of `%Y`, `%m`, `%d` (each once) and ASCII literals, on text with exactly
+/// 4, 2 and 2 digits in their places. On such text chrono consumes exactly those digits (its
+/// widths are 4, 2 and 2), so the answer is the same; anything else goes to chrono, except
+/// text that lacks one of the format's literal characters, which chrono cannot match either.
+fn quick_date(text: &str, format: &str) -> Quick {
+    let (t, f) = (text.as_bytes(), format.as_bytes());
+    let (mut ti, mut fi) = (0, 0);
+    let mut parts: [Option<u32>; 3] = [None; 3];
+    while fi < f.len() {
+        match f[fi] {
+            b'%' => {
+                let (slot, width) = match f.get(fi + 1) {
+                    Some(b'Y') => (0, 4),
+                    Some(b'm') => (1, 2),
+                    Some(b'd') => (2, 2),
+                    _ => return Quick::Unsure,
+                };
+                if parts[slot].is_some() {
+                    return Quick::Unsure;
+                }
+                match t.get(ti..ti + width).filter(|digits| digits.iter().all(u8::is_ascii_digit)) {
+                    Some(digits) => {
+                        parts[slot] = Some(digits.iter().fold(0, |n, b| n * 10 + u32::from(b - b'0')));
+                    }
+                    None => return lacks_literal(t, f),
+                }
+                ti += width;
+                fi += 2;
+            }
+            literal if literal.is_ascii() && !literal.is_ascii_whitespace() => {
+                if t.get(ti) != Some(&literal) {
+                    return lacks_literal(t, f);
+                }
+                ti += 1;
+                fi += 1;
+            }
+            _ => return Quick::Unsure,
+        }
+    }
+    let [Some(year), Some(month), Some(day)] = parts else { return Quick::Unsure };
+    // Like `parse_date`'s remainder rule: a time may follow after 'T' or a space.
+    if !matches!(t.get(ti), None | Some(b'T') | Some(b' ')) {
+        return Quick::NoMatch;
+    }
+    match NaiveDate::from_ymd_opt(year as i32, month, day) {
+        Some(date) => Quick::Date(date),
+        None => Quick::NoMatch,
+    }
+}
+
+/// chrono matches literals exactly, so a format literal absent from the text means no match.
+fn lacks_literal(text: &[u8], format: &[u8]) -> Quick {
+    let mut idx = 0;
+    while idx < format.len() {
+        if format[idx] == b'%' {
+            idx += 2;
+            continue;
+        }
+        if !text.contains(&format[idx]) {
+            return Quick::NoMatch;
+        }
+        idx += 1;
+    }
+    Quick::Unsure
+}
+
 /// Parses an age into an interval in years: `45` (completed years, `[45, 46)`), `45.5`,
 /// `80+`, `30-39`, `<1`, `6 months`, `3 weeks`, `10 days`, `45 years`.
 pub fn parse_age(text: &str) -> Result<AgeRange, Invalid> {
-    let text = text.trim().to_ascii_lowercase();
+    let text = text.trim();
+    // Most ages are digits; only text with capitals needs a lower-cased copy.
+    let lowered;
+    let text = if text.bytes().any(|b| b.is_ascii_uppercase()) {
+        lowered = text.to_ascii_lowercase();
+        lowered.as_str()
+    } else {
+        text
+    };
     let range = if let Some(lo) = text.strip_suffix('+') {
         let lo = parse_years(lo)?;
         AgeRange { lo, hi: AGE_OPEN_UPPER }
     } else if let Some(hi) = text.strip_prefix('<') {
         AgeRange { lo: 0.0, hi: parse_years(hi)? }
-    } else if let Some((lo, hi)) = split_band(&text) {
+    } else if let Some((lo, hi)) = split_band(text) {
         let (lo, hi) = (parse_years(lo)?, parse_years(hi)?);
         if hi < lo {
             return Err("age band upper bound below lower bound");
         }
         // "30-39" in completed years covers [30, 40).
         AgeRange { lo, hi: hi + 1.0 }
-    } else if let Some((number, unit)) = split_unit(&text) {
+    } else if let Some((number, unit)) = split_unit(text) {
         let years = number / unit_per_year(unit)?;
         if unit_per_year(unit)? == 1.0 && number.fract() == 0.0 {
             AgeRange { lo: years, hi: years + 1.0 }
@@ -58,7 +149,7 @@ pub fn parse_age(text: &str) -> Result<AgeRange, Invalid> {
             AgeRange { lo: years, hi: years }
         }
     } else {
-        let years = parse_years(&text)?;
+        let years = parse_years(text)?;
         if years.fract() == 0.0 {
             AgeRange { lo: years, hi: years + 1.0 }
         } else {
@@ -70,10 +161,14 @@ pub fn parse_age(text: &str) -> Result<AgeRange, Invalid> {
 
 /// Parses a yes/no flag. Values are matched after the source's value map has been applied.
 pub fn parse_flag(text: &str) -> Result<bool, Invalid> {
-    match text.trim().to_ascii_lowercase().as_str() {
-        "yes" | "y" | "true" | "t" | "1" => Ok(true),
-        "no" | "n" | "false" | "f" | "0" => Ok(false),
-        _ => Err("not a recognised yes/no value"),
+    let text = text.trim();
+    let any = |words: &[&str]| words.iter().any(|word| word.eq_ignore_ascii_case(text));
+    if any(&["yes", "y", "true", "t", "1"]) {
+        Ok(true)
+    } else if any(&["no", "n", "false", "f", "0"]) {
+        Ok(false)
+    } else {
+        Err("not a recognised yes/no value")
     }
 }
 
@@ -107,6 +202,11 @@ pub fn normalize_items<'a>(items: impl IntoIterator<Item = &'a str>) -> Vec<Stri
 /// Reads a temperature such as `38.1 c`, `38.1°c`, `temp 39`, `fever 38.5` or `100.4 f`,
 /// returning degrees Celsius. A bare number between 34 and 43 is read as Celsius.
 pub fn temperature_celsius(item: &str) -> Option<f64> {
+    // Every reading starts with a number, so an item without a digit is not one (the quick
+    // answer for the usual "cough", without lower-casing it again).
+    if !item.bytes().any(|b| b.is_ascii_digit()) {
+        return None;
+    }
     let item = item.trim().to_lowercase();
     let item = ["temperature", "temp", "fever", "t="]
         .iter()
@@ -207,6 +307,60 @@ mod tests {
         for bad in ["2026-02-30", "2025-02-29", "2026-13-01", "yesterday", "2026-03-01x", "20260301"] {
             assert!(parse_date(bad, &iso()).is_err(), "{bad} should be invalid");
         }
+    }
+
+    /// The fast path must agree with chrono wherever it answers.
+    #[test]
+    fn quick_dates_agree_with_chrono() {
+        let formats = ["%Y-%m-%d", "%d/%m/%Y", "%m/%d/%Y", "%Y%m%d", "%d.%m.%Y", "%Y-%m", "%e/%m/%Y"];
+        let texts = [
+            "2026-03-01",
+            "2026-02-30",
+            "2024-02-29",
+            "2026-13-01",
+            "2026-00-10",
+            "0000-01-01",
+            "2026-3-1",
+            "2026-03-1",
+            "01/03/2026",
+            "1/3/2026",
+            "31/04/2026",
+            "20260301",
+            "2026030",
+            "202603011",
+            "2026-03-01T08:30:00Z",
+            "2026-03-01 08:30",
+            "2026-03-01x",
+            "2026-03-01T",
+            "01.03.2026",
+            "+2026-03-01",
+            "2026/03/01",
+            "2026-03",
+            "yesterday",
+            "",
+            "1-1-1",
+            "12/31/2026",
+        ];
+        for format in formats {
+            for text in texts {
+                let chrono_answer = NaiveDate::parse_from_str(text, format).ok().or_else(|| {
+                    NaiveDate::parse_and_remainder(text, format)
+                        .ok()
+                        .filter(|(_, rest)| rest.starts_with('T') || rest.starts_with(' '))
+                        .map(|(date, _)| date)
+                });
+                match quick_date(text, format) {
+                    Quick::Date(date) => assert_eq!(Some(date), chrono_answer, "{text} as {format}"),
+                    Quick::NoMatch => assert_eq!(None, chrono_answer, "{text} as {format}"),
+                    Quick::Unsure => {}
+                }
+            }
+        }
+        assert_eq!(
+            quick_date("2026-03-01", "%Y-%m-%d"),
+            Quick::Date(NaiveDate::from_ymd_opt(2026, 3, 1).unwrap())
+        );
+        assert_eq!(quick_date("01/03/2026", "%Y-%m-%d"), Quick::NoMatch);
     }
 
     #[test]

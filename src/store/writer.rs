@@ -1,13 +1,24 @@
-//! The writer: one connection, one extract = one transaction. Rows are staged in a temporary
-//! table as they stream in, duplicate keys are resolved (the last row wins), the stage is
-//! diffed against the current versions, and only new and changed records write a version.
-//! Dropping an `Ingest` without `apply` or `hold` rolls everything back, so a crash or a
-//! cancelled ingest leaves nothing half-applied.
+//! The writer: one connection, one extract = one transaction. As rows stream in, a sorting
+//! thread (`sorter`) compares each with its record's current version through a map of the
+//! source's current keys and row hashes, read once per extract: an unchanged record writes
+//! nothing, a new or changed one comes back to this thread, which writes its version at once
+//! and closes the previous one. A key that appears again supersedes its earlier row (the last
+//! row wins; the earlier ones are rejected at `plan` with their raw text). `apply` closes the
+//! records a full extract no longer contains and commits; `hold` takes the new versions out
+//! again and commits only the snapshot with its rejects and field problems. Dropping an
+//! `Ingest` without `apply` or `hold` rolls everything back, so a crash or a cancelled ingest
+//! leaves nothing half-applied.
 
+mod sorter;
+
+use std::fmt;
 use std::path::{Path, PathBuf};
 
-use chrono::{DateTime, Utc};
-use rusqlite::{Connection, OptionalExtension, Transaction, TransactionBehavior, params};
+use chrono::{DateTime, Datelike, NaiveDate, Utc};
+use rusqlite::types::ValueRef;
+use rusqlite::{CachedStatement, Connection, OptionalExtension, Transaction, TransactionBehavior, params};
+
+use self::sorter::{Accepted, Action, Pipeline, Sorted, Sorter};
 
 use super::lock::{self, WriterLock};
 use super::triangle::{TriangleSpec, record_deltas};
@@ -44,7 +55,6 @@ pub struct Plan {
 }
 
 /// One extract being written; see the module docs.
-#[derive(Debug)]
 pub struct Ingest<'s> {
     tx: Transaction<'s>,
     source_id: i64,
@@ -53,25 +63,62 @@ pub struct Ingest<'s> {
     key_column: String,
     rejected: u64,
     field_problems: u64,
+    /// Accepted rows not yet handed to the sorter.
+    pending: Vec<Accepted>,
+    /// The sorting thread; `None` once `plan` has drained it.
+    pipeline: Option<Pipeline>,
+    /// What `plan` found.
+    sorted: Sorted,
+    scratch: Scratch,
 }
 
-const VERSION_COLUMNS: &str = "line, case_key, row_hash, jurisdiction, onset_date, specimen_date, result_date, \
-     report_date, admit_date, death_date, outcome, age_lo, age_hi, sex, hospitalised, symptoms, \
-     conditions, invalid, extra_json";
+impl fmt::Debug for Ingest<'_> {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.debug_struct("Ingest")
+            .field("source_id", &self.source_id)
+            .field("snapshot_id", &self.snapshot_id)
+            .field("kind", &self.kind)
+            .field("rejected", &self.rejected)
+            .field("field_problems", &self.field_problems)
+            .finish_non_exhaustive()
+    }
+}
+
+/// Accepted rows handed to the sorting thread at a time: large enough that handing over
+/// and looking up statements cost little per row, small enough to keep both threads busy.
+const BATCH_ROWS: usize = 1024;
+
+/// Reusable buffers for the JSON columns, so that writing a version allocates little.
+#[derive(Debug, Default)]
+struct Scratch {
+    symptoms: Vec<u8>,
+    conditions: Vec<u8>,
+    extra: Vec<u8>,
+}
+
+const VERSION_INSERT: &str = "INSERT INTO case_version (source_id, valid_from, line, case_key, row_hash, \
+     jurisdiction, onset_date, specimen_date, result_date, report_date, admit_date, death_date, outcome, \
+     age_lo, age_hi, sex, hospitalised, symptoms, conditions, invalid, extra_json)
+     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20, ?21)";
+
+const ATTR_INSERT: &str = "INSERT OR IGNORE INTO case_attr (version_id, kind, value) VALUES (?1, ?2, ?3)";
+
+const CLOSE_VERSION: &str = "UPDATE case_version SET valid_to = ?1 WHERE version_id = ?2";
+
+const REOPEN_VERSION: &str = "UPDATE case_version SET valid_to = NULL WHERE version_id = ?1";
+
+/// Deletes, attributes first, the version this extract wrote for a key.
+const DELETE_WRITTEN: [&str; 2] = [
+    "DELETE FROM case_attr WHERE version_id IN (SELECT version_id FROM case_version
+         WHERE source_id = ?1 AND case_key = ?2 AND valid_from = ?3)",
+    "DELETE FROM case_version WHERE source_id = ?1 AND case_key = ?2 AND valid_from = ?3",
+];
 
 impl Store {
     /// Opens (creating and migrating if needed) the store at `path` for writing.
     pub fn open(path: &Path) -> Result<Store, StoreError> {
         let lock = lock::acquire(path)?;
         let conn = open_writer(path)?;
-        conn.execute_batch(
-            "CREATE TEMP TABLE IF NOT EXISTS stage (
-                 line INTEGER, case_key TEXT, row_hash INTEGER, raw TEXT, jurisdiction TEXT,
-                 onset_date TEXT, specimen_date TEXT, result_date TEXT, report_date TEXT,
-                 admit_date TEXT, death_date TEXT, outcome TEXT, age_lo REAL, age_hi REAL,
-                 sex TEXT, hospitalised INTEGER, symptoms TEXT, conditions TEXT, invalid TEXT,
-                 extra_json TEXT);",
-        )?;
         Ok(Store { conn, path: path.to_path_buf(), _lock: lock })
     }
 
@@ -135,7 +182,7 @@ impl Store {
     ) -> Result<Ingest<'_>, StoreError> {
         let tx = self.conn.transaction_with_behavior(TransactionBehavior::Immediate)?;
         let snapshot_id = insert_snapshot(&tx, source_id, meta, SnapshotStatus::Failed, "incomplete")?;
-        Ingest::start(tx, source_id, snapshot_id, meta.kind, key_column)
+        Ingest::start(tx, spill_dir(&self.path), source_id, snapshot_id, meta.kind, key_column)
     }
 
     /// Starts re-applying a held snapshot (its bytes are parsed again by the caller). Refused
@@ -152,7 +199,7 @@ impl Store {
         }
         tx.execute("DELETE FROM reject WHERE snapshot_id = ?1", [snapshot_id])?;
         tx.execute("DELETE FROM field_problem WHERE snapshot_id = ?1", [snapshot_id])?;
-        Ingest::start(tx, source_id, snapshot_id, kind, key_column)
+        Ingest::start(tx, spill_dir(&self.path), source_id, snapshot_id, kind, key_column)
     }
 
     /// Discards a held snapshot: it stays listed with status `rejected`, nothing is applied.
@@ -188,17 +235,13 @@ impl Store {
 impl<'s> Ingest<'s> {
     fn start(
         tx: Transaction<'s>,
+        spill_dir: PathBuf,
         source_id: i64,
         snapshot_id: i64,
         kind: ExtractKind,
         key_column: &str,
     ) -> Result<Ingest<'s>, StoreError> {
-        tx.execute_batch(
-            "DELETE FROM temp.stage;
-             DROP INDEX IF EXISTS temp.stage_key;
-             DROP TABLE IF EXISTS temp.diff;
-             DROP TABLE IF EXISTS temp.gone;",
-        )?;
+        let pipeline = current_versions(&tx, source_id, spill_dir)?;
         Ok(Ingest {
             tx,
             source_id,
@@ -207,6 +250,10 @@ impl<'s> Ingest<'s> {
             key_column: key_column.to_string(),
             rejected: 0,
             field_problems: 0,
+            pending: Vec::with_capacity(BATCH_ROWS),
+            pipeline: Some(pipeline),
+            sorted: Sorted::default(),
+            scratch: Scratch::default(),
         })
     }
 
@@ -214,164 +261,74 @@ impl<'s> Ingest<'s> {
         self.snapshot_id
     }
 
-    /// Stages an accepted row or records a rejected one.
+    /// Takes an accepted row (written if new or changed) or records a rejected one. Accepted
+    /// rows are decided in batches on the sorting thread, so an error may surface at a later
+    /// `add` or at `plan`.
     pub fn add(&mut self, row: Row) -> Result<(), StoreError> {
         match row {
             Row::Accepted { line, record, raw, problems } => {
                 for problem in &problems {
-                    self.add_field_problem(&record.case_key, problem)?;
+                    add_field_problem(&self.tx, self.snapshot_id, &record.case_key, problem)?;
+                    self.field_problems += 1;
                 }
-                self.stage(line, &record, &raw)
+                self.pending.push(Accepted { line, record, raw });
+                if self.pending.len() >= BATCH_ROWS {
+                    self.send_pending()?;
+                }
+                Ok(())
             }
-            Row::Rejected(problem) => self.add_reject(&problem),
+            Row::Rejected(problem) => {
+                add_reject(&self.tx, self.snapshot_id, &problem)?;
+                self.rejected += 1;
+                Ok(())
+            }
         }
     }
 
-    fn stage(&mut self, line: u64, record: &CaseRecord, raw: &str) -> Result<(), StoreError> {
-        let mut stmt = self.tx.prepare_cached(
-            "INSERT INTO temp.stage VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, \
-             ?14, ?15, ?16, ?17, ?18, ?19, ?20)",
-        )?;
-        let date = |field: Field| record.date(field).map(|d| d.to_string());
-        let list = |items: &Option<Vec<String>>| {
-            items.as_ref().map(|i| serde_json::to_string(i).unwrap_or_default())
-        };
-        let invalid = (!record.invalid.is_empty())
-            .then(|| record.invalid.iter().map(|f| f.name()).collect::<Vec<_>>().join(","));
-        let extra =
-            (!record.extra.is_empty()).then(|| serde_json::to_string(&record.extra).unwrap_or_default());
-        stmt.execute(params![
-            line as i64,
-            record.case_key,
-            record.row_hash(),
-            raw,
-            record.jurisdiction,
-            date(Field::OnsetDate),
-            date(Field::SpecimenDate),
-            date(Field::ResultDate),
-            date(Field::ReportDate),
-            date(Field::AdmitDate),
-            date(Field::DeathDate),
-            record.outcome,
-            record.age.map(|a| a.lo),
-            record.age.map(|a| a.hi),
-            record.sex,
-            record.hospitalised,
-            list(&record.symptoms),
-            list(&record.conditions),
-            invalid,
-            extra,
-        ])?;
+    /// Hands the pending rows to the sorter and executes whatever it has decided so far.
+    fn send_pending(&mut self) -> Result<(), StoreError> {
+        let batch = std::mem::replace(&mut self.pending, Vec::with_capacity(BATCH_ROWS));
+        let pipeline = self.pipeline.as_mut().ok_or_else(planned)?;
+        pipeline.send(batch)?;
+        while let Some(actions) = pipeline.next(false) {
+            let actions = actions?;
+            execute(&self.tx, self.source_id, self.snapshot_id, &mut self.scratch, &actions)?;
+            pipeline.discard(actions);
+        }
         Ok(())
     }
 
-    fn add_reject(&mut self, problem: &Problem) -> Result<(), StoreError> {
-        self.rejected += 1;
-        let mut stmt = self.tx.prepare_cached(
-            "INSERT INTO reject (snapshot_id, line, field, kind, reason, raw) VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
-        )?;
-        stmt.execute(params![
-            self.snapshot_id,
-            problem.line as i64,
-            problem.field,
-            problem.kind.code(),
-            problem.message,
-            problem.raw,
-        ])?;
-        Ok(())
-    }
-
-    fn add_field_problem(&mut self, case_key: &str, problem: &Problem) -> Result<(), StoreError> {
-        self.field_problems += 1;
-        let mut stmt = self.tx.prepare_cached(
-            "INSERT INTO field_problem (snapshot_id, line, case_key, field, kind, reason)
-             VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
-        )?;
-        stmt.execute(params![
-            self.snapshot_id,
-            problem.line as i64,
-            case_key,
-            problem.field.as_deref().unwrap_or(""),
-            problem.kind.code(),
-            problem.message,
-        ])?;
-        Ok(())
-    }
-
-    /// Resolves duplicate keys (the last row wins; the others are rejected with their raw
-    /// text) and works out what applying would do. Call once, after the last `add`.
+    /// Waits for the sorter's last decisions, rejects the rows that a later row with the same
+    /// key superseded (with their raw text) and works out what applying would do. Call once,
+    /// after the last `add`.
     pub fn plan(&mut self) -> Result<Plan, StoreError> {
-        self.resolve_duplicate_keys()?;
-        let tx = &self.tx;
-        tx.execute(
-            "CREATE TEMP TABLE diff AS
-             SELECT s.rowid AS srow, v.version_id AS prev
-             FROM temp.stage s
-             LEFT JOIN case_version v
-               ON v.source_id = ?1 AND v.case_key = s.case_key AND v.valid_to IS NULL
-             WHERE v.version_id IS NULL OR v.row_hash <> s.row_hash",
-            [self.source_id],
-        )?;
-        tx.execute("CREATE TEMP TABLE gone (version_id INTEGER PRIMARY KEY)", [])?;
-        if self.kind == ExtractKind::Full {
-            tx.execute(
-                "INSERT INTO temp.gone
-                 SELECT v.version_id FROM case_version v
-                 WHERE v.source_id = ?1 AND v.valid_to IS NULL
-                   AND NOT EXISTS (SELECT 1 FROM temp.stage s WHERE s.case_key = v.case_key)",
-                [self.source_id],
-            )?;
+        self.send_pending()?;
+        let mut pipeline = self.pipeline.take().ok_or_else(planned)?;
+        while let Some(actions) = pipeline.next(true) {
+            let actions = actions?;
+            execute(&self.tx, self.source_id, self.snapshot_id, &mut self.scratch, &actions)?;
+            pipeline.discard(actions);
         }
-        let count = |sql: &str| -> Result<u64, StoreError> {
-            Ok(tx.query_row(sql, [], |r| r.get::<_, i64>(0))? as u64)
-        };
-        let current_before: i64 = tx.query_row(
-            "SELECT count(*) FROM case_version WHERE source_id = ?1 AND valid_to IS NULL",
-            [self.source_id],
-            |r| r.get(0),
+        self.sorted = pipeline.finish()?.finish(self.kind)?;
+        let mut stmt = self.tx.prepare_cached(
+            "INSERT INTO reject (snapshot_id, line, field, kind, reason, raw)
+             VALUES (?1, ?2, 'case_key', 'duplicate_key', ?3, ?4)",
         )?;
-        Ok(Plan {
-            accepted: count("SELECT count(*) FROM temp.stage")?,
-            new: count("SELECT count(*) FROM temp.diff WHERE prev IS NULL")?,
-            changed: count("SELECT count(*) FROM temp.diff WHERE prev IS NOT NULL")?,
-            removed: count("SELECT count(*) FROM temp.gone")?,
-            current_before: current_before as u64,
-        })
+        for row in &self.sorted.superseded {
+            let reason = format!(
+                "column \"{}\": the same key appears again at line {}; the last row was kept",
+                self.key_column, row.keep_line
+            );
+            stmt.execute(params![self.snapshot_id, row.line as i64, reason, row.raw])?;
+        }
+        self.rejected += self.sorted.superseded.len() as u64;
+        Ok(self.sorted.plan)
     }
 
-    fn resolve_duplicate_keys(&mut self) -> Result<(), StoreError> {
-        let tx = &self.tx;
-        tx.execute_batch("CREATE INDEX temp.stage_key ON stage (case_key)")?;
-        let reason = format!(
-            "column \"{}\": the same key appears again at line ' || d.keep_line || '; the last row was kept",
-            self.key_column.replace('\'', "''")
-        );
-        let rejected = tx.execute(
-            &format!(
-                "INSERT INTO reject (snapshot_id, line, field, kind, reason, raw)
-                 WITH dup AS (SELECT case_key, max(rowid) AS keep, max(line) AS keep_line
-                              FROM temp.stage GROUP BY case_key HAVING count(*) > 1)
-                 SELECT ?1, s.line, 'case_key', 'duplicate_key', '{reason}', s.raw
-                 FROM temp.stage s JOIN dup d ON d.case_key = s.case_key
-                 WHERE s.rowid <> d.keep"
-            ),
-            [self.snapshot_id],
-        )?;
-        if rejected > 0 {
-            tx.execute(
-                "DELETE FROM temp.stage WHERE rowid IN (
-                     SELECT s.rowid FROM temp.stage s
-                     WHERE s.rowid < (SELECT max(t.rowid) FROM temp.stage t WHERE t.case_key = s.case_key))",
-                [],
-            )?;
-        }
-        self.rejected += rejected as u64;
-        Ok(())
-    }
-
-    /// Applies the plan and commits: closes changed and removed versions, writes new ones.
-    /// With a `triangle` spec, the reporting triangle's deltas are recorded in the same
-    /// transaction, so the triangle never disagrees with the versions.
+    /// Applies the plan and commits: new and changed versions are written already; this
+    /// closes the records a full extract no longer contains. With a `triangle` spec, the
+    /// reporting triangle's deltas are recorded in the same transaction, so the triangle
+    /// never disagrees with the versions.
     pub fn apply(
         self,
         plan: &Plan,
@@ -379,63 +336,45 @@ impl<'s> Ingest<'s> {
         note: Option<&str>,
         triangle: Option<&TriangleSpec>,
     ) -> Result<RowCounts, StoreError> {
-        let tx = &self.tx;
-        let s = self.snapshot_id;
-        tx.execute(
-            "UPDATE case_version SET valid_to = ?1
-             WHERE version_id IN (SELECT prev FROM temp.diff WHERE prev IS NOT NULL)",
-            [s],
-        )?;
-        tx.execute(
-            "UPDATE case_version SET valid_to = ?1 WHERE version_id IN (SELECT version_id FROM temp.gone)",
-            [s],
-        )?;
-        tx.execute(
-            &format!(
-                "INSERT INTO case_version (source_id, valid_from, {VERSION_COLUMNS})
-                 SELECT ?1, ?2, {VERSION_COLUMNS} FROM temp.diff d JOIN temp.stage s ON s.rowid = d.srow
-                 ORDER BY s.rowid"
-            ),
-            (self.source_id, s),
-        )?;
-        for (column, kind) in [("symptoms", "symptom"), ("conditions", "condition")] {
-            tx.execute(
-                &format!(
-                    "INSERT OR IGNORE INTO case_attr (version_id, kind, value)
-                     SELECT v.version_id, '{kind}', j.value FROM case_version v, json_each(v.{column}) j
-                     WHERE v.valid_from = ?1 AND v.{column} IS NOT NULL"
-                ),
-                [s],
-            )?;
+        {
+            let mut close = self.tx.prepare_cached(CLOSE_VERSION)?;
+            for version_id in &self.sorted.gone {
+                close.execute((self.snapshot_id, version_id))?;
+            }
         }
-        let counts = RowCounts {
-            total: rows_total,
-            accepted: plan.accepted,
-            rejected: self.rejected,
-            new: plan.new,
-            changed: plan.changed,
-            removed: plan.removed,
-        };
         if let Some(spec) = triangle {
-            record_deltas(tx, self.source_id, s, spec)?;
+            record_deltas(&self.tx, self.source_id, self.snapshot_id, spec)?;
         }
+        let counts = self.counts(plan, rows_total);
         self.finish(SnapshotStatus::Applied, &counts, note)?;
         Ok(counts)
     }
 
-    /// Stores the snapshot as `held` without applying it, and commits. Its rejects and field
-    /// problems are kept so an operator can see them.
+    /// Stores the snapshot as `held` without applying it, and commits: the versions written
+    /// while the rows streamed in are taken out again and the versions they closed reopened.
+    /// Its rejects and field problems are kept so an operator can see them.
     pub fn hold(self, plan: &Plan, rows_total: u64, note: &str) -> Result<RowCounts, StoreError> {
-        let counts = RowCounts {
+        self.tx.execute(
+            "DELETE FROM case_attr WHERE version_id IN
+                 (SELECT version_id FROM case_version WHERE valid_from = ?1)",
+            [self.snapshot_id],
+        )?;
+        self.tx.execute("DELETE FROM case_version WHERE valid_from = ?1", [self.snapshot_id])?;
+        self.tx.execute("UPDATE case_version SET valid_to = NULL WHERE valid_to = ?1", [self.snapshot_id])?;
+        let counts = self.counts(plan, rows_total);
+        self.finish(SnapshotStatus::Held, &counts, Some(note))?;
+        Ok(counts)
+    }
+
+    fn counts(&self, plan: &Plan, rows_total: u64) -> RowCounts {
+        RowCounts {
             total: rows_total,
             accepted: plan.accepted,
             rejected: self.rejected,
             new: plan.new,
             changed: plan.changed,
             removed: plan.removed,
-        };
-        self.finish(SnapshotStatus::Held, &counts, Some(note))?;
-        Ok(counts)
+        }
     }
 
     fn finish(
@@ -464,12 +403,251 @@ impl<'s> Ingest<'s> {
                 applied_at,
             ],
         )?;
-        self.tx.execute_batch(
-            "DELETE FROM temp.stage; DROP INDEX IF EXISTS temp.stage_key;
-             DROP TABLE IF EXISTS temp.diff; DROP TABLE IF EXISTS temp.gone;",
-        )?;
         self.tx.commit()?;
         Ok(())
+    }
+}
+
+fn planned() -> StoreError {
+    StoreError::Refused("rows added after the extract was planned".into())
+}
+
+/// Starts the sorting thread and feeds it the source's current versions. They are read here
+/// and handed over in chunks, so that the map is built on the sorting thread while this one
+/// goes on reading (and then parsing).
+fn current_versions(
+    tx: &Transaction<'_>,
+    source_id: i64,
+    spill_dir: PathBuf,
+) -> Result<Pipeline, StoreError> {
+    // The last applied snapshot's size sizes the map, so it rarely grows while rows stream in.
+    let expected: i64 = tx
+        .query_row(
+            "SELECT rows_accepted FROM snapshot WHERE source_id = ?1 AND status = 'applied'
+             ORDER BY snapshot_id DESC LIMIT 1",
+            [source_id],
+            |row| row.get(0),
+        )
+        .optional()?
+        .unwrap_or_default();
+    let expected = expected.max(0) as usize;
+    let pipeline = Pipeline::start(Sorter::new(expected + expected / KEY_HEADROOM_DIVISOR, spill_dir))?;
+    let mut stmt = tx.prepare(
+        "SELECT case_key, version_id, row_hash FROM case_version WHERE source_id = ?1 AND valid_to IS NULL",
+    )?;
+    let mut rows = stmt.query([source_id])?;
+    let mut chunk = Vec::with_capacity(CURRENT_CHUNK);
+    let mut current = 0usize;
+    while let Some(row) = rows.next()? {
+        let key = match row.get_ref(0)? {
+            ValueRef::Text(text) => Box::from(String::from_utf8_lossy(text)),
+            _ => row.get::<_, String>(0)?.into_boxed_str(),
+        };
+        chunk.push((key, row.get(1)?, row.get(2)?));
+        if chunk.len() == CURRENT_CHUNK {
+            current += chunk.len();
+            pipeline.add_current(std::mem::replace(&mut chunk, Vec::with_capacity(CURRENT_CHUNK)))?;
+        }
+    }
+    current += chunk.len();
+    pipeline.add_current(chunk)?;
+    tracing::debug!(source_id, current, "current versions read");
+    Ok(pipeline)
+}
+
+/// Current versions handed to the sorting thread at a time.
+const CURRENT_CHUNK: usize = 8192;
+
+/// Room for new keys beyond the last snapshot's: one in this many (about 6%).
+const KEY_HEADROOM_DIVISOR: usize = 16;
+
+/// Executes one batch of the sorter's decisions, in order.
+fn execute(
+    tx: &Transaction<'_>,
+    source_id: i64,
+    snapshot_id: i64,
+    scratch: &mut Scratch,
+    actions: &[Action],
+) -> Result<(), StoreError> {
+    if actions.is_empty() {
+        return Ok(());
+    }
+    let mut insert_version = tx.prepare_cached(VERSION_INSERT)?;
+    let mut insert_attr = tx.prepare_cached(ATTR_INSERT)?;
+    let delete_written = |key: &str| -> Result<(), StoreError> {
+        for sql in DELETE_WRITTEN {
+            tx.prepare_cached(sql)?.execute(params![source_id, key, snapshot_id])?;
+        }
+        Ok(())
+    };
+    for action in actions {
+        match action {
+            Action::Write { line, record, hash, replace, close } => {
+                if *replace {
+                    delete_written(&record.case_key)?;
+                }
+                if let Some(prev) = close {
+                    tx.prepare_cached(CLOSE_VERSION)?.execute((snapshot_id, prev))?;
+                }
+                let version = VersionRow { source_id, snapshot_id, line: *line, record, hash: *hash };
+                let version_id = version.insert(&mut insert_version, scratch, tx)?;
+                for (items, kind) in [(&record.symptoms, "symptom"), (&record.conditions, "condition")] {
+                    for item in items.iter().flatten() {
+                        insert_attr.execute(params![version_id, kind, item])?;
+                    }
+                }
+            }
+            Action::Restore { key, replace, reopen } => {
+                if *replace {
+                    delete_written(key)?;
+                }
+                if let Some(prev) = reopen {
+                    tx.prepare_cached(REOPEN_VERSION)?.execute([prev])?;
+                }
+            }
+        }
+    }
+    Ok(())
+}
+
+/// One version to insert.
+struct VersionRow<'r> {
+    source_id: i64,
+    snapshot_id: i64,
+    line: u64,
+    record: &'r CaseRecord,
+    hash: i64,
+}
+
+impl VersionRow<'_> {
+    fn insert(
+        &self,
+        stmt: &mut CachedStatement<'_>,
+        scratch: &mut Scratch,
+        tx: &Transaction<'_>,
+    ) -> Result<i64, StoreError> {
+        let record = self.record;
+        let dates = record.dates.map(|date| date.map(IsoDate::new));
+        let date = |field: Field| field.date_index().and_then(|idx| dates[idx].as_ref()).map(IsoDate::as_str);
+        let symptoms = json_text(&mut scratch.symptoms, record.symptoms.as_ref());
+        let conditions = json_text(&mut scratch.conditions, record.conditions.as_ref());
+        let extra = json_text(&mut scratch.extra, Some(&record.extra).filter(|e| !e.is_empty()));
+        let invalid = (!record.invalid.is_empty())
+            .then(|| record.invalid.iter().map(|f| f.name()).collect::<Vec<_>>().join(","));
+        stmt.execute(params![
+            self.source_id,
+            self.snapshot_id,
+            self.line as i64,
+            record.case_key,
+            self.hash,
+            record.jurisdiction,
+            date(Field::OnsetDate),
+            date(Field::SpecimenDate),
+            date(Field::ResultDate),
+            date(Field::ReportDate),
+            date(Field::AdmitDate),
+            date(Field::DeathDate),
+            record.outcome,
+            record.age.map(|a| a.lo),
+            record.age.map(|a| a.hi),
+            record.sex,
+            record.hospitalised,
+            symptoms,
+            conditions,
+            invalid,
+            extra,
+        ])?;
+        Ok(tx.last_insert_rowid())
+    }
+}
+
+/// A value as JSON text written into `buffer` (the same text as `serde_json::to_string`);
+/// `None` if the value is missing.
+fn json_text<'b>(buffer: &'b mut Vec<u8>, value: Option<&impl serde::Serialize>) -> Option<&'b str> {
+    let value = value?;
+    buffer.clear();
+    serde_json::to_writer(&mut *buffer, value).ok()?;
+    std::str::from_utf8(buffer).ok()
+}
+
+/// A date as ISO 8601 text without an allocation: the same text as `NaiveDate`'s `Display`.
+enum IsoDate {
+    Short([u8; 10]),
+    Long(String),
+}
+
+impl IsoDate {
+    fn new(date: NaiveDate) -> IsoDate {
+        let (year, month, day) = (date.year(), date.month(), date.day());
+        if !(0..=9999).contains(&year) {
+            return IsoDate::Long(date.to_string());
+        }
+        let year = year as u32;
+        let digit = |n: u32| b'0' + (n % 10) as u8;
+        IsoDate::Short([
+            digit(year / 1000),
+            digit(year / 100),
+            digit(year / 10),
+            digit(year),
+            b'-',
+            digit(month / 10),
+            digit(month),
+            b'-',
+            digit(day / 10),
+            digit(day),
+        ])
+    }
+
+    fn as_str(&self) -> &str {
+        match self {
+            IsoDate::Short(bytes) => std::str::from_utf8(bytes).unwrap_or_default(),
+            IsoDate::Long(text) => text,
+        }
+    }
+}
+
+fn add_reject(tx: &Transaction<'_>, snapshot_id: i64, problem: &Problem) -> Result<(), StoreError> {
+    let mut stmt = tx.prepare_cached(
+        "INSERT INTO reject (snapshot_id, line, field, kind, reason, raw) VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+    )?;
+    stmt.execute(params![
+        snapshot_id,
+        problem.line as i64,
+        problem.field,
+        problem.kind.code(),
+        problem.message,
+        problem.raw,
+    ])?;
+    Ok(())
+}
+
+fn add_field_problem(
+    tx: &Transaction<'_>,
+    snapshot_id: i64,
+    case_key: &str,
+    problem: &Problem,
+) -> Result<(), StoreError> {
+    let mut stmt = tx.prepare_cached(
+        "INSERT INTO field_problem (snapshot_id, line, case_key, field, kind, reason)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+    )?;
+    stmt.execute(params![
+        snapshot_id,
+        problem.line as i64,
+        case_key,
+        problem.field.as_deref().unwrap_or(""),
+        problem.kind.code(),
+        problem.message,
+    ])?;
+    Ok(())
+}
+
+/// The store's folder, where the spill file goes: it holds patient-level text, so it stays
+/// beside the store (a private folder) rather than in a shared temporary folder.
+fn spill_dir(store: &Path) -> PathBuf {
+    match store.parent() {
+        Some(parent) if !parent.as_os_str().is_empty() => parent.to_path_buf(),
+        _ => PathBuf::from("."),
     }
 }
 
