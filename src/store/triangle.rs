@@ -418,18 +418,27 @@ impl Reader {
         stratum: Option<Field>,
         age_edges: &[u32],
     ) -> Result<Vec<DelayRow>, StoreError> {
-        let to_sql = match to {
-            Some(field) => field.name().to_string(),
-            None => "(SELECT substr(n.as_of, 1, 10) FROM case_version f JOIN snapshot n ON n.snapshot_id = f.valid_from
-                      WHERE f.source_id = v.source_id AND f.case_key = v.case_key ORDER BY f.valid_from LIMIT 1)"
-                .to_string(),
-        };
         let stratum_sql = stratum.map(|f| stratum_sql(f, age_edges)).unwrap_or_else(|| "''".into());
         let from_sql = from.name();
+        // The day a record first appeared is its earliest version's snapshot day. A window
+        // over the versions up to the snapshot (in index order by key) finds it in one scan,
+        // where a correlated subquery would look every record up again.
+        let (to_column, first_column, to_sql) = match to {
+            Some(field) => (format!(", v.{} AS end_day", field.name()), "", "w.end_day"),
+            None => (
+                String::new(),
+                ", min(v.valid_from) OVER (PARTITION BY v.case_key) AS first_from",
+                "(SELECT substr(n.as_of, 1, 10) FROM snapshot n WHERE n.snapshot_id = w.first_from)",
+            ),
+        };
         let mut stmt = self.conn.prepare(&format!(
-            "SELECT {from_sql}, {to_sql}, coalesce({stratum_sql}, '{MISSING_STRATUM}') FROM case_version v
-             WHERE v.source_id = ?1 AND v.valid_from <= ?2 AND (v.valid_to IS NULL OR v.valid_to > ?2)
-               AND {from_sql} IS NOT NULL"
+            "SELECT w.start_day, {to_sql}, w.stratum FROM (
+                 SELECT v.{from_sql} AS start_day, v.valid_to,
+                        coalesce({stratum_sql}, '{MISSING_STRATUM}') AS stratum {to_column} {first_column}
+                 FROM case_version v
+                 WHERE v.source_id = ?1 AND v.valid_from <= ?2
+             ) w
+             WHERE (w.valid_to IS NULL OR w.valid_to > ?2) AND w.start_day IS NOT NULL"
         ))?;
         let rows = stmt.query_map((source_id, snapshot_id), |r| {
             Ok((r.get::<_, String>(0)?, r.get::<_, Option<String>>(1)?, r.get::<_, String>(2)?))
