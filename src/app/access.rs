@@ -216,6 +216,9 @@ fn sources_table(config: &Config, reader: &Reader) -> Result<Table> {
 /// store cannot answer (503) or a failure (500). Messages come from the CLI's own errors,
 /// which name fields and sources but never a cell value.
 fn classify(err: anyhow::Error) -> ListingError {
+    if let Some(listing) = err.downcast_ref::<ListingError>() {
+        return listing.clone();
+    }
     let message = err.to_string();
     if err.chain().any(|c| c.is::<UsageError>()) {
         return ListingError::BadRequest(message);

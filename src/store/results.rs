@@ -27,9 +27,23 @@ impl Reader {
         if !self.has_relation("quality_latest")? {
             return Ok(None);
         }
-        let _ = as_of.map(time_text);
-        let sql = "SELECT * FROM quality_latest WHERE ?1 IS NULL OR source = ?1";
-        Ok(Some(self.listing(sql, (source,))?))
+        let Some(as_of) = as_of else {
+            let sql = "SELECT * FROM quality_latest WHERE ?1 IS NULL OR source = ?1";
+            return Ok(Some(self.listing(sql, (source,))?));
+        };
+        // The same columns as quality_latest, for each source's latest quality rows at as_of.
+        let sql =
+            "SELECT s.name AS source, q.snapshot_id, n.as_of, q.scope, q.stratum_kind, q.stratum, q.field,
+                          q.records, q.missing, q.invalid, q.share_missing, q.share_invalid,
+                          n.rows_total, n.rows_new, n.rows_changed, n.rows_removed, n.rows_rejected
+                   FROM quality q
+                   JOIN snapshot n ON n.snapshot_id = q.snapshot_id
+                   JOIN source s ON s.source_id = q.source_id
+                   WHERE (?1 IS NULL OR s.name = ?1)
+                     AND q.snapshot_id = (SELECT max(l.snapshot_id) FROM quality l
+                                          JOIN snapshot m ON m.snapshot_id = l.snapshot_id
+                                          WHERE l.source_id = q.source_id AND m.as_of <= ?2)";
+        Ok(Some(self.listing(sql, (source, time_text(as_of)))?))
     }
 
     /// Open alerts: from `alert_open`, or with `as_of` those open at that time. `None` when
@@ -42,9 +56,18 @@ impl Reader {
         if !self.has_relation("alert_open")? {
             return Ok(None);
         }
-        let _ = as_of.map(time_text);
-        let sql = "SELECT * FROM alert_open WHERE ?1 IS NULL OR source = ?1";
-        Ok(Some(self.listing(sql, (source,))?))
+        let Some(as_of) = as_of else {
+            let sql = "SELECT * FROM alert_open WHERE ?1 IS NULL OR source = ?1";
+            return Ok(Some(self.listing(sql, (source,))?));
+        };
+        // Alerts opened by as_of and not resolved by then (their state column is today's).
+        let sql = "SELECT alert_id, rule, source, subject, severity, state, summary, figures, snapshot_id,
+                          opened_at, last_seen_at, acked_at, resolved_at
+                   FROM alert
+                   WHERE (?1 IS NULL OR source = ?1) AND opened_at <= ?2
+                     AND (resolved_at IS NULL OR resolved_at > ?2)
+                   ORDER BY alert_id";
+        Ok(Some(self.listing(sql, (source, time_text(as_of)))?))
     }
 
     /// Every row of a parameterised statement as a listing.
