@@ -156,6 +156,10 @@ fn collect(conn: &rusqlite::Connection, sql: &str, max_rows: usize) -> Result<Ta
 /// Whether an action may run in an analyst's query; the error says why not.
 fn authorize(action: &AuthAction<'_>) -> Result<(), String> {
     match action {
+        // Token hashes cannot be turned back into tokens, but they are nobody's business.
+        AuthAction::Read { table_name, .. } if table_name.eq_ignore_ascii_case("api_token") => {
+            Err("reading api_token is not allowed".into())
+        }
         AuthAction::Select | AuthAction::Read { .. } | AuthAction::Recursive => Ok(()),
         AuthAction::Function { function_name } => {
             let name = function_name.to_ascii_lowercase();
@@ -282,6 +286,7 @@ mod tests {
             ("ALTER TABLE reject ADD COLUMN y", "ALTER TABLE"),
             ("ANALYZE", "ANALYZE"),
             ("REINDEX", "REINDEX"),
+            ("SELECT sha256 FROM api_token", "api_token"),
         ] {
             let message = refused(&path, sql);
             assert!(message.contains(reason), "{sql:?}: {message}");
