@@ -8,6 +8,7 @@ use std::process::ExitCode;
 use anyhow::Result;
 use clap::{Args, Parser, Subcommand};
 
+use tidemark::app::access;
 use tidemark::app::commands::{self, CurveArgs, UsageError};
 use tidemark::app::demo::{self, DemoOptions};
 use tidemark::config::{Config, ConfigError};
@@ -147,9 +148,22 @@ enum Command {
     /// Run one read-only SQL statement against the store.
     Query {
         sql: String,
+        /// Most rows returned (default serve.query_max_rows, 10,000).
+        #[arg(long, value_name = "N")]
+        max_rows: Option<usize>,
+        /// Time limit, e.g. 30s (default serve.query_timeout, 10s).
+        #[arg(long, value_name = "DURATION")]
+        timeout: Option<String>,
         #[command(flatten)]
         listing: Listing,
     },
+    /// Create, list or revoke API tokens.
+    Token {
+        #[command(subcommand)]
+        action: TokenAction,
+    },
+    /// Serve the API and ops endpoints on serve.bind, without polling.
+    Serve,
     /// The daemon: poll every source on its schedule and ingest what is new.
     Run {
         /// Do not serve /healthz and /metrics.
@@ -179,6 +193,24 @@ enum Command {
 }
 
 #[derive(Debug, Subcommand)]
+enum TokenAction {
+    /// Create a token and print it (once; only its hash is stored).
+    Create {
+        name: String,
+        /// read: the listings; sql: the listings and POST /api/v1/query.
+        #[arg(long, default_value = "read")]
+        scope: String,
+    },
+    /// List tokens (names, scopes, hints; never the tokens).
+    List {
+        #[command(flatten)]
+        listing: Listing,
+    },
+    /// Revoke a token; the API refuses it from its next request.
+    Revoke { name: String },
+}
+
+#[derive(Debug, Subcommand)]
 enum SnapshotAction {
     /// Apply a held snapshot.
     Release { id: i64 },
@@ -192,7 +224,7 @@ enum SnapshotAction {
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
-    if !matches!(cli.command, Command::Run { .. }) {
+    if !matches!(cli.command, Command::Run { .. } | Command::Serve) {
         init_tracing(false, false);
     }
     match run(cli) {
@@ -230,6 +262,24 @@ fn init_tracing(daemon: bool, json: bool) {
 fn load(flag: Option<&Path>) -> Result<Config> {
     let path = commands::config_path(flag)?;
     Ok(Config::load(&path)?)
+}
+
+/// The limits of `tidemark query`: the config's, or the flags'.
+fn query_limits(
+    config: &Config,
+    max_rows: Option<usize>,
+    timeout: Option<&str>,
+) -> Result<tidemark::store::SqlLimits> {
+    let mut limits = config.serve.query;
+    if let Some(rows) = max_rows {
+        limits.max_rows = rows.max(1);
+    }
+    if let Some(text) = timeout {
+        limits.timeout = tidemark::config::parse_duration(text)
+            .filter(|d| !d.is_zero())
+            .ok_or_else(|| UsageError(format!("--timeout {text}: a duration such as 10s")))?;
+    }
+    Ok(limits)
 }
 
 fn run(cli: Cli) -> Result<u8> {
@@ -303,7 +353,25 @@ fn run(cli: Cli) -> Result<u8> {
             };
             commands::delays(&load(flag)?, &args)?
         }
-        Command::Query { sql, listing } => commands::query(&load(flag)?, &sql, listing.format)?,
+        Command::Query { sql, max_rows, timeout, listing } => {
+            let config = load(flag)?;
+            let limits = query_limits(&config, max_rows, timeout.as_deref())?;
+            commands::query(&config, &sql, limits, listing.format)?
+        }
+        Command::Token { action } => {
+            let config = load(flag)?;
+            match action {
+                TokenAction::Create { name, scope } => access::token_create(&config, &name, &scope)?,
+                TokenAction::List { listing } => access::token_list(&config, listing.format)?,
+                TokenAction::Revoke { name } => access::token_revoke(&config, &name)?,
+            }
+        }
+        Command::Serve => {
+            let config = load(flag)?;
+            init_tracing(true, config.log_json);
+            access::serve(config)?;
+            return Ok(0);
+        }
         Command::Run { no_ops } => {
             let config = load(flag)?;
             init_tracing(true, config.log_json);

@@ -13,9 +13,6 @@ use crate::model::{Field, SnapshotStatus};
 use crate::store::{Reader, Store};
 use crate::table::{Cell, OutputFormat, Table};
 
-/// Most rows `tidemark query` prints; beyond it the query is refused with advice.
-pub const QUERY_ROW_LIMIT: usize = 100_000;
-
 /// A mistake in how tidemark was called (exit code 2), as opposed to a failure (exit code 1).
 #[derive(Debug, thiserror::Error)]
 #[error("{0}")]
@@ -126,6 +123,11 @@ pub fn snapshots(config: &Config, source_name: Option<&str>, format: OutputForma
         source(config, name)?;
     }
     let reader = Reader::open(&config.store.path)?;
+    Ok(snapshots_table(&reader, source_name)?.render(format))
+}
+
+/// The listing behind `tidemark snapshots` (and the API's `snapshots`).
+pub fn snapshots_table(reader: &Reader, source_name: Option<&str>) -> Result<Table> {
     let mut table = Table::new(&[
         "snapshot_id",
         "source",
@@ -156,7 +158,7 @@ pub fn snapshots(config: &Config, source_name: Option<&str>, format: OutputForma
             s.note.into(),
         ]);
     }
-    Ok(table.render(format))
+    Ok(table)
 }
 
 /// `tidemark snapshots release ID`
@@ -228,6 +230,12 @@ pub struct CurveArgs<'a> {
 
 /// `tidemark curve --source NAME --by FIELD [--as-of TIME] [--stratify FIELD]`
 pub fn curve(config: &Config, args: &CurveArgs<'_>) -> Result<String> {
+    let reader = Reader::open(&config.store.path)?;
+    Ok(curve_table(config, &reader, args)?.render(args.format))
+}
+
+/// The listing behind `tidemark curve` (and the API's `curve`); `args.format` is not used.
+pub fn curve_table(config: &Config, reader: &Reader, args: &CurveArgs<'_>) -> Result<Table> {
     source(config, args.source)?;
     let by = parse_field_arg(args.by)?;
     if !by.is_date() {
@@ -242,7 +250,6 @@ pub fn curve(config: &Config, args: &CurveArgs<'_>) -> Result<String> {
         )));
     }
     let as_of = args.as_of.map(parse_time_arg).transpose()?;
-    let reader = Reader::open(&config.store.path)?;
     let snapshot = reader
         .source_id(args.source)?
         .map(|id| Ok::<_, anyhow::Error>((id, reader.snapshot_as_of(id, as_of)?)))
@@ -264,13 +271,18 @@ pub fn curve(config: &Config, args: &CurveArgs<'_>) -> Result<String> {
         cells.extend([row.count.into(), snapshot_id.into()]);
         table.push(cells);
     }
-    Ok(table.render(args.format))
+    Ok(table)
 }
 
-/// `tidemark query SQL` on a read-only connection.
-pub fn query(config: &Config, sql: &str, format: OutputFormat) -> Result<String> {
-    let reader = Reader::open(&config.store.path)?;
-    Ok(reader.query(sql, QUERY_ROW_LIMIT)?.render(format))
+/// `tidemark query SQL` on a read-only connection that refuses anything but reading, within
+/// `serve.query_max_rows` and `serve.query_timeout` (or the overrides given).
+pub fn query(
+    config: &Config,
+    sql: &str,
+    limits: crate::store::SqlLimits,
+    format: OutputFormat,
+) -> Result<String> {
+    Ok(crate::store::run_sql(&config.store.path, sql, &limits)?.render(format))
 }
 
 /// Where the config comes from: `--config`, `$TIDEMARK_CONFIG`, or `./tidemark.toml`.
@@ -309,8 +321,8 @@ pub fn run_daemon(config: Config, serve_ops: bool) -> Result<()> {
         let ops = if serve_ops {
             let listener = tokio::net::TcpListener::bind(config.bind)
                 .await
-                .with_context(|| format!("binding the ops endpoint to {}", config.bind))?;
-            tracing::info!(address = %config.bind, "ops endpoint: /healthz, /metrics");
+                .with_context(|| format!("binding the API and ops endpoints to {}", config.bind))?;
+            tracing::info!(address = %config.bind, "serving /api/v1, /healthz, /metrics");
             Some(listener)
         } else {
             None
@@ -321,7 +333,7 @@ pub fn run_daemon(config: Config, serve_ops: bool) -> Result<()> {
 }
 
 /// Cancels `shutdown` on SIGTERM or SIGINT.
-async fn stop_on_signal(shutdown: tokio_util::sync::CancellationToken) {
+pub(super) async fn stop_on_signal(shutdown: tokio_util::sync::CancellationToken) {
     use tokio::signal::unix::{SignalKind, signal};
     let (Ok(mut term), Ok(mut int)) = (signal(SignalKind::terminate()), signal(SignalKind::interrupt()))
     else {
@@ -417,6 +429,21 @@ pub struct NowcastArgs<'a> {
 /// `tidemark nowcast`: the stored nowcast of the snapshot current at `--as-of` (computed now
 /// if it was not stored), one row per reference date, with 50/90/95% prediction intervals.
 pub fn nowcast(config: &Config, args: &NowcastArgs<'_>) -> Result<String> {
+    let reader = Reader::open(&config.store.path)?;
+    let (table, note) = nowcast_table(config, &reader, args)?;
+    let mut out = table.render(args.format);
+    if args.format == OutputFormat::Table {
+        if !note.is_empty() {
+            out.push_str(&format!("{note}\n"));
+        }
+        out.push_str(NOWCAST_CAUTION);
+    }
+    Ok(out)
+}
+
+/// The listing behind `tidemark nowcast` (and the API's `nowcast`), with the note saying how
+/// `auto` chose; `args.format` is not used.
+pub fn nowcast_table(config: &Config, reader: &Reader, args: &NowcastArgs<'_>) -> Result<(Table, String)> {
     use super::analyse::{self, TriangleKey};
     source(config, args.source)?;
     let field = parse_field_arg(args.by)?;
@@ -427,12 +454,11 @@ pub fn nowcast(config: &Config, args: &NowcastArgs<'_>) -> Result<String> {
         return Err(usage(format!("--method {}: choose auto, hazard or smooth", args.method)));
     }
     let as_of = args.as_of.map(parse_time_arg).transpose()?;
-    let reader = Reader::open(&config.store.path)?;
     let source_id = reader.source_id(args.source)?.context("the source has no snapshots yet")?;
     let snapshot_id = reader
         .snapshot_as_of(source_id, as_of)?
         .context("the source has no applied snapshot at that time")?;
-    let (method, note) = analyse::resolve_method(&reader, source_id, field, args.method)?;
+    let (method, note) = analyse::resolve_method(reader, source_id, field, args.method)?;
     let mut strata = vec![TriangleKey::all(field)];
     if let Some(text) = args.stratify {
         let stratum_field = parse_field_arg(text)?;
@@ -464,7 +490,7 @@ pub fn nowcast(config: &Config, args: &NowcastArgs<'_>) -> Result<String> {
     for key in &strata {
         let stored = reader.nowcast(snapshot_id, (field.name(), &key.kind, &key.stratum, &method))?;
         let rows = if stored.is_empty() {
-            let tri = analyse::load_triangle(&reader, source_id, snapshot_id, key, &config.analysis, 0)?;
+            let tri = analyse::load_triangle(reader, source_id, snapshot_id, key, &config.analysis, 0)?;
             analyse::run_method(&method, &tri, &config.analysis, analyse::seed_for(snapshot_id, key, &method))
                 .rows
         } else {
@@ -489,14 +515,7 @@ pub fn nowcast(config: &Config, args: &NowcastArgs<'_>) -> Result<String> {
             ]);
         }
     }
-    let mut out = table.render(args.format);
-    if args.format == OutputFormat::Table {
-        if !note.is_empty() {
-            out.push_str(&format!("{note}\n"));
-        }
-        out.push_str(NOWCAST_CAUTION);
-    }
-    Ok(out)
+    Ok((table, note))
 }
 
 /// Printed under every nowcast table.
@@ -618,6 +637,18 @@ pub struct DelaysArgs<'a> {
 /// `tidemark delays`: the delay between two date fields (or to the day a record first
 /// appeared in the store), summarised and fitted with daily censoring and right truncation.
 pub fn delays(config: &Config, args: &DelaysArgs<'_>) -> Result<String> {
+    let reader = Reader::open(&config.store.path)?;
+    let (table, footer) = delays_table(config, &reader, args)?;
+    let mut out = table.render(args.format);
+    if args.format == OutputFormat::Table {
+        out.push_str(&footer);
+    }
+    Ok(out)
+}
+
+/// The listing behind `tidemark delays` (and the API's `delays`) and the line printed under
+/// it as text; `args.format` is not used.
+pub fn delays_table(config: &Config, reader: &Reader, args: &DelaysArgs<'_>) -> Result<(Table, String)> {
     use super::analyse;
     use crate::config::DelayEnd;
     source(config, args.source)?;
@@ -637,14 +668,13 @@ pub fn delays(config: &Config, args: &DelaysArgs<'_>) -> Result<String> {
     let stratify = args.stratify.map(parse_field_arg).transpose()?;
     let compare_by = args.compare_by.map(parse_field_arg).transpose()?;
     let as_of = args.as_of.map(parse_time_arg).transpose()?;
-    let reader = Reader::open(&config.store.path)?;
     let source_id = reader.source_id(args.source)?.context("the source has no snapshots yet")?;
     let snapshot_id = reader
         .snapshot_as_of(source_id, as_of)?
         .context("the source has no applied snapshot at that time")?;
     let grouping = compare_by.or(stratify);
     let obs = analyse::delay_observations(
-        &reader,
+        reader,
         source_id,
         snapshot_id,
         (from, to),
@@ -652,7 +682,7 @@ pub fn delays(config: &Config, args: &DelaysArgs<'_>) -> Result<String> {
         &config.analysis.age_bands,
     )?;
     if let Some(field) = compare_by {
-        return Ok(compare_groups(&obs, field, args.format));
+        return Ok(compare_groups(&obs, field));
     }
     let mut groups: std::collections::BTreeMap<String, Vec<crate::analysis::delay::DelayObs>> =
         Default::default();
@@ -696,14 +726,11 @@ pub fn delays(config: &Config, args: &DelaysArgs<'_>) -> Result<String> {
             table.push(delay_row(label, &summary, fit, rank + 1));
         }
     }
-    let mut out = table.render(args.format);
-    if args.format == OutputFormat::Table {
-        out.push_str(&format!(
-            "delays {from} -> {} as of snapshot {snapshot_id}; fits use daily interval censoring and right truncation at each record's horizon; negative delays are counted and left out of fits\n",
-            to.name()
-        ));
-    }
-    Ok(out)
+    let footer = format!(
+        "delays {from} -> {} as of snapshot {snapshot_id}; fits use daily interval censoring and right truncation at each record's horizon; negative delays are counted and left out of fits\n",
+        to.name()
+    );
+    Ok((table, footer))
 }
 
 fn delay_row(
@@ -753,8 +780,7 @@ fn week_of(date: NaiveDate) -> String {
 fn compare_groups(
     obs: &[(String, NaiveDate, crate::analysis::delay::DelayObs)],
     field: Field,
-    format: OutputFormat,
-) -> String {
+) -> (Table, String) {
     let mut groups: std::collections::BTreeMap<&str, Vec<f64>> = Default::default();
     for (stratum, _, o) in obs.iter().filter(|(_, _, o)| o.delay >= 0) {
         groups.entry(stratum.as_str()).or_default().push(o.delay as f64);
@@ -781,11 +807,8 @@ fn compare_groups(
             ]);
         }
     }
-    let mut out = table.render(format);
-    if format == OutputFormat::Table {
-        out.push_str(&format!(
-            "two-sided Mann-Whitney U of delays by {field}: exact for small samples without ties, otherwise the normal approximation with tie and continuity corrections; delays are truncated at the snapshot, so compare groups with similar reporting windows\n"
-        ));
-    }
-    out
+    let footer = format!(
+        "two-sided Mann-Whitney U of delays by {field}: exact for small samples without ties, otherwise the normal approximation with tie and continuity corrections; delays are truncated at the snapshot, so compare groups with similar reporting windows\n"
+    );
+    (table, footer)
 }

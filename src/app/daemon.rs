@@ -1,7 +1,7 @@
 //! `tidemark run`: the unattended daemon. One task per source polls on the source's cron
 //! schedule (once at start, never overlapping itself, never waiting for another source),
-//! hands new extracts to the one writer thread, and records health and metrics; the ops
-//! endpoint serves `/healthz` and `/metrics`. Shutdown is a `CancellationToken`: polls stop,
+//! hands new extracts to the one writer thread, and records health and metrics; the same
+//! listener serves the API (`/api/v1`), `/healthz` and `/metrics`. Shutdown is a `CancellationToken`: polls stop,
 //! an ingest in progress rolls back, and `run` returns once every task has ended.
 
 use std::collections::{HashMap, HashSet};
@@ -59,8 +59,8 @@ struct Shared {
     events: Option<mpsc::UnboundedSender<PollEvent>>,
 }
 
-/// Runs the daemon until `shutdown` fires. `ops` is the listener for `/healthz` and
-/// `/metrics` (none in tests that do not need it).
+/// Runs the daemon until `shutdown` fires. `ops` is the listener for the API (`/api/v1`),
+/// `/healthz` and `/metrics` (none in tests that do not need it).
 pub async fn run(
     config: Arc<Config>,
     shutdown: CancellationToken,
@@ -84,10 +84,11 @@ pub async fn run(
     if let Some(listener) = ops {
         let state =
             ops::OpsState { metrics, scheduler_running: running.clone(), store: config.store.path.clone() };
-        let token = shutdown.clone();
+        let (token, config) = (shutdown.clone(), config.clone());
         tracker.spawn(async move {
-            if let Err(err) = serve::serve(listener, ops::router(state), token).await {
-                tracing::error!(error = %err, "ops endpoint stopped");
+            let router = super::access::app_router(&config, Some(state));
+            if let Err(err) = serve::serve(listener, router, token).await {
+                tracing::error!(error = %err, "API and ops endpoints stopped");
             }
         });
     }

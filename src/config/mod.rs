@@ -33,9 +33,23 @@ pub struct Config {
     pub email: Option<EmailConfig>,
     pub webhook: Option<WebhookConfig>,
     pub bind: SocketAddr,
+    /// Limits of the API and of analysts' SQL (`[serve]`).
+    pub serve: ServeLimits,
     pub log_json: bool,
     pub analysis: AnalysisConfig,
 }
+
+/// How long requests and analysts' queries may run, and how many rows a query returns.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct ServeLimits {
+    pub query: crate::store::SqlLimits,
+    /// An API request that takes longer is answered 408 and dropped.
+    pub request_timeout: Duration,
+}
+
+/// Default API request timeout: longer than the SQL time limit, so a slow query ends with
+/// its own clear message rather than the generic timeout.
+pub const DEFAULT_REQUEST_TIMEOUT: Duration = Duration::from_secs(30);
 
 #[derive(Debug, Clone)]
 pub struct StoreConfig {
@@ -197,6 +211,7 @@ fn build(raw: RawConfig, file: &Path, base: &Path, problems: &mut Vec<String>) -
         problems.push(format!("serve.bind: \"{bind}\" is not an address:port"));
         DEFAULT_BIND.parse().unwrap()
     });
+    let serve = build_serve_limits(&raw.serve, problems);
     let log_json = match raw.log.format.as_deref() {
         None | Some("text") => false,
         Some("json") => true,
@@ -214,8 +229,27 @@ fn build(raw: RawConfig, file: &Path, base: &Path, problems: &mut Vec<String>) -
         email: raw.alert.email.and_then(|e| build_email(e, problems)),
         webhook: raw.alert.webhook.and_then(|w| build_webhook(w, problems)),
         bind,
+        serve,
         log_json,
     }
+}
+
+fn build_serve_limits(raw: &raw::RawServe, problems: &mut Vec<String>) -> ServeLimits {
+    let mut duration = |key: &str, text: Option<&str>, default: Duration| match text {
+        None => default,
+        Some(text) => parse_duration(text).filter(|d| !d.is_zero()).unwrap_or_else(|| {
+            problems.push(format!("serve.{key}: \"{text}\" is not a duration such as 10s"));
+            default
+        }),
+    };
+    let timeout = duration("query_timeout", raw.query_timeout.as_deref(), crate::store::sql::DEFAULT_TIMEOUT);
+    let request_timeout =
+        duration("request_timeout", raw.request_timeout.as_deref(), DEFAULT_REQUEST_TIMEOUT);
+    let max_rows = raw.query_max_rows.unwrap_or(crate::store::sql::DEFAULT_MAX_ROWS);
+    if max_rows == 0 {
+        problems.push("serve.query_max_rows: must be at least 1".into());
+    }
+    ServeLimits { query: crate::store::SqlLimits { max_rows: max_rows.max(1), timeout }, request_timeout }
 }
 
 fn build_email(raw: raw::RawEmail, problems: &mut Vec<String>) -> Option<EmailConfig> {

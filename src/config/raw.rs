@@ -98,6 +98,9 @@ pub struct RawWebhook {
 #[serde(deny_unknown_fields)]
 pub struct RawServe {
     pub bind: Option<String>,
+    pub query_max_rows: Option<usize>,
+    pub query_timeout: Option<String>,
+    pub request_timeout: Option<String>,
 }
 
 #[derive(Debug, Deserialize, Default)]

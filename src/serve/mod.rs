@@ -1,12 +1,23 @@
-//! HTTP edges. `ops` answers `/healthz` and `/metrics` for operators; `feed` is a tiny
+//! HTTP edges. `api` is the analysts' API under `/api/v1` (token-protected; `routes` lists
+//! its routes and writes its OpenAPI document, `auth` checks tokens, `pool` keeps read-only
+//! connections); `ops` answers `/healthz` and `/metrics` for operators; `feed` is a tiny
 //! extract server that the demo (and tests) use to stand in for a lab's export endpoint.
 //! Everything here only reads the store; nothing writes.
 
+pub mod api;
+pub mod auth;
 pub mod feed;
 pub mod ops;
+pub mod pool;
+pub mod routes;
 
 use tokio::net::TcpListener;
 use tokio_util::sync::CancellationToken;
+
+/// Everything served on `serve.bind`: the API under `/api/v1` and the ops endpoints.
+pub fn app_router(api: api::ApiState, ops: ops::OpsState) -> axum::Router {
+    axum::Router::new().nest(api::API_BASE, api::router(api)).merge(ops::router(ops))
+}
 
 /// Serves `router` on `listener` until `shutdown` fires, then lets requests in flight end.
 pub async fn serve(

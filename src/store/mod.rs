@@ -7,7 +7,10 @@ pub mod archive;
 pub mod backup;
 pub mod lock;
 mod read;
+mod results;
 mod sources;
+pub mod sql;
+mod tokens;
 mod triangle;
 mod writer;
 
@@ -20,6 +23,8 @@ use rusqlite::{Connection, OpenFlags};
 
 pub use self::read::{AGE_BAND_EDGES, CurveRow, Reader, SnapshotRow, VersionRow};
 pub use self::sources::{FileRecord, PollRecord, SourceStatus};
+pub use self::sql::{SqlLimits, run_sql};
+pub use self::tokens::{TokenRow, TokenScope, create_token, revoke_token};
 pub use self::triangle::{DelayRow, MISSING_STRATUM, TriangleSpec};
 pub use self::writer::{Ingest, LastApplied, Plan, Store};
 
@@ -28,6 +33,7 @@ const MIGRATIONS: &[(i64, &str)] = &[
     (1, include_str!("../../migrations/0001_line_list.sql")),
     (2, include_str!("../../migrations/0002_daemon.sql")),
     (3, include_str!("../../migrations/0003_analysis.sql")),
+    (5, include_str!("../../migrations/0005_access.sql")),
 ];
 
 /// The schema version this build writes and understands.

@@ -1,0 +1,317 @@
+//! The analysts' HTTP API under `/api/v1`: listings (sources, snapshots, curve, nowcast,
+//! delays, quality, alerts), read-only SQL, and its OpenAPI document. JSON (arrays of
+//! objects with snake_case keys, as the CLI's `--format json`) or CSV. Every request but the
+//! document needs a bearer token; every read runs on a read-only connection on a blocking
+//! thread, never on the async executor. Nothing here writes to the store.
+//!
+//! The listings themselves come through the `Listings` trait, which `app` implements with the
+//! CLI's own functions, so the API and the CLI always give the same answer.
+
+use std::collections::BTreeMap;
+use std::path::PathBuf;
+use std::sync::Arc;
+
+use axum::Router;
+use axum::body::Bytes;
+use axum::extract::{Query, State};
+use axum::http::{HeaderMap, StatusCode, header};
+use axum::response::{IntoResponse, Response};
+use axum::routing::{get, post};
+use tower_http::limit::RequestBodyLimitLayer;
+use tower_http::timeout::TimeoutLayer;
+
+use super::auth::{self, Denied};
+use super::pool::ReaderPool;
+pub use super::routes::{API_BASE, Endpoint, Handler, Method, ROUTES, Route};
+use crate::config::ServeLimits;
+use crate::store::{Reader, TokenScope};
+use crate::table::Table;
+
+/// Largest request body: a SQL statement is a few KiB; nothing else takes a body.
+pub const MAX_BODY_BYTES: usize = 64 * 1024;
+
+/// Answers the API's listings. `app` implements it with the CLI's functions.
+pub trait Listings: Send + Sync + std::fmt::Debug + 'static {
+    fn listing(&self, reader: &Reader, endpoint: Endpoint, params: &Params) -> Result<Table, ListingError>;
+}
+
+/// Why a listing could not be answered; the message goes to the client, so it names
+/// parameters and sources only, never a cell value.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+pub enum ListingError {
+    #[error("{0}")]
+    BadRequest(String),
+    #[error("{0}")]
+    NotFound(String),
+    #[error("{0}")]
+    Unavailable(String),
+    #[error("internal error; see the server log")]
+    Internal,
+}
+
+/// A request's query parameters (without `format`).
+#[derive(Debug, Clone, Default)]
+pub struct Params(BTreeMap<String, String>);
+
+impl Params {
+    pub fn new(values: BTreeMap<String, String>) -> Params {
+        Params(values)
+    }
+
+    pub fn get(&self, name: &str) -> Option<&str> {
+        self.0.get(name).map(String::as_str).filter(|v| !v.is_empty())
+    }
+
+    pub fn required(&self, name: &str) -> Result<&str, ListingError> {
+        self.get(name).ok_or_else(|| ListingError::BadRequest(format!("missing query parameter {name}")))
+    }
+
+    /// A yes/no parameter: absent is false.
+    pub fn flag(&self, name: &str) -> Result<bool, ListingError> {
+        match self.get(name) {
+            None | Some("false") | Some("0") => Ok(false),
+            Some("true") | Some("1") => Ok(true),
+            Some(_) => Err(ListingError::BadRequest(format!("{name}: use true or false"))),
+        }
+    }
+}
+
+/// What the API needs.
+#[derive(Debug, Clone)]
+pub struct ApiState {
+    pub listings: Arc<dyn Listings>,
+    pub pool: Arc<ReaderPool>,
+    pub limits: ServeLimits,
+}
+
+impl ApiState {
+    pub fn new(store: PathBuf, listings: Arc<dyn Listings>, limits: ServeLimits) -> ApiState {
+        ApiState { listings, pool: Arc::new(ReaderPool::new(store)), limits }
+    }
+}
+
+/// The API's routes (paths relative to `/api/v1`), with the request timeout and body limit.
+pub fn router(state: ApiState) -> Router {
+    let mut router = Router::new();
+    for route in ROUTES {
+        let handler = route.handler;
+        let needed = route.scope;
+        router = match (route.method, handler) {
+            (Method::Get, Handler::Listing(endpoint)) => router.route(
+                route.path,
+                get(
+                    move |State(s): State<ApiState>,
+                          Query(q): Query<BTreeMap<String, String>>,
+                          h: HeaderMap| { listing(s, endpoint, needed, q, h) },
+                ),
+            ),
+            (Method::Get, Handler::OpenApi) => router.route(route.path, get(openapi)),
+            (Method::Post, Handler::Query) => router.route(
+                route.path,
+                post(
+                    move |State(s): State<ApiState>,
+                          Query(q): Query<BTreeMap<String, String>>,
+                          h: HeaderMap,
+                          body: Bytes| { query(s, needed, q, h, body) },
+                ),
+            ),
+            _ => router,
+        };
+    }
+    let timeout = state.limits.request_timeout;
+    router
+        .layer(RequestBodyLimitLayer::new(MAX_BODY_BYTES))
+        .layer(TimeoutLayer::with_status_code(StatusCode::REQUEST_TIMEOUT, timeout))
+        .with_state(state)
+}
+
+/// An error answer: a status and a short message, as `{"error": "..."}`.
+#[derive(Debug)]
+pub struct ApiError {
+    status: StatusCode,
+    message: String,
+}
+
+impl ApiError {
+    fn new(status: StatusCode, message: impl Into<String>) -> ApiError {
+        ApiError { status, message: message.into() }
+    }
+}
+
+impl IntoResponse for ApiError {
+    fn into_response(self) -> Response {
+        let body = serde_json::json!({ "error": self.message }).to_string();
+        let mut response = (self.status, [(header::CONTENT_TYPE, "application/json")], body).into_response();
+        if self.status == StatusCode::UNAUTHORIZED {
+            response
+                .headers_mut()
+                .insert(header::WWW_AUTHENTICATE, header::HeaderValue::from_static("Bearer"));
+        }
+        response
+    }
+}
+
+impl From<ListingError> for ApiError {
+    fn from(err: ListingError) -> ApiError {
+        let status = match &err {
+            ListingError::BadRequest(_) => StatusCode::BAD_REQUEST,
+            ListingError::NotFound(_) => StatusCode::NOT_FOUND,
+            ListingError::Unavailable(_) => StatusCode::SERVICE_UNAVAILABLE,
+            ListingError::Internal => StatusCode::INTERNAL_SERVER_ERROR,
+        };
+        ApiError::new(status, err.to_string())
+    }
+}
+
+/// JSON or CSV, from `?format=` or the Accept header.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Format {
+    Json,
+    Csv,
+}
+
+fn format_of(params: &mut BTreeMap<String, String>, headers: &HeaderMap) -> Result<Format, ApiError> {
+    match params.remove("format").as_deref() {
+        Some("json") => Ok(Format::Json),
+        Some("csv") => Ok(Format::Csv),
+        Some(other) => {
+            Err(ApiError::new(StatusCode::BAD_REQUEST, format!("format={other}: use json or csv")))
+        }
+        None => {
+            let accept = headers.get(header::ACCEPT).and_then(|v| v.to_str().ok()).unwrap_or("");
+            Ok(if accept.contains("text/csv") { Format::Csv } else { Format::Json })
+        }
+    }
+}
+
+fn rows_response(table: &Table, format: Format) -> Response {
+    match format {
+        Format::Json => ([(header::CONTENT_TYPE, "application/json")], table.to_json()).into_response(),
+        Format::Csv => ([(header::CONTENT_TYPE, "text/csv; charset=utf-8")], table.to_csv()).into_response(),
+    }
+}
+
+/// Refuses parameters the route does not take, so a typo is an error rather than ignored.
+fn check_params(route_params: &[&str], params: &BTreeMap<String, String>) -> Result<(), ApiError> {
+    match params.keys().find(|k| !route_params.contains(&k.as_str())) {
+        None => Ok(()),
+        Some(unknown) => Err(ApiError::new(
+            StatusCode::BAD_REQUEST,
+            format!("unknown query parameter {unknown:?}; this endpoint takes {}", route_params.join(", ")),
+        )),
+    }
+}
+
+fn params_of(endpoint: Endpoint) -> Vec<&'static str> {
+    ROUTES
+        .iter()
+        .find(|r| r.handler == Handler::Listing(endpoint))
+        .map(|r| r.params.iter().map(|p| p.name).collect())
+        .unwrap_or_default()
+}
+
+/// Runs `f` with a pooled read-only connection on a blocking thread, after checking the
+/// request's token for `needed`.
+async fn with_reader<T: Send + 'static>(
+    state: &ApiState,
+    headers: &HeaderMap,
+    needed: Option<TokenScope>,
+    f: impl FnOnce(&Reader) -> Result<T, ApiError> + Send + 'static,
+) -> Result<T, ApiError> {
+    let token = match needed {
+        Some(scope) => {
+            let value = headers.get(header::AUTHORIZATION).and_then(|v| v.to_str().ok());
+            Some((auth::bearer(value).map_err(denied)?.to_string(), scope))
+        }
+        None => None,
+    };
+    let pool = state.pool.clone();
+    let answer = tokio::task::spawn_blocking(move || {
+        pool.with(|reader| {
+            if let Some((token, scope)) = &token {
+                match auth::check(reader, token, *scope) {
+                    Ok(Ok(_name)) => {}
+                    Ok(Err(why)) => return Err(denied(why)),
+                    Err(err) => return Err(store_failed(&err)),
+                }
+            }
+            f(reader)
+        })
+    })
+    .await;
+    match answer {
+        Ok(Ok(result)) => result,
+        Ok(Err(err)) => Err(store_failed(&err)),
+        Err(_) => Err(ApiError::new(StatusCode::INTERNAL_SERVER_ERROR, "internal error; see the server log")),
+    }
+}
+
+fn denied(why: Denied) -> ApiError {
+    match why {
+        Denied::Unauthenticated(message) => ApiError::new(StatusCode::UNAUTHORIZED, message),
+        Denied::Forbidden { token, needed } => {
+            tracing::info!(token = %token, needed = needed.name(), "API request without the scope");
+            ApiError::new(StatusCode::FORBIDDEN, format!("this token lacks the {} scope", needed.name()))
+        }
+    }
+}
+
+fn store_failed(err: &crate::store::StoreError) -> ApiError {
+    tracing::warn!(error = %err, "API: store unavailable");
+    ApiError::new(StatusCode::SERVICE_UNAVAILABLE, "store unavailable")
+}
+
+async fn listing(
+    state: ApiState,
+    endpoint: Endpoint,
+    needed: Option<TokenScope>,
+    mut query: BTreeMap<String, String>,
+    headers: HeaderMap,
+) -> Result<Response, ApiError> {
+    let format = format_of(&mut query, &headers)?;
+    check_params(&params_of(endpoint), &query)?;
+    let params = Params::new(query);
+    let listings = state.listings.clone();
+    let table = with_reader(&state, &headers, needed, move |reader| {
+        listings.listing(reader, endpoint, &params).map_err(ApiError::from)
+    })
+    .await?;
+    Ok(rows_response(&table, format))
+}
+
+/// The body of `POST /api/v1/query`.
+#[derive(Debug, serde::Deserialize)]
+#[serde(deny_unknown_fields)]
+struct QueryBody {
+    sql: String,
+}
+
+async fn query(
+    state: ApiState,
+    needed: Option<TokenScope>,
+    mut params: BTreeMap<String, String>,
+    headers: HeaderMap,
+    body: Bytes,
+) -> Result<Response, ApiError> {
+    let format = format_of(&mut params, &headers)?;
+    check_params(&["format"], &params)?;
+    // The token is checked before the body is even parsed.
+    with_reader(&state, &headers, needed, |_| Ok(())).await?;
+    let body: QueryBody = serde_json::from_slice(&body).map_err(|err| {
+        ApiError::new(StatusCode::BAD_REQUEST, format!("the body must be JSON {{\"sql\": \"...\"}}: {err}"))
+    })?;
+    let (path, limits) = (state.pool.path().to_path_buf(), state.limits.query);
+    let answer = tokio::task::spawn_blocking(move || crate::store::run_sql(&path, &body.sql, &limits)).await;
+    match answer {
+        Ok(Ok(table)) => Ok(rows_response(&table, format)),
+        Ok(Err(crate::store::StoreError::Refused(message))) => {
+            Err(ApiError::new(StatusCode::BAD_REQUEST, message))
+        }
+        Ok(Err(err)) => Err(store_failed(&err)),
+        Err(_) => Err(ApiError::new(StatusCode::INTERNAL_SERVER_ERROR, "internal error; see the server log")),
+    }
+}
+
+async fn openapi() -> Response {
+    ([(header::CONTENT_TYPE, "application/json")], super::routes::openapi().to_string()).into_response()
+}

@@ -1,0 +1,87 @@
+//! Read-only listings of the monitoring results that other parts of tidemark write (data
+//! quality, alerts), through their documented views. A store without those tables answers
+//! `None`, so callers can say "not available" instead of failing.
+
+use chrono::{DateTime, Utc};
+
+use super::{Reader, StoreError, time_text};
+use crate::table::Table;
+
+impl Reader {
+    /// Whether a table or view exists.
+    pub fn has_relation(&self, name: &str) -> Result<bool, StoreError> {
+        Ok(self.conn.query_row(
+            "SELECT count(*) > 0 FROM sqlite_master WHERE type IN ('table', 'view') AND name = ?1",
+            [name],
+            |r| r.get(0),
+        )?)
+    }
+
+    /// Quality measures: from `quality_latest`, or with `as_of` from the snapshot of each
+    /// source current then. `None` when the store has no quality tables.
+    pub fn quality(
+        &self,
+        source: Option<&str>,
+        as_of: Option<DateTime<Utc>>,
+    ) -> Result<Option<Table>, StoreError> {
+        if !self.has_relation("quality_latest")? {
+            return Ok(None);
+        }
+        let Some(as_of) = as_of else {
+            let sql = "SELECT * FROM quality_latest WHERE ?1 IS NULL OR source = ?1";
+            return Ok(Some(self.listing(sql, (source,))?));
+        };
+        // The same columns as quality_latest, for each source's latest quality rows at as_of.
+        let sql =
+            "SELECT s.name AS source, q.snapshot_id, n.as_of, q.scope, q.stratum_kind, q.stratum, q.field,
+                          q.records, q.missing, q.invalid, q.share_missing, q.share_invalid,
+                          n.rows_total, n.rows_new, n.rows_changed, n.rows_removed, n.rows_rejected
+                   FROM quality q
+                   JOIN snapshot n ON n.snapshot_id = q.snapshot_id
+                   JOIN source s ON s.source_id = q.source_id
+                   WHERE (?1 IS NULL OR s.name = ?1)
+                     AND q.snapshot_id = (SELECT max(l.snapshot_id) FROM quality l
+                                          JOIN snapshot m ON m.snapshot_id = l.snapshot_id
+                                          WHERE l.source_id = q.source_id AND m.as_of <= ?2)";
+        Ok(Some(self.listing(sql, (source, time_text(as_of)))?))
+    }
+
+    /// Open alerts: from `alert_open`, or with `as_of` those open at that time. `None` when
+    /// the store has no alert tables.
+    pub fn alerts(
+        &self,
+        source: Option<&str>,
+        as_of: Option<DateTime<Utc>>,
+    ) -> Result<Option<Table>, StoreError> {
+        if !self.has_relation("alert_open")? {
+            return Ok(None);
+        }
+        let Some(as_of) = as_of else {
+            let sql = "SELECT * FROM alert_open WHERE ?1 IS NULL OR source = ?1";
+            return Ok(Some(self.listing(sql, (source,))?));
+        };
+        // Alerts opened by as_of and not resolved by then (their state column is today's).
+        let sql = "SELECT alert_id, rule, source, subject, severity, state, summary, figures, snapshot_id,
+                          opened_at, last_seen_at, acked_at, resolved_at
+                   FROM alert
+                   WHERE (?1 IS NULL OR source = ?1) AND opened_at <= ?2
+                     AND (resolved_at IS NULL OR resolved_at > ?2)
+                   ORDER BY alert_id";
+        Ok(Some(self.listing(sql, (source, time_text(as_of)))?))
+    }
+
+    /// Every row of a parameterised statement as a listing.
+    fn listing(&self, sql: &str, params: impl rusqlite::Params) -> Result<Table, StoreError> {
+        let mut stmt = self.conn.prepare(sql)?;
+        let columns: Vec<String> = stmt.column_names().map(|c| c.to_string()).collect();
+        let width = columns.len();
+        let mut table = Table { columns, rows: Vec::new() };
+        let mut rows = stmt.query(params)?;
+        while let Some(row) = rows.next()? {
+            table
+                .rows
+                .push((0..width).map(|idx| super::read::cell(row.get_ref(idx))).collect::<Result<_, _>>()?);
+        }
+        Ok(table)
+    }
+}
