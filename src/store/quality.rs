@@ -77,6 +77,9 @@ struct Counts {
 
 type CellKey = (&'static str, String, Field);
 
+/// Per (stratum kind, stratum): new records, and the lag histogram of those with a date.
+type LagHistograms = BTreeMap<(String, String), (i64, Vec<(f64, u64)>)>;
+
 impl Store {
     /// Computes and stores the quality measures of `snapshot_id` (replacing earlier ones of
     /// the same snapshot) in one transaction. Returns the number of quality rows.
@@ -213,7 +216,7 @@ fn write_lag(
                            WHERE p.source_id = c.source_id AND p.case_key = c.case_key AND p.valid_from < ?2)
          GROUP BY 1, 2"
     );
-    let mut histograms: BTreeMap<(String, String), (i64, Vec<(f64, u64)>)> = BTreeMap::new();
+    let mut histograms: LagHistograms = BTreeMap::new();
     {
         let mut stmt = tx.prepare(&sql)?;
         let mut rows = stmt.query(params![source_id, snapshot_id])?;
