@@ -125,11 +125,12 @@ struct Live {
 }
 
 impl Store {
-    /// Applies one evaluation pass: `scope` lists the (source, rule) pairs evaluated; a live
-    /// alert of such a pair without a finding this time counts one clear evaluation.
+    /// Applies one evaluation pass: `findings` tripped; `clear` lists the fingerprints that
+    /// were evaluated on enough data and did not trip (each counts one clear evaluation of a
+    /// live alert). A rule without enough data appears in neither and changes nothing.
     pub fn apply_findings(
         &mut self,
-        scope: &[(String, String)],
+        clear: &[String],
         findings: &[Finding],
         life: &Lifecycle,
         delivery: &Delivery<'_>,
@@ -143,8 +144,8 @@ impl Store {
             }
             raise(&tx, finding, life, delivery, &mut outcome)?;
         }
-        for (source, rule) in scope {
-            clear_absent(&tx, source, rule, &seen, life, delivery, &mut outcome)?;
+        for fingerprint in clear.iter().filter(|f| !seen.contains(*f)) {
+            clear_one(&tx, fingerprint, life, delivery, &mut outcome)?;
         }
         tx.commit()?;
         Ok(outcome)
@@ -153,8 +154,9 @@ impl Store {
     /// Acknowledges a live alert: no more re-sends; it still resolves when clear.
     pub fn ack_alert(&mut self, alert_id: i64, note: &str, now: DateTime<Utc>) -> Result<(), StoreError> {
         let tx = self.conn.transaction()?;
-        let state: Option<String> =
-            tx.query_row("SELECT state FROM alert WHERE alert_id = ?1", [alert_id], |r| r.get(0)).optional()?;
+        let state: Option<String> = tx
+            .query_row("SELECT state FROM alert WHERE alert_id = ?1", [alert_id], |r| r.get(0))
+            .optional()?;
         match state.as_deref() {
             None => return Err(StoreError::Refused(format!("there is no alert {alert_id}"))),
             Some("resolved") => {
@@ -201,7 +203,10 @@ impl Store {
             opened_at: at.clone(),
             at: at.clone(),
         };
-        tx.execute("UPDATE alert_event SET payload = ?2 WHERE event_id = ?1", params![event_id, payload(&facts)])?;
+        tx.execute(
+            "UPDATE alert_event SET payload = ?2 WHERE event_id = ?1",
+            params![event_id, payload(&facts)],
+        )?;
         for channel in channels {
             enqueue(&tx, event_id, channel, &at)?;
         }
@@ -317,47 +322,40 @@ fn resend_due(last_sent_at: Option<&str>, life: &Lifecycle) -> bool {
     since >= life.resend_after
 }
 
-/// Counts a clear evaluation for the live alerts of (source, rule) not found this time,
-/// and resolves those clear for `resolve_after` evaluations in a row.
-fn clear_absent(
+/// Counts a clear evaluation of the live alert of `fingerprint`, if any, and resolves it
+/// once it has been clear for `resolve_after` evaluations in a row.
+fn clear_one(
     tx: &Transaction<'_>,
-    source: &str,
-    rule: &str,
-    seen: &HashSet<String>,
+    fingerprint: &str,
     life: &Lifecycle,
     delivery: &Delivery<'_>,
     outcome: &mut EvalOutcome,
 ) -> Result<(), StoreError> {
-    let live: Vec<(i64, String, i64, i64)> = {
-        let mut stmt = tx.prepare(
-            "SELECT alert_id, fingerprint, clear_count, sent_count FROM alert
-             WHERE source = ?1 AND rule = ?2 AND state <> 'resolved'",
-        )?;
-        let rows = stmt.query_map([source, rule], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?)))?;
-        rows.collect::<Result<_, _>>()?
-    };
+    let live: Option<(i64, i64, i64)> = tx
+        .query_row(
+            "SELECT alert_id, clear_count, sent_count FROM alert WHERE fingerprint = ?1 AND state <> 'resolved'",
+            [fingerprint],
+            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
+        )
+        .optional()?;
+    let Some((alert_id, clear_count, sent_count)) = live else { return Ok(()) };
+    if clear_count + 1 < life.resolve_after as i64 {
+        tx.execute("UPDATE alert SET clear_count = clear_count + 1 WHERE alert_id = ?1", [alert_id])?;
+        return Ok(());
+    }
     let now = time_text(life.now);
-    for (alert_id, fingerprint, clear_count, sent_count) in live {
-        if seen.contains(&fingerprint) {
-            continue;
-        }
-        if clear_count + 1 < life.resolve_after as i64 {
-            tx.execute("UPDATE alert SET clear_count = clear_count + 1 WHERE alert_id = ?1", [alert_id])?;
-            continue;
-        }
+    tx.execute(
+        "UPDATE alert SET clear_count = clear_count + 1, state = 'resolved', resolved_at = ?2 WHERE alert_id = ?1",
+        params![alert_id, now],
+    )?;
+    outcome.resolved += 1;
+    if sent_count > 0 {
+        notify(tx, alert_id, "resolved", life, delivery, outcome)?;
+    } else {
         tx.execute(
-            "UPDATE alert SET clear_count = clear_count + 1, state = 'resolved', resolved_at = ?2 WHERE alert_id = ?1",
+            "INSERT INTO alert_event (alert_id, kind, at) VALUES (?1, 'resolved', ?2)",
             params![alert_id, now],
         )?;
-        outcome.resolved += 1;
-        if sent_count > 0 {
-            notify(tx, alert_id, "resolved", life, delivery, outcome)?;
-        } else {
-            tx.execute(
-                "INSERT INTO alert_event (alert_id, kind, at) VALUES (?1, 'resolved', ?2)",
-                params![alert_id, now],
-            )?;
-        }
     }
     Ok(())
 }
@@ -372,7 +370,10 @@ fn notify(
     outcome: &mut EvalOutcome,
 ) -> Result<(), StoreError> {
     let at = time_text(life.now);
-    tx.execute("INSERT INTO alert_event (alert_id, kind, at) VALUES (?1, ?2, ?3)", params![alert_id, kind, at])?;
+    tx.execute(
+        "INSERT INTO alert_event (alert_id, kind, at) VALUES (?1, ?2, ?3)",
+        params![alert_id, kind, at],
+    )?;
     let event_id = tx.last_insert_rowid();
     let mut facts = tx.query_row(
         "SELECT a.rule, a.source, a.subject, a.severity, a.summary, a.figures, a.snapshot_id, n.as_of, a.opened_at
@@ -473,7 +474,8 @@ impl Reader {
             "SELECT outbox_id, event_id, channel, attempts, last_error, dead_at FROM outbox
              WHERE dead_at IS NOT NULL ORDER BY outbox_id DESC",
         )?;
-        let rows = stmt.query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?, r.get(5)?)))?;
+        let rows =
+            stmt.query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?, r.get(5)?)))?;
         Ok(rows.collect::<Result<_, _>>()?)
     }
 }
