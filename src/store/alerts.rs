@@ -27,6 +27,7 @@ pub struct Finding {
     pub summary: String,
     /// JSON object of the figures that tripped the rule (and its baseline).
     pub figures: String,
+    /// The snapshot evaluated; an alert keeps the one that opened it.
     pub snapshot_id: Option<i64>,
 }
 
@@ -302,9 +303,9 @@ fn raise(
     };
     tx.execute(
         "UPDATE alert SET last_seen_at = ?2, times_seen = times_seen + 1, clear_count = 0, summary = ?3,
-             figures = ?4, severity = ?5, snapshot_id = coalesce(?6, snapshot_id)
+             figures = ?4, severity = ?5
          WHERE alert_id = ?1",
-        params![live.alert_id, now, f.summary, f.figures, f.severity, f.snapshot_id],
+        params![live.alert_id, now, f.summary, f.figures, f.severity],
     )?;
     outcome.updated += 1;
     if live.state != "acknowledged" && resend_due(live.last_sent_at.as_deref(), life) {
