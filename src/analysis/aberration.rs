@@ -239,6 +239,32 @@ mod tests {
         assert!(two.value <= 3.0);
     }
 
+    /// Known truth for C1 on normal data: with Y and the 7 baseline values iid N(mu, s^2),
+    /// `(Y - mean) / sd` is `sqrt(8/7)` times a Student t with 6 degrees of freedom, so the
+    /// in-control false-alarm rate of C1 > 3 is `P(t_6 > 3 / sqrt(8/7)) = 0.0155` (statrs t
+    /// cdf). 40,000 independent windows give a standard error of 0.0006; the bound is 4 se.
+    /// The sd floor (0.5) never binds here (s = 4).
+    #[test]
+    fn c1_in_control_false_alarm_rate_matches_student_t() {
+        use rand::SeedableRng;
+        use rand_distr::{Distribution, Normal};
+        use statrs::distribution::{ContinuousCDF, StudentsT};
+        let expected = 1.0 - StudentsT::new(0.0, 1.0, 6.0).unwrap().cdf(3.0 / (8.0f64 / 7.0).sqrt());
+        assert!(close(expected, 0.0155, 5e-4), "{expected}");
+        let mut rng = rand::rngs::StdRng::seed_from_u64(7);
+        let normal = Normal::new(20.0, 4.0).unwrap();
+        let trials = 40_000;
+        let alarms = (0..trials)
+            .filter(|_| {
+                let window: Vec<f64> = (0..8).map(|_| normal.sample(&mut rng)).collect();
+                c1(&window, 7, 0.5).unwrap().value > 3.0
+            })
+            .count();
+        let rate = alarms as f64 / trials as f64;
+        let se = (expected * (1.0 - expected) / trials as f64).sqrt();
+        assert!((rate - expected).abs() < 4.0 * se, "{rate} vs {expected}");
+    }
+
     /// REFERENCE-CHECKS.md: Lucas (1985) k for 4 -> 8 is 5.770780 (scipy).
     #[test]
     fn poisson_reference_value_matches_lucas() {
