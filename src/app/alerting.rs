@@ -263,7 +263,7 @@ pub fn after_poll(
         .find(|s| s.name == source.name)
         .map(|s| s.consecutive_failures.max(0) as u32)
         .unwrap_or(0);
-    let last_applied = store.last_applied(source_id)?.map(|l| l.as_of);
+    let last_applied = reader.last_received(source_id)?;
     let input = StalenessInput {
         source: source.name.clone(),
         now,

@@ -118,6 +118,9 @@ pub struct OutboxItem {
     pub created_at: DateTime<Utc>,
 }
 
+/// A dead letter: (outbox id, event id, channel, attempts, last error, dead at).
+pub type DeadLetter = (i64, i64, String, i64, Option<String>, String);
+
 /// A live alert as the evaluation needs it.
 struct Live {
     alert_id: i64,
@@ -426,6 +429,17 @@ fn enqueue(tx: &Transaction<'_>, event_id: i64, channel: &str, at: &str) -> Resu
 }
 
 impl Reader {
+    /// When the source's latest applied snapshot was received (the staleness rule's clock:
+    /// arrival, not the extract's own as-of time).
+    pub fn last_received(&self, source_id: i64) -> Result<Option<DateTime<Utc>>, StoreError> {
+        let text: Option<String> = self.conn.query_row(
+            "SELECT max(received_at) FROM snapshot WHERE source_id = ?1 AND status = 'applied'",
+            [source_id],
+            |r| r.get(0),
+        )?;
+        Ok(text.as_deref().and_then(super::parse_time))
+    }
+
     /// Alerts, live ones first, newest first, with their delivery counts.
     pub fn alerts(&self, include_resolved: bool) -> Result<Vec<AlertRow>, StoreError> {
         let mut stmt = self.conn.prepare(
@@ -470,7 +484,7 @@ impl Reader {
 
     /// Dead letters and the test messages' outbox rows: (outbox id, event id, channel,
     /// attempts, last error, dead at), newest first.
-    pub fn dead_letters(&self) -> Result<Vec<(i64, i64, String, i64, Option<String>, String)>, StoreError> {
+    pub fn dead_letters(&self) -> Result<Vec<DeadLetter>, StoreError> {
         let mut stmt = self.conn.prepare(
             "SELECT outbox_id, event_id, channel, attempts, last_error, dead_at FROM outbox
              WHERE dead_at IS NOT NULL ORDER BY outbox_id DESC",

@@ -77,6 +77,9 @@ struct Counts {
 
 type CellKey = (&'static str, String, Field);
 
+/// One bin of a stored lag histogram: (as-of day, stratum kind, stratum, lag days, count).
+pub type LagBin = (String, String, String, f64, u64);
+
 /// Per (stratum kind, stratum): new records, and the lag histogram of those with a date.
 type LagHistograms = BTreeMap<(String, String), (i64, Vec<(f64, u64)>)>;
 
@@ -363,7 +366,7 @@ impl Reader {
         source_id: i64,
         upto: i64,
         from_day: &str,
-    ) -> Result<Vec<(String, String, String, f64, u64)>, StoreError> {
+    ) -> Result<Vec<LagBin>, StoreError> {
         let mut stmt = self.conn.prepare(
             "SELECT substr(n.as_of, 1, 10), h.stratum_kind, h.stratum, h.lag_days, h.n
              FROM quality_lag_hist h JOIN snapshot n ON n.snapshot_id = h.snapshot_id
