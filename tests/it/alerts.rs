@@ -301,12 +301,13 @@ fn decode_qp(text: &str) -> String {
     let bytes = joined.as_bytes();
     let mut i = 0;
     while i < bytes.len() {
-        if bytes[i] == b'=' && i + 2 < bytes.len() {
-            if let Ok(b) = u8::from_str_radix(&joined[i + 1..i + 3], 16) {
-                out.push(b);
-                i += 3;
-                continue;
-            }
+        if bytes[i] == b'='
+            && i + 2 < bytes.len()
+            && let Ok(b) = u8::from_str_radix(&joined[i + 1..i + 3], 16)
+        {
+            out.push(b);
+            i += 3;
+            continue;
         }
         out.push(bytes[i]);
         i += 1;
