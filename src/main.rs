@@ -145,6 +145,27 @@ enum Command {
         #[command(flatten)]
         listing: Listing,
     },
+    /// Data-quality measures of a snapshot: volume, reporting lag, missing and invalid shares.
+    Quality {
+        #[arg(long)]
+        source: String,
+        /// Snapshot id (default: the latest measured one).
+        #[arg(long)]
+        snapshot: Option<i64>,
+        #[command(flatten)]
+        listing: Listing,
+    },
+    /// Alerts with their state and delivery; `ack ID --note TEXT`; `test` sends a test message.
+    #[command(args_conflicts_with_subcommands = true)]
+    Alerts {
+        #[command(subcommand)]
+        action: Option<AlertAction>,
+        /// Include resolved alerts.
+        #[arg(long)]
+        all: bool,
+        #[command(flatten)]
+        listing: Listing,
+    },
     /// Run one read-only SQL statement against the store.
     Query {
         sql: String,
@@ -208,6 +229,18 @@ enum TokenAction {
     },
     /// Revoke a token; the API refuses it from its next request.
     Revoke { name: String },
+}
+
+#[derive(Debug, Subcommand)]
+enum AlertAction {
+    /// Acknowledge an alert: no more re-sends; it still resolves when clear.
+    Ack {
+        id: i64,
+        #[arg(long)]
+        note: String,
+    },
+    /// Send a test message through every configured channel now.
+    Test,
 }
 
 #[derive(Debug, Subcommand)]
@@ -371,6 +404,17 @@ fn run(cli: Cli) -> Result<u8> {
             init_tracing(true, config.log_json);
             access::serve(config)?;
             return Ok(0);
+        }
+        Command::Quality { source, snapshot, listing } => {
+            tidemark::app::quality::quality(&load(flag)?, &source, snapshot, listing.format)?
+        }
+        Command::Alerts { action, all, listing } => {
+            let config = load(flag)?;
+            match action {
+                None => tidemark::app::alerting::list(&config, all, listing.format)?,
+                Some(AlertAction::Ack { id, note }) => tidemark::app::alerting::ack(&config, id, &note)?,
+                Some(AlertAction::Test) => tidemark::app::alerting::test(&config)?,
+            }
         }
         Command::Run { no_ops } => {
             let config = load(flag)?;

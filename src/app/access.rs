@@ -166,7 +166,7 @@ impl CliListings {
                 let table = if endpoint == Endpoint::Quality {
                     reader.quality(source, as_of)?
                 } else {
-                    reader.alerts(source, as_of)?
+                    reader.alerts_table(source, as_of)?
                 };
                 table.ok_or_else(|| {
                     anyhow::Error::new(Unavailable(format!(

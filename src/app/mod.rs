@@ -3,9 +3,11 @@
 //! `anyhow`; nothing else depends on it.
 
 pub mod access;
+pub mod alerting;
 pub mod analyse;
 pub mod commands;
 pub mod daemon;
 pub mod demo;
 pub mod ingest;
+pub mod quality;
 pub mod writer;

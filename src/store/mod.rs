@@ -3,9 +3,11 @@
 //! one extract into one transaction; `read` answers as-of questions on read-only
 //! connections; `archive` keeps every extract's bytes, compressed and content-addressed.
 
+pub mod alerts;
 pub mod archive;
 pub mod backup;
 pub mod lock;
+pub mod quality;
 mod read;
 mod results;
 mod sources;
@@ -33,6 +35,7 @@ const MIGRATIONS: &[(i64, &str)] = &[
     (1, include_str!("../../migrations/0001_line_list.sql")),
     (2, include_str!("../../migrations/0002_daemon.sql")),
     (3, include_str!("../../migrations/0003_analysis.sql")),
+    (4, include_str!("../../migrations/0004_quality_alerts.sql")),
     (5, include_str!("../../migrations/0005_access.sql")),
 ];
 

@@ -48,7 +48,7 @@ impl Reader {
 
     /// Open alerts: from `alert_open`, or with `as_of` those open at that time. `None` when
     /// the store has no alert tables.
-    pub fn alerts(
+    pub fn alerts_table(
         &self,
         source: Option<&str>,
         as_of: Option<DateTime<Utc>>,

@@ -2,6 +2,7 @@
 //! folders, the real `tidemark` binary where a process matters.
 
 mod api;
+mod alerts;
 mod backup;
 mod bad_corpus;
 mod cli;
