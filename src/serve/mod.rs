@@ -2,6 +2,7 @@
 //! extract server that the demo (and tests) use to stand in for a lab's export endpoint.
 //! Everything here only reads the store; nothing writes.
 
+pub mod dashboard;
 pub mod feed;
 pub mod ops;
 

@@ -5,6 +5,8 @@
 
 pub mod archive;
 pub mod backup;
+mod dashboard;
+mod export;
 pub mod lock;
 mod read;
 mod sources;
@@ -18,6 +20,10 @@ use std::time::Duration;
 
 use rusqlite::{Connection, OpenFlags};
 
+pub use self::dashboard::{
+    FirstSeenLag, MISSINGNESS_FIELDS, SnapshotMissing, SourceOverview, StoredDelayFit,
+};
+pub use self::export::{ColumnKind, ExportTable};
 pub use self::read::{AGE_BAND_EDGES, CurveRow, Reader, SnapshotRow, VersionRow};
 pub use self::sources::{FileRecord, PollRecord, SourceStatus};
 pub use self::triangle::{DelayRow, MISSING_STRATUM, TriangleSpec};

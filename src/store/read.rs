@@ -241,7 +241,7 @@ impl Reader {
     }
 }
 
-fn cell(value: rusqlite::Result<ValueRef<'_>>) -> rusqlite::Result<Cell> {
+pub(super) fn cell(value: rusqlite::Result<ValueRef<'_>>) -> rusqlite::Result<Cell> {
     Ok(match value? {
         ValueRef::Null => Cell::Null,
         ValueRef::Integer(n) => Cell::Int(n),
