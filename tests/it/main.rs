@@ -5,6 +5,7 @@ mod backup;
 mod bad_corpus;
 mod cli;
 mod crash;
+mod dashboard_browser;
 mod folder_source;
 mod history_props;
 mod run_process;
