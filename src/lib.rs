@@ -19,6 +19,7 @@
 //! - [`app`]: command bodies, the ingest pipeline, the writer thread and the daemon (the only
 //!   place that uses `anyhow`).
 
+pub mod alert;
 pub mod analysis;
 pub mod app;
 pub mod config;

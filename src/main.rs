@@ -144,6 +144,16 @@ enum Command {
         #[command(flatten)]
         listing: Listing,
     },
+    /// Data-quality measures of a snapshot: volume, reporting lag, missing and invalid shares.
+    Quality {
+        #[arg(long)]
+        source: String,
+        /// Snapshot id (default: the latest measured one).
+        #[arg(long)]
+        snapshot: Option<i64>,
+        #[command(flatten)]
+        listing: Listing,
+    },
     /// Run one read-only SQL statement against the store.
     Query {
         sql: String,
@@ -302,6 +312,9 @@ fn run(cli: Cli) -> Result<u8> {
                 format: listing.format,
             };
             commands::delays(&load(flag)?, &args)?
+        }
+        Command::Quality { source, snapshot, listing } => {
+            tidemark::app::quality::quality(&load(flag)?, &source, snapshot, listing.format)?
         }
         Command::Query { sql, listing } => commands::query(&load(flag)?, &sql, listing.format)?,
         Command::Run { no_ops } => {

@@ -7,6 +7,7 @@ pub mod backtest;
 pub mod delay;
 pub mod mannwhitney;
 pub mod nowcast;
+pub mod quantile;
 pub mod score;
 pub mod simulate;
 pub mod triangle;

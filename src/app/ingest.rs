@@ -133,6 +133,21 @@ fn analyse_applied(store: &mut Store, config: &Config, source: &SourceConfig, sn
             tracing::warn!(source = %source.name, snapshot_id, error = %format!("{err:#}"), "analyses not computed")
         }
     }
+    measure_applied(store, config, source, snapshot_id);
+}
+
+/// Stores the quality measures of an applied snapshot; logged, not returned, like the
+/// analyses.
+fn measure_applied(store: &mut Store, config: &Config, source: &SourceConfig, snapshot_id: i64) {
+    let started = std::time::Instant::now();
+    match super::quality::measure_snapshot(store, config, source, snapshot_id) {
+        Ok(rows) => tracing::debug!(
+            source = %source.name, snapshot_id, rows, ms = started.elapsed().as_millis() as u64, "quality stored"
+        ),
+        Err(err) => {
+            tracing::warn!(source = %source.name, snapshot_id, error = %format!("{err:#}"), "quality not measured")
+        }
+    }
 }
 
 /// Parses a held snapshot again from the archive and applies it, without the guard.

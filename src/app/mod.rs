@@ -7,4 +7,5 @@ pub mod commands;
 pub mod daemon;
 pub mod demo;
 pub mod ingest;
+pub mod quality;
 pub mod writer;

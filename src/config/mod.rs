@@ -4,6 +4,7 @@
 //! `source[0].schedule: invalid cron expression`. Secrets never live in the file: only the
 //! names of environment variables that hold them.
 
+pub mod alerting;
 pub mod analysis;
 mod raw;
 mod source;
@@ -13,6 +14,7 @@ use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 use std::time::Duration;
 
+pub use self::alerting::{AlertSettings, QualitySettings, Severity};
 pub use self::analysis::{AnalysisConfig, DelayEnd};
 use self::raw::RawConfig;
 pub use self::source::{AsOfRule, FolderSettings, Location, SourceConfig, UrlSettings, defaults};
@@ -35,6 +37,12 @@ pub struct Config {
     pub bind: SocketAddr,
     pub log_json: bool,
     pub analysis: AnalysisConfig,
+    /// `[alert]`: lifecycle, retries, rule parameter overrides.
+    pub alerting: AlertSettings,
+    /// `[quality]`: what the quality measures use.
+    pub quality: QualitySettings,
+    /// `serve.public_url`: the dashboard as people reach it (links in alert messages).
+    pub public_url: Option<String>,
 }
 
 #[derive(Debug, Clone)]
@@ -59,12 +67,17 @@ pub struct EmailConfig {
     pub to: Vec<String>,
     pub username_env: Option<String>,
     pub password_env: Option<String>,
+    /// Only alerts at or above this severity go to this channel.
+    pub min_severity: Severity,
+    pub timeout: Duration,
 }
 
 #[derive(Debug, Clone)]
 pub struct WebhookConfig {
     pub url: String,
     pub secret_env: Option<String>,
+    pub min_severity: Severity,
+    pub timeout: Duration,
 }
 
 #[derive(Debug, thiserror::Error)]
@@ -129,7 +142,7 @@ impl Config {
         if let Some(email) = &self.email {
             let _ = writeln!(
                 out,
-                "email: {}:{} tls={:?} from={} to={} username={} password={}",
+                "email: {}:{} tls={:?} from={} to={} username={} password={} min_severity={} timeout={}ms",
                 email.smtp_host,
                 email.smtp_port,
                 email.tls,
@@ -137,16 +150,21 @@ impl Config {
                 email.to.join(","),
                 env_state(email.username_env.as_deref()),
                 env_state(email.password_env.as_deref()),
+                email.min_severity.name(),
+                email.timeout.as_millis(),
             );
         }
         if let Some(webhook) = &self.webhook {
             let _ = writeln!(
                 out,
-                "webhook: {} secret={}",
+                "webhook: {} secret={} min_severity={} timeout={}ms",
                 redact_url(&webhook.url),
-                env_state(webhook.secret_env.as_deref())
+                env_state(webhook.secret_env.as_deref()),
+                webhook.min_severity.name(),
+                webhook.timeout.as_millis()
             );
         }
+        out.push_str(&self.describe_alerting());
         out
     }
 }
@@ -206,7 +224,13 @@ fn build(raw: RawConfig, file: &Path, base: &Path, problems: &mut Vec<String>) -
         }
     };
     let analysis = analysis::build(raw.analysis, problems);
+    let quality = alerting::build_quality(raw.quality, problems);
+    let settings = build_alert_settings(&raw.alert, problems);
+    let public_url = raw.serve.public_url.map(|u| u.trim_end_matches('/').to_string());
     Config {
+        alerting: settings,
+        quality,
+        public_url,
         analysis,
         file: file.to_path_buf(),
         store,
@@ -215,6 +239,54 @@ fn build(raw: RawConfig, file: &Path, base: &Path, problems: &mut Vec<String>) -
         webhook: raw.alert.webhook.and_then(|w| build_webhook(w, problems)),
         bind,
         log_json,
+    }
+}
+
+fn build_alert_settings(raw: &raw::RawAlert, problems: &mut Vec<String>) -> AlertSettings {
+    use alerting::duration_or;
+    let d = AlertSettings::default();
+    let settings = AlertSettings {
+        resend_after: duration_or(
+            raw.resend_after.as_deref(),
+            "alert.resend_after",
+            d.resend_after,
+            problems,
+        ),
+        resolve_after: raw.resolve_after.unwrap_or(d.resolve_after).max(1),
+        max_age: duration_or(raw.max_age.as_deref(), "alert.max_age", d.max_age, problems),
+        retry_base: duration_or(raw.retry_base.as_deref(), "alert.retry_base", d.retry_base, problems),
+        retry_cap: duration_or(raw.retry_cap.as_deref(), "alert.retry_cap", d.retry_cap, problems),
+        failed_polls: raw.failed_polls.unwrap_or(d.failed_polls).max(1),
+        rules: raw.rules.clone(),
+    };
+    if settings.retry_base.is_zero() {
+        problems.push("alert.retry_base: must be more than zero".into());
+    }
+    settings
+}
+
+impl Config {
+    fn describe_alerting(&self) -> String {
+        let a = &self.alerting;
+        let mut out = format!(
+            "alert: resend_after={}s resolve_after={} max_age={}s retry_base={}ms retry_cap={}ms failed_polls={}\n",
+            a.resend_after.as_secs(),
+            a.resolve_after,
+            a.max_age.as_secs(),
+            a.retry_base.as_millis(),
+            a.retry_cap.as_millis(),
+            a.failed_polls
+        );
+        for (rule, table) in &a.rules {
+            let keys: Vec<String> = table.iter().map(|(k, v)| format!("{k}={v}")).collect();
+            let _ = writeln!(out, "alert.rules.{rule}: {}", keys.join(" "));
+        }
+        let lag: Vec<&str> = self.quality.lag_from.iter().map(|f| f.name()).collect();
+        let _ = writeln!(out, "quality: lag_from={}", lag.join(","));
+        if let Some(url) = &self.public_url {
+            let _ = writeln!(out, "serve.public_url: {url}");
+        }
+        out
     }
 }
 
@@ -243,6 +315,17 @@ fn build_email(raw: raw::RawEmail, problems: &mut Vec<String>) -> Option<EmailCo
         to: raw.to,
         username_env: raw.username_env,
         password_env: raw.password_env,
+        min_severity: alerting::severity_or(
+            raw.min_severity.as_deref(),
+            "alert.email.min_severity",
+            problems,
+        ),
+        timeout: alerting::duration_or(
+            raw.timeout.as_deref(),
+            "alert.email.timeout",
+            alerting::DEFAULT_CHANNEL_TIMEOUT,
+            problems,
+        ),
     })
 }
 
@@ -251,7 +334,21 @@ fn build_webhook(raw: raw::RawWebhook, problems: &mut Vec<String>) -> Option<Web
         problems.push("alert.webhook.url: must start with http:// or https://".into());
         return None;
     }
-    Some(WebhookConfig { url: raw.url, secret_env: raw.secret_env })
+    Some(WebhookConfig {
+        min_severity: alerting::severity_or(
+            raw.min_severity.as_deref(),
+            "alert.webhook.min_severity",
+            problems,
+        ),
+        timeout: alerting::duration_or(
+            raw.timeout.as_deref(),
+            "alert.webhook.timeout",
+            alerting::DEFAULT_CHANNEL_TIMEOUT,
+            problems,
+        ),
+        url: raw.url,
+        secret_env: raw.secret_env,
+    })
 }
 
 /// Parses `250ms`, `90s`, `15m`, `26h`, `2d` (a whole number and one unit).

@@ -20,6 +20,8 @@ pub struct RawConfig {
     pub log: RawLog,
     #[serde(default)]
     pub analysis: super::analysis::RawAnalysis,
+    #[serde(default)]
+    pub quality: super::alerting::RawQuality,
 }
 
 #[derive(Debug, Deserialize, Default)]
@@ -74,6 +76,14 @@ pub struct RawSource {
 pub struct RawAlert {
     pub email: Option<RawEmail>,
     pub webhook: Option<RawWebhook>,
+    pub resend_after: Option<String>,
+    pub resolve_after: Option<u32>,
+    pub max_age: Option<String>,
+    pub retry_base: Option<String>,
+    pub retry_cap: Option<String>,
+    pub failed_polls: Option<u32>,
+    #[serde(default)]
+    pub rules: BTreeMap<String, toml::Table>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -85,6 +95,8 @@ pub struct RawEmail {
     pub to: Vec<String>,
     pub username_env: Option<String>,
     pub password_env: Option<String>,
+    pub min_severity: Option<String>,
+    pub timeout: Option<String>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -92,12 +104,16 @@ pub struct RawEmail {
 pub struct RawWebhook {
     pub url: String,
     pub secret_env: Option<String>,
+    pub min_severity: Option<String>,
+    pub timeout: Option<String>,
 }
 
 #[derive(Debug, Deserialize, Default)]
 #[serde(deny_unknown_fields)]
 pub struct RawServe {
     pub bind: Option<String>,
+    /// The dashboard's address as people reach it, for links in alert messages.
+    pub public_url: Option<String>,
 }
 
 #[derive(Debug, Deserialize, Default)]

@@ -3,11 +3,13 @@
 //! one extract into one transaction; `read` answers as-of questions on read-only
 //! connections; `archive` keeps every extract's bytes, compressed and content-addressed.
 
+pub mod alerts;
 pub mod archive;
 pub mod backup;
 mod dashboard;
 mod export;
 pub mod lock;
+pub mod quality;
 mod read;
 mod sources;
 mod triangle;
@@ -34,6 +36,7 @@ const MIGRATIONS: &[(i64, &str)] = &[
     (1, include_str!("../../migrations/0001_line_list.sql")),
     (2, include_str!("../../migrations/0002_daemon.sql")),
     (3, include_str!("../../migrations/0003_analysis.sql")),
+    (4, include_str!("../../migrations/0004_quality_alerts.sql")),
 ];
 
 /// The schema version this build writes and understands.

@@ -1,0 +1,144 @@
+//! The words of an alert message, built from aggregates only: rule, source, subject, the
+//! figures that tripped the rule and its baseline, the snapshot time and a dashboard link,
+//! with the caution that a signal needs investigation. The JSON payload is what the webhook
+//! posts and what the email is rendered from, so both say exactly the same. Pure: no IO.
+
+use serde_json::{Value, json};
+
+use crate::store::alerts::MessageFacts;
+
+/// Said in every message: a statistical signal is not an event.
+pub const CAUTION: &str = "This is a statistical signal that needs investigation; it is not a confirmed \
+     outbreak or event. Check the data and follow your local protocols before acting.";
+
+/// The dashboard link of a source: `<base>/sources/<name>`.
+pub fn dashboard_link(base: &str, source: &str) -> String {
+    if source.is_empty() {
+        base.trim_end_matches('/').to_string()
+    } else {
+        format!("{}/sources/{source}", base.trim_end_matches('/'))
+    }
+}
+
+/// The JSON payload of one notifying event.
+pub fn payload(facts: &MessageFacts, dashboard_base: &str) -> String {
+    let figures: Value = serde_json::from_str(&facts.figures).unwrap_or_else(|_| json!({}));
+    let body = json!({
+        "event_id": facts.event_id,
+        "kind": facts.kind,
+        "alert_id": facts.alert_id,
+        "rule": facts.rule,
+        "source": facts.source,
+        "subject": facts.subject,
+        "severity": facts.severity,
+        "summary": facts.summary,
+        "figures": figures,
+        "snapshot_id": facts.snapshot_id,
+        "snapshot_as_of": facts.snapshot_as_of,
+        "opened_at": facts.opened_at,
+        "sent_at": facts.at,
+        "dashboard": dashboard_link(dashboard_base, &facts.source),
+        "caution": CAUTION,
+    });
+    body.to_string()
+}
+
+/// An email's subject, plain text and HTML, rendered from a payload.
+#[derive(Debug, Clone, PartialEq)]
+pub struct EmailText {
+    pub subject: String,
+    pub plain: String,
+    pub html: String,
+}
+
+/// Renders a payload as an email. Unknown or missing keys render as `-`.
+pub fn email_text(payload: &str) -> EmailText {
+    let v: Value = serde_json::from_str(payload).unwrap_or_else(|_| json!({}));
+    let s = |key: &str| match &v[key] {
+        Value::String(text) => text.clone(),
+        Value::Null => "-".into(),
+        other => other.to_string(),
+    };
+    let verb = match s("kind").as_str() {
+        "resolved" => "resolved",
+        "resent" => "still active",
+        "test" => "test",
+        _ => "signal",
+    };
+    let subject_part = if s("subject").is_empty() || s("subject") == "-" { String::new() } else { format!(" {}", s("subject")) };
+    let subject =
+        format!("[tidemark {}] {verb}: {} on {}{subject_part} (needs investigation)", s("severity"), s("rule"), s("source"));
+    let lines = message_lines(&v, &s);
+    let plain = format!("{}\n\n{}\n", lines.iter().map(|(k, val)| format!("{k}: {val}")).collect::<Vec<_>>().join("\n"), CAUTION);
+    let rows: String =
+        lines.iter().map(|(k, val)| format!("<tr><th align=\"left\">{}</th><td>{}</td></tr>", escape(k), escape(val))).collect();
+    let html = format!(
+        "<html><body><p><strong>{}</strong></p><table>{rows}</table><p><em>{}</em></p><p><a href=\"{}\">Open the dashboard</a></p></body></html>",
+        escape(&s("summary")),
+        escape(CAUTION),
+        escape(&s("dashboard"))
+    );
+    EmailText { subject, plain, html }
+}
+
+fn message_lines(v: &Value, s: &dyn Fn(&str) -> String) -> Vec<(String, String)> {
+    let mut lines: Vec<(String, String)> = [
+        "summary", "rule", "source", "subject", "severity", "kind", "snapshot_as_of", "opened_at", "sent_at",
+        "dashboard", "event_id",
+    ]
+    .iter()
+    .map(|k| (k.to_string(), s(k)))
+    .collect();
+    if let Value::Object(figures) = &v["figures"] {
+        for (key, value) in figures {
+            lines.push((format!("figure {key}"), value.to_string()));
+        }
+    }
+    lines
+}
+
+fn escape(text: &str) -> String {
+    text.replace('&', "&amp;").replace('<', "&lt;").replace('>', "&gt;").replace('"', "&quot;")
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn facts() -> MessageFacts {
+        MessageFacts {
+            event_id: 7,
+            kind: "opened".into(),
+            alert_id: Some(2),
+            rule: "missingness_jump".into(),
+            source: "county-reports".into(),
+            subject: "onset_date".into(),
+            severity: "warning".into(),
+            summary: "onset_date missing in 31% of new records, baseline 4%".into(),
+            figures: r#"{"share":0.31,"baseline":0.04,"records":412}"#.into(),
+            snapshot_id: Some(40),
+            snapshot_as_of: Some("2026-03-10T23:59:59Z".into()),
+            opened_at: "2026-03-11T00:01:00Z".into(),
+            at: "2026-03-11T00:01:00Z".into(),
+        }
+    }
+
+    #[test]
+    fn payload_carries_aggregates_link_and_caution() {
+        let body: Value = serde_json::from_str(&payload(&facts(), "http://127.0.0.1:8440/")).unwrap();
+        assert_eq!(body["event_id"], 7);
+        assert_eq!(body["figures"]["baseline"], 0.04);
+        assert_eq!(body["dashboard"], "http://127.0.0.1:8440/sources/county-reports");
+        assert!(body["caution"].as_str().unwrap().contains("not a confirmed"));
+    }
+
+    #[test]
+    fn email_has_both_parts_and_escapes() {
+        let mut f = facts();
+        f.summary = "a < b & c".into();
+        let email = email_text(&payload(&f, "http://h"));
+        assert!(email.subject.contains("missingness_jump on county-reports onset_date"));
+        assert!(email.plain.contains("figure share: 0.31") && email.plain.contains(CAUTION));
+        assert!(email.html.contains("a &lt; b &amp; c") && email.html.contains("href=\"http://h/sources/county-reports\""));
+    }
+}

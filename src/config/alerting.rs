@@ -1,0 +1,131 @@
+//! The `[alert]` lifecycle and delivery settings and the `[quality]` table: raw serde types
+//! as written (unknown keys refused) and their validated forms. Channel secrets stay in
+//! environment variables; only their names are kept here.
+
+use std::collections::BTreeMap;
+use std::time::Duration;
+
+use serde::Deserialize;
+
+use super::parse_duration;
+use crate::model::Field;
+
+/// How urgent an alert is; channels take alerts at or above their `min_severity`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
+pub enum Severity {
+    Info,
+    Warning,
+    Critical,
+}
+
+impl Severity {
+    pub fn name(self) -> &'static str {
+        match self {
+            Severity::Info => "info",
+            Severity::Warning => "warning",
+            Severity::Critical => "critical",
+        }
+    }
+
+    pub fn parse(text: &str) -> Option<Severity> {
+        match text {
+            "info" => Some(Severity::Info),
+            "warning" => Some(Severity::Warning),
+            "critical" => Some(Severity::Critical),
+            _ => None,
+        }
+    }
+}
+
+/// Default re-send interval of an alert nobody has acknowledged: a working shift.
+pub const DEFAULT_RESEND_AFTER: Duration = Duration::from_secs(6 * 3600);
+/// Default number of consecutive clear evaluations after which an alert resolves.
+pub const DEFAULT_RESOLVE_AFTER: u32 = 3;
+/// Default time a message is retried before it becomes a dead letter: a day, so a channel
+/// that is down overnight still delivers in the morning.
+pub const DEFAULT_MAX_AGE: Duration = Duration::from_secs(24 * 3600);
+/// Default first retry delay and cap of the exponential backoff.
+pub const DEFAULT_RETRY_BASE: Duration = Duration::from_secs(30);
+pub const DEFAULT_RETRY_CAP: Duration = Duration::from_secs(30 * 60);
+/// Default timeout of one delivery attempt.
+pub const DEFAULT_CHANNEL_TIMEOUT: Duration = Duration::from_secs(10);
+
+#[derive(Debug, Deserialize, Default)]
+#[serde(deny_unknown_fields)]
+pub struct RawQuality {
+    pub lag_from: Option<Vec<String>>,
+}
+
+/// The validated `[quality]` table.
+#[derive(Debug, Clone)]
+pub struct QualitySettings {
+    /// Reference date of the reporting lag: the first of these present in a record.
+    pub lag_from: Vec<Field>,
+}
+
+impl Default for QualitySettings {
+    fn default() -> Self {
+        QualitySettings { lag_from: vec![Field::OnsetDate, Field::SpecimenDate] }
+    }
+}
+
+/// Lifecycle and delivery settings of `[alert]` (the channels are in `Config`).
+#[derive(Debug, Clone)]
+pub struct AlertSettings {
+    pub resend_after: Duration,
+    pub resolve_after: u32,
+    pub max_age: Duration,
+    pub retry_base: Duration,
+    pub retry_cap: Duration,
+    /// Consecutive failed polls of a source before the poll-failure rule fires.
+    pub failed_polls: u32,
+    /// Per rule name: parameter overrides as written, checked by `alert::rules`.
+    pub rules: BTreeMap<String, toml::Table>,
+}
+
+impl Default for AlertSettings {
+    fn default() -> Self {
+        AlertSettings {
+            resend_after: DEFAULT_RESEND_AFTER,
+            resolve_after: DEFAULT_RESOLVE_AFTER,
+            max_age: DEFAULT_MAX_AGE,
+            retry_base: DEFAULT_RETRY_BASE,
+            retry_cap: DEFAULT_RETRY_CAP,
+            failed_polls: 3,
+            rules: BTreeMap::new(),
+        }
+    }
+}
+
+pub fn build_quality(raw: RawQuality, problems: &mut Vec<String>) -> QualitySettings {
+    let Some(names) = raw.lag_from else { return QualitySettings::default() };
+    let mut lag_from = Vec::new();
+    for name in names {
+        match Field::parse(&name).filter(|f| f.is_date()) {
+            Some(field) => lag_from.push(field),
+            None => problems.push(format!("quality.lag_from: \"{name}\" is not a date field")),
+        }
+    }
+    QualitySettings { lag_from }
+}
+
+/// Reads a duration key, reporting a problem (and keeping the default) when it is bad.
+pub fn duration_or(text: Option<&str>, key: &str, default: Duration, problems: &mut Vec<String>) -> Duration {
+    match text {
+        None => default,
+        Some(text) => parse_duration(text).unwrap_or_else(|| {
+            problems.push(format!("{key}: \"{text}\" is not a duration like 30s, 15m, 6h"));
+            default
+        }),
+    }
+}
+
+pub fn severity_or(text: Option<&str>, key: &str, problems: &mut Vec<String>) -> Severity {
+    match text {
+        None => Severity::Info,
+        Some(text) => Severity::parse(text).unwrap_or_else(|| {
+            problems.push(format!("{key}: \"{text}\" is not one of info, warning, critical"));
+            Severity::Info
+        }),
+    }
+}

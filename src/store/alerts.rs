@@ -1,0 +1,479 @@
+//! The alert lifecycle and the delivery outbox in SQL. One evaluation pass (the findings of
+//! some rules for some sources at one time) is one transaction: alerts are opened, updated,
+//! re-sent or resolved, and every message they call for is written to `alert_event` and
+//! `outbox` in the same transaction, so an alert is never raised without its notification
+//! nor a notification queued for an alert that was rolled back. Delivery (in `app`) takes
+//! due outbox rows and reports back; it is at-least-once, the event id being the
+//! idempotency key. States: open -> notified (a message was delivered) -> acknowledged ->
+//! resolved; a fingerprint (rule, source, subject) has at most one alert not resolved.
+
+use std::collections::HashSet;
+use std::time::Duration;
+
+use chrono::{DateTime, Utc};
+use rusqlite::{OptionalExtension, Transaction, params};
+
+use super::{Reader, Store, StoreError, time_text};
+
+/// What one rule found for one subject at one evaluation: aggregates only.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Finding {
+    pub fingerprint: String,
+    pub rule: String,
+    pub source: String,
+    pub subject: String,
+    /// `info`, `warning` or `critical`.
+    pub severity: String,
+    pub summary: String,
+    /// JSON object of the figures that tripped the rule (and its baseline).
+    pub figures: String,
+    pub snapshot_id: Option<i64>,
+}
+
+/// Lifecycle settings of one evaluation.
+#[derive(Debug, Clone, Copy)]
+pub struct Lifecycle {
+    pub now: DateTime<Utc>,
+    pub resend_after: Duration,
+    pub resolve_after: u32,
+}
+
+/// Everything a message about one event says; `app` turns it into the payload.
+#[derive(Debug, Clone, PartialEq)]
+pub struct MessageFacts {
+    pub event_id: i64,
+    /// `opened`, `resent`, `resolved` or `test`.
+    pub kind: String,
+    pub alert_id: Option<i64>,
+    pub rule: String,
+    pub source: String,
+    pub subject: String,
+    pub severity: String,
+    pub summary: String,
+    pub figures: String,
+    pub snapshot_id: Option<i64>,
+    pub snapshot_as_of: Option<String>,
+    pub opened_at: String,
+    pub at: String,
+}
+
+/// How an evaluation pass routes and words its messages.
+pub struct Delivery<'a> {
+    /// Channels (`email`, `webhook`) that take an alert of this severity.
+    pub route: &'a dyn Fn(&str) -> Vec<&'static str>,
+    /// The JSON payload stored with a notifying event.
+    pub payload: &'a dyn Fn(&MessageFacts) -> String,
+}
+
+impl std::fmt::Debug for Delivery<'_> {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str("Delivery")
+    }
+}
+
+/// What one evaluation pass changed.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct EvalOutcome {
+    pub opened: usize,
+    pub updated: usize,
+    pub resent: usize,
+    pub resolved: usize,
+    /// Outbox rows written.
+    pub enqueued: usize,
+}
+
+/// One row of `tidemark alerts`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct AlertRow {
+    pub alert_id: i64,
+    pub rule: String,
+    pub source: String,
+    pub subject: String,
+    pub severity: String,
+    pub state: String,
+    pub summary: String,
+    pub opened_at: String,
+    pub last_seen_at: String,
+    pub times_seen: i64,
+    pub clear_count: i64,
+    pub last_sent_at: Option<String>,
+    pub sent_count: i64,
+    pub delivered: i64,
+    pub pending: i64,
+    pub dead_letters: i64,
+    pub acked_at: Option<String>,
+    pub ack_note: Option<String>,
+    pub resolved_at: Option<String>,
+}
+
+/// One outbox row to deliver.
+#[derive(Debug, Clone, PartialEq)]
+pub struct OutboxItem {
+    pub outbox_id: i64,
+    pub event_id: i64,
+    pub channel: String,
+    pub payload: String,
+    pub attempts: i64,
+    pub created_at: DateTime<Utc>,
+}
+
+/// A live alert as the evaluation needs it.
+struct Live {
+    alert_id: i64,
+    state: String,
+    last_sent_at: Option<String>,
+}
+
+impl Store {
+    /// Applies one evaluation pass: `scope` lists the (source, rule) pairs evaluated; a live
+    /// alert of such a pair without a finding this time counts one clear evaluation.
+    pub fn apply_findings(
+        &mut self,
+        scope: &[(String, String)],
+        findings: &[Finding],
+        life: &Lifecycle,
+        delivery: &Delivery<'_>,
+    ) -> Result<EvalOutcome, StoreError> {
+        let tx = self.conn.transaction()?;
+        let mut outcome = EvalOutcome::default();
+        let mut seen = HashSet::new();
+        for finding in findings {
+            if !seen.insert(finding.fingerprint.clone()) {
+                continue;
+            }
+            raise(&tx, finding, life, delivery, &mut outcome)?;
+        }
+        for (source, rule) in scope {
+            clear_absent(&tx, source, rule, &seen, life, delivery, &mut outcome)?;
+        }
+        tx.commit()?;
+        Ok(outcome)
+    }
+
+    /// Acknowledges a live alert: no more re-sends; it still resolves when clear.
+    pub fn ack_alert(&mut self, alert_id: i64, note: &str, now: DateTime<Utc>) -> Result<(), StoreError> {
+        let tx = self.conn.transaction()?;
+        let state: Option<String> =
+            tx.query_row("SELECT state FROM alert WHERE alert_id = ?1", [alert_id], |r| r.get(0)).optional()?;
+        match state.as_deref() {
+            None => return Err(StoreError::Refused(format!("there is no alert {alert_id}"))),
+            Some("resolved") => {
+                return Err(StoreError::Refused(format!("alert {alert_id} is resolved already")));
+            }
+            Some(_) => {}
+        }
+        let at = time_text(now);
+        tx.execute(
+            "UPDATE alert SET state = 'acknowledged', acked_at = ?2, ack_note = ?3 WHERE alert_id = ?1",
+            params![alert_id, at, note],
+        )?;
+        tx.execute(
+            "INSERT INTO alert_event (alert_id, kind, at, note) VALUES (?1, 'acknowledged', ?2, ?3)",
+            params![alert_id, at, note],
+        )?;
+        tx.commit()?;
+        Ok(())
+    }
+
+    /// Queues a test message on every channel given; returns the event id.
+    pub fn enqueue_test(
+        &mut self,
+        channels: &[&'static str],
+        now: DateTime<Utc>,
+        payload: &dyn Fn(&MessageFacts) -> String,
+    ) -> Result<i64, StoreError> {
+        let tx = self.conn.transaction()?;
+        let at = time_text(now);
+        tx.execute("INSERT INTO alert_event (kind, at) VALUES ('test', ?1)", [&at])?;
+        let event_id = tx.last_insert_rowid();
+        let facts = MessageFacts {
+            event_id,
+            kind: "test".into(),
+            alert_id: None,
+            rule: "test".into(),
+            source: String::new(),
+            subject: String::new(),
+            severity: "info".into(),
+            summary: "test message: delivery from tidemark works".into(),
+            figures: "{}".into(),
+            snapshot_id: None,
+            snapshot_as_of: None,
+            opened_at: at.clone(),
+            at: at.clone(),
+        };
+        tx.execute("UPDATE alert_event SET payload = ?2 WHERE event_id = ?1", params![event_id, payload(&facts)])?;
+        for channel in channels {
+            enqueue(&tx, event_id, channel, &at)?;
+        }
+        tx.commit()?;
+        Ok(event_id)
+    }
+
+    /// Outbox rows due at `now`, oldest first.
+    pub fn due_outbox(&self, now: DateTime<Utc>, limit: usize) -> Result<Vec<OutboxItem>, StoreError> {
+        let mut stmt = self.conn.prepare(
+            "SELECT o.outbox_id, o.event_id, o.channel, e.payload, o.attempts, o.created_at
+             FROM outbox o JOIN alert_event e USING (event_id)
+             WHERE o.delivered_at IS NULL AND o.dead_at IS NULL AND o.due_at <= ?1
+             ORDER BY o.due_at, o.outbox_id LIMIT ?2",
+        )?;
+        let rows = stmt.query_map(params![time_text(now), limit as i64], |r| {
+            Ok(OutboxItem {
+                outbox_id: r.get(0)?,
+                event_id: r.get(1)?,
+                channel: r.get(2)?,
+                payload: r.get::<_, Option<String>>(3)?.unwrap_or_default(),
+                attempts: r.get(4)?,
+                created_at: super::parse_time(&r.get::<_, String>(5)?).unwrap_or_default(),
+            })
+        })?;
+        Ok(rows.collect::<Result<_, _>>()?)
+    }
+
+    /// Marks a row delivered; its alert becomes `notified` if it was `open`.
+    pub fn mark_delivered(&mut self, outbox_id: i64, now: DateTime<Utc>) -> Result<(), StoreError> {
+        let tx = self.conn.transaction()?;
+        tx.execute(
+            "UPDATE outbox SET delivered_at = ?2, attempts = attempts + 1, last_error = NULL WHERE outbox_id = ?1",
+            params![outbox_id, time_text(now)],
+        )?;
+        tx.execute(
+            "UPDATE alert SET state = 'notified'
+             WHERE state = 'open' AND alert_id =
+                 (SELECT e.alert_id FROM outbox o JOIN alert_event e USING (event_id) WHERE o.outbox_id = ?1)",
+            [outbox_id],
+        )?;
+        tx.commit()?;
+        Ok(())
+    }
+
+    /// Records a failed attempt: retried at `retry_at`, or a dead letter when `None`.
+    pub fn mark_failed(
+        &mut self,
+        outbox_id: i64,
+        error: &str,
+        now: DateTime<Utc>,
+        retry_at: Option<DateTime<Utc>>,
+    ) -> Result<(), StoreError> {
+        match retry_at {
+            Some(at) => self.conn.execute(
+                "UPDATE outbox SET attempts = attempts + 1, last_error = ?2, due_at = ?3 WHERE outbox_id = ?1",
+                params![outbox_id, error, time_text(at)],
+            )?,
+            None => self.conn.execute(
+                "UPDATE outbox SET attempts = attempts + 1, last_error = ?2, dead_at = ?3 WHERE outbox_id = ?1",
+                params![outbox_id, error, time_text(now)],
+            )?,
+        };
+        Ok(())
+    }
+}
+
+/// Opens an alert for a new fingerprint, or updates (and maybe re-sends) the live one.
+fn raise(
+    tx: &Transaction<'_>,
+    f: &Finding,
+    life: &Lifecycle,
+    delivery: &Delivery<'_>,
+    outcome: &mut EvalOutcome,
+) -> Result<(), StoreError> {
+    let now = time_text(life.now);
+    let live: Option<Live> = tx
+        .query_row(
+            "SELECT alert_id, state, last_sent_at FROM alert WHERE fingerprint = ?1 AND state <> 'resolved'",
+            [&f.fingerprint],
+            |r| Ok(Live { alert_id: r.get(0)?, state: r.get(1)?, last_sent_at: r.get(2)? }),
+        )
+        .optional()?;
+    let Some(live) = live else {
+        tx.execute(
+            "INSERT INTO alert (fingerprint, rule, source, subject, severity, state, summary, figures, snapshot_id,
+                 opened_at, last_seen_at)
+             VALUES (?1, ?2, ?3, ?4, ?5, 'open', ?6, ?7, ?8, ?9, ?9)",
+            params![f.fingerprint, f.rule, f.source, f.subject, f.severity, f.summary, f.figures, f.snapshot_id, now],
+        )?;
+        outcome.opened += 1;
+        return notify(tx, tx.last_insert_rowid(), "opened", life, delivery, outcome);
+    };
+    tx.execute(
+        "UPDATE alert SET last_seen_at = ?2, times_seen = times_seen + 1, clear_count = 0, summary = ?3,
+             figures = ?4, severity = ?5, snapshot_id = coalesce(?6, snapshot_id)
+         WHERE alert_id = ?1",
+        params![live.alert_id, now, f.summary, f.figures, f.severity, f.snapshot_id],
+    )?;
+    outcome.updated += 1;
+    if live.state != "acknowledged" && resend_due(live.last_sent_at.as_deref(), life) {
+        outcome.resent += 1;
+        notify(tx, live.alert_id, "resent", life, delivery, outcome)?;
+    }
+    Ok(())
+}
+
+/// An unacknowledged alert is sent again once `resend_after` has passed since the last
+/// send; one that was never sent (no channel took it) is not.
+fn resend_due(last_sent_at: Option<&str>, life: &Lifecycle) -> bool {
+    let Some(last) = last_sent_at.and_then(super::parse_time) else { return false };
+    let since = (life.now - last).to_std().unwrap_or_default();
+    since >= life.resend_after
+}
+
+/// Counts a clear evaluation for the live alerts of (source, rule) not found this time,
+/// and resolves those clear for `resolve_after` evaluations in a row.
+fn clear_absent(
+    tx: &Transaction<'_>,
+    source: &str,
+    rule: &str,
+    seen: &HashSet<String>,
+    life: &Lifecycle,
+    delivery: &Delivery<'_>,
+    outcome: &mut EvalOutcome,
+) -> Result<(), StoreError> {
+    let live: Vec<(i64, String, i64, i64)> = {
+        let mut stmt = tx.prepare(
+            "SELECT alert_id, fingerprint, clear_count, sent_count FROM alert
+             WHERE source = ?1 AND rule = ?2 AND state <> 'resolved'",
+        )?;
+        let rows = stmt.query_map([source, rule], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?)))?;
+        rows.collect::<Result<_, _>>()?
+    };
+    let now = time_text(life.now);
+    for (alert_id, fingerprint, clear_count, sent_count) in live {
+        if seen.contains(&fingerprint) {
+            continue;
+        }
+        if clear_count + 1 < life.resolve_after as i64 {
+            tx.execute("UPDATE alert SET clear_count = clear_count + 1 WHERE alert_id = ?1", [alert_id])?;
+            continue;
+        }
+        tx.execute(
+            "UPDATE alert SET clear_count = clear_count + 1, state = 'resolved', resolved_at = ?2 WHERE alert_id = ?1",
+            params![alert_id, now],
+        )?;
+        outcome.resolved += 1;
+        if sent_count > 0 {
+            notify(tx, alert_id, "resolved", life, delivery, outcome)?;
+        } else {
+            tx.execute(
+                "INSERT INTO alert_event (alert_id, kind, at) VALUES (?1, 'resolved', ?2)",
+                params![alert_id, now],
+            )?;
+        }
+    }
+    Ok(())
+}
+
+/// Writes a notifying event with its payload and one outbox row per routed channel.
+fn notify(
+    tx: &Transaction<'_>,
+    alert_id: i64,
+    kind: &str,
+    life: &Lifecycle,
+    delivery: &Delivery<'_>,
+    outcome: &mut EvalOutcome,
+) -> Result<(), StoreError> {
+    let at = time_text(life.now);
+    tx.execute("INSERT INTO alert_event (alert_id, kind, at) VALUES (?1, ?2, ?3)", params![alert_id, kind, at])?;
+    let event_id = tx.last_insert_rowid();
+    let mut facts = tx.query_row(
+        "SELECT a.rule, a.source, a.subject, a.severity, a.summary, a.figures, a.snapshot_id, n.as_of, a.opened_at
+         FROM alert a LEFT JOIN snapshot n ON n.snapshot_id = a.snapshot_id WHERE a.alert_id = ?1",
+        [alert_id],
+        |r| {
+            Ok(MessageFacts {
+                event_id,
+                kind: kind.to_string(),
+                alert_id: Some(alert_id),
+                rule: r.get(0)?,
+                source: r.get(1)?,
+                subject: r.get(2)?,
+                severity: r.get(3)?,
+                summary: r.get(4)?,
+                figures: r.get(5)?,
+                snapshot_id: r.get(6)?,
+                snapshot_as_of: r.get(7)?,
+                opened_at: r.get(8)?,
+                at: at.clone(),
+            })
+        },
+    )?;
+    facts.kind = kind.to_string();
+    tx.execute(
+        "UPDATE alert_event SET payload = ?2 WHERE event_id = ?1",
+        params![event_id, (delivery.payload)(&facts)],
+    )?;
+    let channels = (delivery.route)(&facts.severity);
+    for channel in &channels {
+        enqueue(tx, event_id, channel, &at)?;
+    }
+    outcome.enqueued += channels.len();
+    if !channels.is_empty() && kind != "resolved" {
+        tx.execute(
+            "UPDATE alert SET last_sent_at = ?2, sent_count = sent_count + 1 WHERE alert_id = ?1",
+            params![alert_id, at],
+        )?;
+    }
+    Ok(())
+}
+
+fn enqueue(tx: &Transaction<'_>, event_id: i64, channel: &str, at: &str) -> Result<(), StoreError> {
+    tx.execute(
+        "INSERT INTO outbox (event_id, channel, created_at, due_at) VALUES (?1, ?2, ?3, ?3)",
+        params![event_id, channel, at],
+    )?;
+    Ok(())
+}
+
+impl Reader {
+    /// Alerts, live ones first, newest first, with their delivery counts.
+    pub fn alerts(&self, include_resolved: bool) -> Result<Vec<AlertRow>, StoreError> {
+        let mut stmt = self.conn.prepare(
+            "SELECT a.alert_id, a.rule, a.source, a.subject, a.severity, a.state, a.summary, a.opened_at,
+                    a.last_seen_at, a.times_seen, a.clear_count, a.last_sent_at, a.sent_count,
+                    coalesce(sum(o.delivered_at IS NOT NULL), 0),
+                    coalesce(sum(o.outbox_id IS NOT NULL AND o.delivered_at IS NULL AND o.dead_at IS NULL), 0),
+                    coalesce(sum(o.dead_at IS NOT NULL), 0),
+                    a.acked_at, a.ack_note, a.resolved_at
+             FROM alert a
+             LEFT JOIN alert_event e ON e.alert_id = a.alert_id
+             LEFT JOIN outbox o ON o.event_id = e.event_id
+             WHERE ?1 OR a.state <> 'resolved'
+             GROUP BY a.alert_id
+             ORDER BY a.state = 'resolved', a.alert_id DESC",
+        )?;
+        let rows = stmt.query_map([include_resolved], |r| {
+            Ok(AlertRow {
+                alert_id: r.get(0)?,
+                rule: r.get(1)?,
+                source: r.get(2)?,
+                subject: r.get(3)?,
+                severity: r.get(4)?,
+                state: r.get(5)?,
+                summary: r.get(6)?,
+                opened_at: r.get(7)?,
+                last_seen_at: r.get(8)?,
+                times_seen: r.get(9)?,
+                clear_count: r.get(10)?,
+                last_sent_at: r.get(11)?,
+                sent_count: r.get(12)?,
+                delivered: r.get(13)?,
+                pending: r.get(14)?,
+                dead_letters: r.get(15)?,
+                acked_at: r.get(16)?,
+                ack_note: r.get(17)?,
+                resolved_at: r.get(18)?,
+            })
+        })?;
+        Ok(rows.collect::<Result<_, _>>()?)
+    }
+
+    /// Dead letters and the test messages' outbox rows: (outbox id, event id, channel,
+    /// attempts, last error, dead at), newest first.
+    pub fn dead_letters(&self) -> Result<Vec<(i64, i64, String, i64, Option<String>, String)>, StoreError> {
+        let mut stmt = self.conn.prepare(
+            "SELECT outbox_id, event_id, channel, attempts, last_error, dead_at FROM outbox
+             WHERE dead_at IS NOT NULL ORDER BY outbox_id DESC",
+        )?;
+        let rows = stmt.query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?, r.get(5)?)))?;
+        Ok(rows.collect::<Result<_, _>>()?)
+    }
+}

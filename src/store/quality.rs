@@ -1,0 +1,363 @@
+//! Data-quality measures of one applied snapshot, computed in SQL with `GROUP BY` (one scan
+//! of the source's versions valid at the snapshot, never a row at a time in Rust) and stored
+//! keyed by the snapshot: per canonical field the missing and invalid counts among all
+//! current records and among the records the snapshot added or changed, overall and per
+//! jurisdiction; the reporting lag of records first seen in the snapshot (median and 90th
+//! percentile); and reads of these for `tidemark quality` and the alert rules.
+
+use std::collections::BTreeMap;
+
+use rusqlite::{Transaction, params};
+
+use super::{Reader, Store, StoreError};
+use crate::analysis::quantile::quantile_of_counts;
+use crate::model::Field;
+
+/// The stratum a record without a jurisdiction is counted in.
+pub const NO_JURISDICTION: &str = "(missing)";
+
+/// What to measure for a source.
+#[derive(Debug, Clone)]
+pub struct QualitySpec {
+    /// Canonical fields whose missing and invalid shares are measured (the mapped ones).
+    pub fields: Vec<Field>,
+    /// Reference date of the reporting lag: the first of these fields that is present.
+    pub lag_from: Vec<Field>,
+}
+
+/// One stored quality row.
+#[derive(Debug, Clone, PartialEq)]
+pub struct QualityRow {
+    pub snapshot_id: i64,
+    pub scope: String,
+    pub stratum_kind: String,
+    pub stratum: String,
+    pub field: String,
+    pub records: i64,
+    pub missing: i64,
+    pub invalid: i64,
+    pub share_missing: Option<f64>,
+    pub share_invalid: Option<f64>,
+}
+
+/// One stored lag row.
+#[derive(Debug, Clone, PartialEq)]
+pub struct LagRow {
+    pub snapshot_id: i64,
+    pub stratum_kind: String,
+    pub stratum: String,
+    pub ref_fields: String,
+    pub new_records: i64,
+    pub n: i64,
+    pub median_days: Option<f64>,
+    pub p90_days: Option<f64>,
+}
+
+/// The volume of one snapshot, from the snapshot table.
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct VolumeRow {
+    pub snapshot_id: i64,
+    pub as_of: String,
+    pub status: String,
+    pub rows_total: i64,
+    pub rows_accepted: i64,
+    pub rows_new: i64,
+    pub rows_changed: i64,
+    pub rows_removed: i64,
+    pub rows_rejected: i64,
+}
+
+/// Counts of one (scope, stratum, field) cell before shares are taken.
+#[derive(Debug, Clone, Copy, Default)]
+struct Counts {
+    records: i64,
+    nulls: i64,
+    invalid: i64,
+}
+
+type CellKey = (&'static str, String, Field);
+
+/// Per (stratum kind, stratum): new records, and the lag histogram of those with a date.
+type LagHistograms = BTreeMap<(String, String), (i64, Vec<(f64, u64)>)>;
+
+impl Store {
+    /// Computes and stores the quality measures of `snapshot_id` (replacing earlier ones of
+    /// the same snapshot) in one transaction. Returns the number of quality rows.
+    pub fn write_quality(
+        &mut self,
+        source_id: i64,
+        snapshot_id: i64,
+        spec: &QualitySpec,
+    ) -> Result<usize, StoreError> {
+        let tx = self.conn.transaction()?;
+        tx.execute("DELETE FROM quality WHERE snapshot_id = ?1", [snapshot_id])?;
+        tx.execute("DELETE FROM quality_lag WHERE snapshot_id = ?1", [snapshot_id])?;
+        let cells = field_counts(&tx, source_id, snapshot_id, &spec.fields)?;
+        let written = insert_quality(&tx, source_id, snapshot_id, &cells)?;
+        if !spec.lag_from.is_empty() {
+            write_lag(&tx, source_id, snapshot_id, &spec.lag_from)?;
+        }
+        tx.commit()?;
+        Ok(written)
+    }
+}
+
+/// The SQL expression that is NULL when a field is empty or invalid.
+fn value_column(field: Field) -> &'static str {
+    match field {
+        Field::Age => "age_lo",
+        other => other.name(),
+    }
+}
+
+fn invalid_test(field: Field) -> String {
+    format!("(invalid IS NOT NULL AND instr(',' || invalid || ',', ',{},') > 0)", field.name())
+}
+
+/// One grouped scan: per jurisdiction and "written by this snapshot or not", the number of
+/// records, and per field the NULL and invalid counts; then summed into the four cells.
+fn field_counts(
+    tx: &Transaction<'_>,
+    source_id: i64,
+    snapshot_id: i64,
+    fields: &[Field],
+) -> Result<BTreeMap<CellKey, Counts>, StoreError> {
+    let mut select = String::new();
+    for field in fields {
+        select.push_str(&format!(", sum({} IS NULL), sum({})", value_column(*field), invalid_test(*field)));
+    }
+    let sql = format!(
+        "SELECT coalesce(jurisdiction, '{NO_JURISDICTION}'), valid_from = ?2, count(*){select}
+         FROM case_version
+         WHERE source_id = ?1 AND valid_from <= ?2 AND (valid_to IS NULL OR valid_to > ?2)
+         GROUP BY 1, 2"
+    );
+    let mut stmt = tx.prepare(&sql)?;
+    let mut rows = stmt.query(params![source_id, snapshot_id])?;
+    let mut cells: BTreeMap<CellKey, Counts> = BTreeMap::new();
+    while let Some(row) = rows.next()? {
+        let jurisdiction: String = row.get(0)?;
+        let fresh: bool = row.get(1)?;
+        let records: i64 = row.get(2)?;
+        for (idx, field) in fields.iter().enumerate() {
+            let counts = Counts {
+                records,
+                nulls: row.get::<_, Option<i64>>(3 + 2 * idx)?.unwrap_or(0),
+                invalid: row.get::<_, Option<i64>>(4 + 2 * idx)?.unwrap_or(0),
+            };
+            let mut scopes = vec!["current"];
+            if fresh {
+                scopes.push("new_changed");
+            }
+            for scope in scopes {
+                for stratum in [("all", String::new()), ("jurisdiction", jurisdiction.clone())] {
+                    let key = (scope, format!("{}\u{1f}{}", stratum.0, stratum.1), *field);
+                    let cell = cells.entry(key).or_default();
+                    cell.records += counts.records;
+                    cell.nulls += counts.nulls;
+                    cell.invalid += counts.invalid;
+                }
+            }
+        }
+    }
+    Ok(cells)
+}
+
+fn insert_quality(
+    tx: &Transaction<'_>,
+    source_id: i64,
+    snapshot_id: i64,
+    cells: &BTreeMap<CellKey, Counts>,
+) -> Result<usize, StoreError> {
+    let mut insert = tx.prepare(
+        "INSERT INTO quality (snapshot_id, source_id, scope, stratum_kind, stratum, field, records,
+             missing, invalid, share_missing, share_invalid)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11)",
+    )?;
+    for ((scope, stratum, field), c) in cells {
+        let (kind, stratum) = stratum.split_once('\u{1f}').unwrap_or(("all", ""));
+        let missing = c.nulls - c.invalid;
+        let share = |n: i64| (c.records > 0).then(|| n as f64 / c.records as f64);
+        insert.execute(params![
+            snapshot_id,
+            source_id,
+            scope,
+            kind,
+            stratum,
+            field.name(),
+            c.records,
+            missing,
+            c.invalid,
+            share(missing),
+            share(c.invalid)
+        ])?;
+    }
+    Ok(cells.len())
+}
+
+/// Lag histogram of the records first seen in the snapshot (written by it, with no earlier
+/// version), grouped by jurisdiction and lag in days; quantiles are taken from the counts.
+fn write_lag(
+    tx: &Transaction<'_>,
+    source_id: i64,
+    snapshot_id: i64,
+    lag_from: &[Field],
+) -> Result<(), StoreError> {
+    let names: Vec<String> = lag_from.iter().map(|f| format!("c.{}", f.name())).collect();
+    // coalesce() needs two arguments; one field is just the column.
+    let reference =
+        if names.len() == 1 { names[0].clone() } else { format!("coalesce({})", names.join(", ")) };
+    let sql = format!(
+        "SELECT coalesce(c.jurisdiction, '{NO_JURISDICTION}'),
+                julianday(substr(n.as_of, 1, 10)) - julianday({reference}), count(*)
+         FROM case_version c JOIN snapshot n ON n.snapshot_id = c.valid_from
+         WHERE c.valid_from = ?2 AND c.source_id = ?1
+           AND NOT EXISTS (SELECT 1 FROM case_version p
+                           WHERE p.source_id = c.source_id AND p.case_key = c.case_key AND p.valid_from < ?2)
+         GROUP BY 1, 2"
+    );
+    let mut histograms: LagHistograms = BTreeMap::new();
+    {
+        let mut stmt = tx.prepare(&sql)?;
+        let mut rows = stmt.query(params![source_id, snapshot_id])?;
+        while let Some(row) = rows.next()? {
+            let jurisdiction: String = row.get(0)?;
+            let lag: Option<f64> = row.get(1)?;
+            let count: i64 = row.get(2)?;
+            for key in
+                [("all".to_string(), String::new()), ("jurisdiction".to_string(), jurisdiction.clone())]
+            {
+                let entry = histograms.entry(key).or_default();
+                entry.0 += count;
+                if let Some(lag) = lag {
+                    entry.1.push((lag, count as u64));
+                }
+            }
+        }
+    }
+    let ref_fields = lag_from.iter().map(|f| f.name()).collect::<Vec<_>>().join(",");
+    let mut insert = tx.prepare(
+        "INSERT INTO quality_lag (snapshot_id, source_id, stratum_kind, stratum, ref_fields, new_records, n,
+             median_days, p90_days)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9)",
+    )?;
+    for ((kind, stratum), (new_records, hist)) in &histograms {
+        let n: u64 = hist.iter().map(|(_, c)| c).sum();
+        insert.execute(params![
+            snapshot_id,
+            source_id,
+            kind,
+            stratum,
+            ref_fields,
+            new_records,
+            n as i64,
+            quantile_of_counts(hist, 0.5),
+            quantile_of_counts(hist, 0.9)
+        ])?;
+    }
+    Ok(())
+}
+
+impl Reader {
+    /// The latest snapshot of a source that has quality rows.
+    pub fn latest_quality_snapshot(&self, source_id: i64) -> Result<Option<i64>, StoreError> {
+        Ok(self.conn.query_row(
+            "SELECT max(snapshot_id) FROM quality WHERE source_id = ?1",
+            [source_id],
+            |r| r.get(0),
+        )?)
+    }
+
+    /// Quality rows of one snapshot, in a stable order.
+    pub fn quality_rows(&self, snapshot_id: i64) -> Result<Vec<QualityRow>, StoreError> {
+        let mut stmt = self.conn.prepare(
+            "SELECT snapshot_id, scope, stratum_kind, stratum, field, records, missing, invalid,
+                    share_missing, share_invalid
+             FROM quality WHERE snapshot_id = ?1
+             ORDER BY scope, stratum_kind, stratum, field",
+        )?;
+        let rows = stmt.query_map([snapshot_id], quality_row)?;
+        Ok(rows.collect::<Result<_, _>>()?)
+    }
+
+    /// Quality rows of one (scope, stratum kind) over the applied snapshots up to and
+    /// including `upto`, oldest first.
+    pub fn quality_history(
+        &self,
+        source_id: i64,
+        upto: i64,
+        scope: &str,
+        stratum_kind: &str,
+    ) -> Result<Vec<QualityRow>, StoreError> {
+        let mut stmt = self.conn.prepare(
+            "SELECT snapshot_id, scope, stratum_kind, stratum, field, records, missing, invalid,
+                    share_missing, share_invalid
+             FROM quality WHERE source_id = ?1 AND snapshot_id <= ?2 AND scope = ?3 AND stratum_kind = ?4
+             ORDER BY snapshot_id, stratum, field",
+        )?;
+        let rows = stmt.query_map(params![source_id, upto, scope, stratum_kind], quality_row)?;
+        Ok(rows.collect::<Result<_, _>>()?)
+    }
+
+    /// Lag rows of one snapshot, or (with `history`) of every snapshot up to it, oldest first.
+    pub fn lag_rows(&self, source_id: i64, upto: i64, history: bool) -> Result<Vec<LagRow>, StoreError> {
+        let mut stmt = self.conn.prepare(
+            "SELECT snapshot_id, stratum_kind, stratum, ref_fields, new_records, n, median_days, p90_days
+             FROM quality_lag
+             WHERE source_id = ?1 AND (snapshot_id = ?2 OR (?3 AND snapshot_id < ?2))
+             ORDER BY snapshot_id, stratum_kind, stratum",
+        )?;
+        let rows = stmt.query_map(params![source_id, upto, history], |r| {
+            Ok(LagRow {
+                snapshot_id: r.get(0)?,
+                stratum_kind: r.get(1)?,
+                stratum: r.get(2)?,
+                ref_fields: r.get(3)?,
+                new_records: r.get(4)?,
+                n: r.get(5)?,
+                median_days: r.get(6)?,
+                p90_days: r.get(7)?,
+            })
+        })?;
+        Ok(rows.collect::<Result<_, _>>()?)
+    }
+
+    /// Volume of every snapshot of a source (any status) up to and including `upto`,
+    /// oldest first.
+    pub fn volumes(&self, source_id: i64, upto: i64) -> Result<Vec<VolumeRow>, StoreError> {
+        let mut stmt = self.conn.prepare(
+            "SELECT snapshot_id, as_of, status, rows_total, rows_accepted, rows_new, rows_changed, rows_removed,
+                    rows_rejected
+             FROM snapshot WHERE source_id = ?1 AND snapshot_id <= ?2 ORDER BY snapshot_id",
+        )?;
+        let rows = stmt.query_map(params![source_id, upto], |r| {
+            Ok(VolumeRow {
+                snapshot_id: r.get(0)?,
+                as_of: r.get(1)?,
+                status: r.get(2)?,
+                rows_total: r.get(3)?,
+                rows_accepted: r.get(4)?,
+                rows_new: r.get(5)?,
+                rows_changed: r.get(6)?,
+                rows_removed: r.get(7)?,
+                rows_rejected: r.get(8)?,
+            })
+        })?;
+        Ok(rows.collect::<Result<_, _>>()?)
+    }
+}
+
+fn quality_row(r: &rusqlite::Row<'_>) -> rusqlite::Result<QualityRow> {
+    Ok(QualityRow {
+        snapshot_id: r.get(0)?,
+        scope: r.get(1)?,
+        stratum_kind: r.get(2)?,
+        stratum: r.get(3)?,
+        field: r.get(4)?,
+        records: r.get(5)?,
+        missing: r.get(6)?,
+        invalid: r.get(7)?,
+        share_missing: r.get(8)?,
+        share_invalid: r.get(9)?,
+    })
+}
