@@ -10,6 +10,7 @@
 
 use rusqlite::{OptionalExtension, params};
 
+use super::read::cell;
 use super::{Reader, StoreError};
 use crate::model::Field;
 use crate::table::Table;
@@ -221,35 +222,24 @@ impl Reader {
         )?)
     }
 
-    /// The open alerts of a source, as stored by the alert stage: `None` when this store has
-    /// no alert tables. Reads the `alert_open` view when it exists, else open rows of `alert`.
-    pub fn open_alerts(&self, source_id: i64, limit: usize) -> Result<Option<Table>, StoreError> {
-        let relation = if self.has_relation("alert_open")? {
-            "alert_open"
-        } else if self.has_relation("alert")? {
-            "alert"
-        } else {
+    /// The alerts of a source that are not resolved (newest first), aggregates only: `None`
+    /// when this store has no alert tables (schema before version 4).
+    pub fn open_alerts(&self, source: &str, limit: usize) -> Result<Option<Table>, StoreError> {
+        if !self.has_relation("alert_open")? {
             return Ok(None);
-        };
-        let columns = self.relation_columns(relation)?;
-        let mut filters = Vec::new();
-        if columns.iter().any(|c| c == "source_id") {
-            filters.push(format!("source_id = {source_id}"));
         }
-        if relation == "alert" && columns.iter().any(|c| c == "status") {
-            filters.push("status = 'open'".into());
+        let mut stmt = self.conn.prepare(
+            "SELECT alert_id, rule, subject, severity, state, summary, opened_at, last_seen_at, times_seen
+             FROM alert_open WHERE source = ?1 ORDER BY opened_at DESC, alert_id DESC LIMIT ?2",
+        )?;
+        let columns: Vec<String> = stmt.column_names().map(|c| c.to_string()).collect();
+        let width = columns.len();
+        let mut table = Table { columns, rows: Vec::new() };
+        let mut rows = stmt.query(params![source, limit as i64])?;
+        while let Some(row) = rows.next()? {
+            table.rows.push((0..width).map(|idx| cell(row.get_ref(idx))).collect::<Result<_, _>>()?);
         }
-        let filter =
-            if filters.is_empty() { String::new() } else { format!(" WHERE {}", filters.join(" AND ")) };
-        let order = if columns.iter().any(|c| c == "raised_at") { " ORDER BY raised_at DESC" } else { "" };
-        let sql = format!("SELECT * FROM {relation}{filter}{order} LIMIT {limit}");
-        Ok(Some(self.query(&sql, limit + 1)?))
-    }
-
-    fn relation_columns(&self, relation: &str) -> Result<Vec<String>, StoreError> {
-        let mut stmt = self.conn.prepare("SELECT name FROM pragma_table_info(?1)")?;
-        let rows = stmt.query_map([relation], |r| r.get(0))?;
-        Ok(rows.collect::<Result<_, _>>()?)
+        Ok(Some(table))
     }
 }
 

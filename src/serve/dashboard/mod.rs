@@ -139,7 +139,7 @@ pub fn load_source_page(
     let (panels, alerts) = match &selected {
         Some((id, _)) => {
             let ids: Vec<i64> = snapshots.iter().map(|(id, _)| *id).collect();
-            (build_panels(&reader, source_id, *id, &ids)?, reader.open_alerts(source_id, MAX_ALERTS)?)
+            (build_panels(&reader, source_id, *id, &ids)?, reader.open_alerts(name, MAX_ALERTS)?)
         }
         None => (Vec::new(), None),
     };

@@ -185,14 +185,17 @@ fn alerts_html(alerts: Option<&Table>) -> String {
     let mut out = String::from("<section id=\"panel-alerts\"><h2>Open alerts</h2>\n");
     match alerts {
         None => out.push_str("<p>This store has no alert tables, so there are no alerts to show.</p>"),
-        Some(table) if table.rows.is_empty() => out.push_str("<p>No open alerts for this source.</p>"),
+        Some(table) if table.rows.is_empty() => out.push_str("<p>No open alerts for this source now.</p>"),
         Some(table) => {
             let text = NumbersTable {
                 headers: table.columns.clone(),
                 rows: table.rows.iter().map(|r| r.iter().map(cell_text).collect()).collect(),
             };
             out.push_str(&numbers_table(&text));
-            out.push_str("<p>An alert is a signal to investigate, not a confirmed outbreak.</p>");
+            out.push_str(
+                "<p>Alerts open now (this list is not redrawn as of a past snapshot). An alert is a signal to \
+                 investigate, not a confirmed outbreak.</p>",
+            );
         }
     }
     out.push_str("</section>\n");
