@@ -22,7 +22,12 @@ pub async fn send(config: &EmailConfig, event_id: i64, payload: &str) -> Result<
     let transport = transport(config)?;
     transport.send(message).await.map_err(|err| {
         let kind = if err.is_permanent() { "refused" } else { "failed" };
-        DeliveryError::Failed(format!("smtp {}:{}: {kind}: {}", config.smtp_host, config.smtp_port, short(&err)))
+        DeliveryError::Failed(format!(
+            "smtp {}:{}: {kind}: {}",
+            config.smtp_host,
+            config.smtp_port,
+            short(&err)
+        ))
     })?;
     Ok(())
 }
@@ -35,10 +40,13 @@ fn short(err: &lettre::transport::smtp::Error) -> String {
 fn build_message(config: &EmailConfig, event_id: i64, payload: &str) -> Result<Message, DeliveryError> {
     let text = email_text(payload);
     let address = |a: &str| {
-        a.parse::<Mailbox>().map_err(|_| DeliveryError::Setup(format!("alert.email: {a:?} is not an email address")))
+        a.parse::<Mailbox>()
+            .map_err(|_| DeliveryError::Setup(format!("alert.email: {a:?} is not an email address")))
     };
-    let mut builder =
-        Message::builder().from(address(&config.from)?).subject(text.subject).message_id(Some(message_id(event_id)));
+    let mut builder = Message::builder()
+        .from(address(&config.from)?)
+        .subject(text.subject)
+        .message_id(Some(message_id(event_id)));
     for to in &config.to {
         builder = builder.to(address(to)?);
     }
@@ -58,7 +66,8 @@ fn transport(config: &EmailConfig) -> Result<AsyncSmtpTransport<Tokio1Executor>,
     let mut builder = builder.port(config.smtp_port).timeout(Some(config.timeout));
     if let (Some(user_env), Some(password_env)) = (&config.username_env, &config.password_env) {
         let var = |name: &str| {
-            std::env::var(name).map_err(|_| DeliveryError::Setup(format!("environment variable {name} is not set")))
+            std::env::var(name)
+                .map_err(|_| DeliveryError::Setup(format!("environment variable {name} is not set")))
         };
         builder = builder.credentials(Credentials::new(var(user_env)?, var(password_env)?));
     }

@@ -65,13 +65,27 @@ pub fn email_text(payload: &str) -> EmailText {
         "test" => "test",
         _ => "signal",
     };
-    let subject_part = if s("subject").is_empty() || s("subject") == "-" { String::new() } else { format!(" {}", s("subject")) };
-    let subject =
-        format!("[tidemark {}] {verb}: {} on {}{subject_part} (needs investigation)", s("severity"), s("rule"), s("source"));
+    let subject_part = if s("subject").is_empty() || s("subject") == "-" {
+        String::new()
+    } else {
+        format!(" {}", s("subject"))
+    };
+    let subject = format!(
+        "[tidemark {}] {verb}: {} on {}{subject_part} (needs investigation)",
+        s("severity"),
+        s("rule"),
+        s("source")
+    );
     let lines = message_lines(&v, &s);
-    let plain = format!("{}\n\n{}\n", lines.iter().map(|(k, val)| format!("{k}: {val}")).collect::<Vec<_>>().join("\n"), CAUTION);
-    let rows: String =
-        lines.iter().map(|(k, val)| format!("<tr><th align=\"left\">{}</th><td>{}</td></tr>", escape(k), escape(val))).collect();
+    let plain = format!(
+        "{}\n\n{}\n",
+        lines.iter().map(|(k, val)| format!("{k}: {val}")).collect::<Vec<_>>().join("\n"),
+        CAUTION
+    );
+    let rows: String = lines
+        .iter()
+        .map(|(k, val)| format!("<tr><th align=\"left\">{}</th><td>{}</td></tr>", escape(k), escape(val)))
+        .collect();
     let html = format!(
         "<html><body><p><strong>{}</strong></p><table>{rows}</table><p><em>{}</em></p><p><a href=\"{}\">Open the dashboard</a></p></body></html>",
         escape(&s("summary")),
@@ -83,8 +97,17 @@ pub fn email_text(payload: &str) -> EmailText {
 
 fn message_lines(v: &Value, s: &dyn Fn(&str) -> String) -> Vec<(String, String)> {
     let mut lines: Vec<(String, String)> = [
-        "summary", "rule", "source", "subject", "severity", "kind", "snapshot_as_of", "opened_at", "sent_at",
-        "dashboard", "event_id",
+        "summary",
+        "rule",
+        "source",
+        "subject",
+        "severity",
+        "kind",
+        "snapshot_as_of",
+        "opened_at",
+        "sent_at",
+        "dashboard",
+        "event_id",
     ]
     .iter()
     .map(|k| (k.to_string(), s(k)))
@@ -139,6 +162,9 @@ mod tests {
         let email = email_text(&payload(&f, "http://h"));
         assert!(email.subject.contains("missingness_jump on county-reports onset_date"));
         assert!(email.plain.contains("figure share: 0.31") && email.plain.contains(CAUTION));
-        assert!(email.html.contains("a &lt; b &amp; c") && email.html.contains("href=\"http://h/sources/county-reports\""));
+        assert!(
+            email.html.contains("a &lt; b &amp; c")
+                && email.html.contains("href=\"http://h/sources/county-reports\"")
+        );
     }
 }

@@ -51,8 +51,9 @@ pub async fn send(
         .header(IDEMPOTENCY_HEADER, event_id.to_string())
         .header(EVENT_HEADER, event_id.to_string());
     if let Some(name) = &config.secret_env {
-        let secret = std::env::var(name)
-            .map_err(|_| DeliveryError::Setup(format!("environment variable {name} (webhook secret) is not set")))?;
+        let secret = std::env::var(name).map_err(|_| {
+            DeliveryError::Setup(format!("environment variable {name} (webhook secret) is not set"))
+        })?;
         request = request.header(SIGNATURE_HEADER, signature(secret.as_bytes(), &body));
     }
     let response = request.body(body).send().await.map_err(|err| {

@@ -153,8 +153,9 @@ impl Store {
     /// Acknowledges a live alert: no more re-sends; it still resolves when clear.
     pub fn ack_alert(&mut self, alert_id: i64, note: &str, now: DateTime<Utc>) -> Result<(), StoreError> {
         let tx = self.conn.transaction()?;
-        let state: Option<String> =
-            tx.query_row("SELECT state FROM alert WHERE alert_id = ?1", [alert_id], |r| r.get(0)).optional()?;
+        let state: Option<String> = tx
+            .query_row("SELECT state FROM alert WHERE alert_id = ?1", [alert_id], |r| r.get(0))
+            .optional()?;
         match state.as_deref() {
             None => return Err(StoreError::Refused(format!("there is no alert {alert_id}"))),
             Some("resolved") => {
@@ -201,7 +202,10 @@ impl Store {
             opened_at: at.clone(),
             at: at.clone(),
         };
-        tx.execute("UPDATE alert_event SET payload = ?2 WHERE event_id = ?1", params![event_id, payload(&facts)])?;
+        tx.execute(
+            "UPDATE alert_event SET payload = ?2 WHERE event_id = ?1",
+            params![event_id, payload(&facts)],
+        )?;
         for channel in channels {
             enqueue(&tx, event_id, channel, &at)?;
         }
@@ -372,7 +376,10 @@ fn notify(
     outcome: &mut EvalOutcome,
 ) -> Result<(), StoreError> {
     let at = time_text(life.now);
-    tx.execute("INSERT INTO alert_event (alert_id, kind, at) VALUES (?1, ?2, ?3)", params![alert_id, kind, at])?;
+    tx.execute(
+        "INSERT INTO alert_event (alert_id, kind, at) VALUES (?1, ?2, ?3)",
+        params![alert_id, kind, at],
+    )?;
     let event_id = tx.last_insert_rowid();
     let mut facts = tx.query_row(
         "SELECT a.rule, a.source, a.subject, a.severity, a.summary, a.figures, a.snapshot_id, n.as_of, a.opened_at
@@ -473,7 +480,8 @@ impl Reader {
             "SELECT outbox_id, event_id, channel, attempts, last_error, dead_at FROM outbox
              WHERE dead_at IS NOT NULL ORDER BY outbox_id DESC",
         )?;
-        let rows = stmt.query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?, r.get(5)?)))?;
+        let rows =
+            stmt.query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?, r.get(5)?)))?;
         Ok(rows.collect::<Result<_, _>>()?)
     }
 }

@@ -71,7 +71,10 @@ async fn drive_browser(store: PathBuf, scratch: &Path, shots: &Path) -> TestResu
 async fn check_pages(driver: &Driver, base: &str, shots: &Path) -> TestResult {
     driver.navigate(&format!("{base}/")).await?;
     let index = driver.script("return document.body.innerText;").await?;
-    assert!(index.as_str().unwrap_or_default().contains(COUNTY_SOURCE), "the index lists the demo source: {index}");
+    assert!(
+        index.as_str().unwrap_or_default().contains(COUNTY_SOURCE),
+        "the index lists the demo source: {index}"
+    );
     driver.navigate(&format!("{base}/sources/{COUNTY_SOURCE}")).await?;
     let latest = chart_marks(driver).await?;
     let latest_onset = driver.script("return document.getElementById('chart-onset').outerHTML;").await?;
@@ -212,18 +215,30 @@ impl Driver {
     async fn find(&self, css: &str) -> Result<String, Box<dyn std::error::Error>> {
         let body = json!({ "using": "css selector", "value": css });
         let found = self.call(reqwest::Method::POST, &self.session_path("/element"), Some(body)).await?;
-        let id = found.as_object().and_then(|o| o.values().next()).and_then(Value::as_str).ok_or("no element id")?;
+        let id = found
+            .as_object()
+            .and_then(|o| o.values().next())
+            .and_then(Value::as_str)
+            .ok_or("no element id")?;
         Ok(id.to_string())
     }
 
     async fn property(&self, element: &str, name: &str) -> Result<Value, Box<dyn std::error::Error>> {
-        self.call(reqwest::Method::GET, &self.session_path(&format!("/element/{element}/property/{name}")), None)
-            .await
+        self.call(
+            reqwest::Method::GET,
+            &self.session_path(&format!("/element/{element}/property/{name}")),
+            None,
+        )
+        .await
     }
 
     async fn click(&self, element: &str) -> Result<(), Box<dyn std::error::Error>> {
-        self.call(reqwest::Method::POST, &self.session_path(&format!("/element/{element}/click")), Some(json!({})))
-            .await?;
+        self.call(
+            reqwest::Method::POST,
+            &self.session_path(&format!("/element/{element}/click")),
+            Some(json!({})),
+        )
+        .await?;
         Ok(())
     }
 
@@ -287,7 +302,14 @@ fn base64_decode(text: &str) -> Result<Vec<u8>, String> {
 #[test]
 fn base64_decoding_matches_rfc_4648_examples() {
     // RFC 4648 section 10 test vectors.
-    for (plain, encoded) in [("", ""), ("f", "Zg=="), ("fo", "Zm8="), ("foo", "Zm9v"), ("foob", "Zm9vYg=="), ("foobar", "Zm9vYmFy")] {
+    for (plain, encoded) in [
+        ("", ""),
+        ("f", "Zg=="),
+        ("fo", "Zm8="),
+        ("foo", "Zm9v"),
+        ("foob", "Zm9vYg=="),
+        ("foobar", "Zm9vYmFy"),
+    ] {
         assert_eq!(base64_decode(encoded).unwrap(), plain.as_bytes(), "{encoded}");
     }
 }
