@@ -79,7 +79,7 @@ fn document(title: &str, body: &str) -> String {
 pub fn index(sources: &[SourceOverview]) -> String {
     let mut body = String::from("<header><h1>tidemark: sources</h1></header>\n");
     let _ =
-        write!(body, "<aside class=\"caution\" role=\"note\"><strong>Caution.</strong> {CAUTION}</aside>\n");
+        writeln!(body, "<aside class=\"caution\" role=\"note\"><strong>Caution.</strong> {CAUTION}</aside>");
     if sources.is_empty() {
         body.push_str("<p>No source has sent an extract yet.</p>");
     } else {
@@ -108,7 +108,7 @@ pub fn source(page: &SourcePage) -> String {
     let name = escape(&page.name);
     let mut body = format!("<header><a href=\"/\">All sources</a><h1>{name}</h1></header>\n");
     let _ =
-        write!(body, "<aside class=\"caution\" role=\"note\"><strong>Caution.</strong> {CAUTION}</aside>\n");
+        writeln!(body, "<aside class=\"caution\" role=\"note\"><strong>Caution.</strong> {CAUTION}</aside>");
     body.push_str(&selector(page));
     match &page.selected {
         None => body.push_str("<p>This source has no applied snapshot yet.</p>"),
@@ -154,9 +154,9 @@ fn panel_html(panel: &Panel) -> String {
     }
     let _ = write!(out, "\n<p>{}</p>\n", escape(&panel.summary));
     if !panel.table.rows.is_empty() {
-        let _ = write!(
+        let _ = writeln!(
             out,
-            "<details><summary>The numbers behind this chart</summary>{}</details>\n",
+            "<details><summary>The numbers behind this chart</summary>{}</details>",
             numbers_table(&panel.table)
         );
     }
