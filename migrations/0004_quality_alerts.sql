@@ -39,6 +39,19 @@ CREATE TABLE quality_lag (
     PRIMARY KEY (snapshot_id, stratum_kind, stratum)
 ) WITHOUT ROWID;
 
+-- The lag histogram behind quality_lag: how many records first seen in the snapshot had
+-- each lag (days); the lag-jump rule reads it per day. Counts only, no record keys.
+CREATE TABLE quality_lag_hist (
+    snapshot_id  INTEGER NOT NULL REFERENCES snapshot(snapshot_id),
+    source_id    INTEGER NOT NULL REFERENCES source(source_id),
+    stratum_kind TEXT NOT NULL,
+    stratum      TEXT NOT NULL,
+    lag_days     INTEGER NOT NULL,
+    n            INTEGER NOT NULL,
+    PRIMARY KEY (snapshot_id, stratum_kind, stratum, lag_days)
+) WITHOUT ROWID;
+CREATE INDEX quality_lag_hist_source ON quality_lag_hist(source_id, snapshot_id);
+
 -- The latest quality rows of every source, with the snapshot's volume.
 CREATE VIEW quality_latest AS
 SELECT s.name AS source, q.snapshot_id, n.as_of, q.scope, q.stratum_kind, q.stratum, q.field,

@@ -11,7 +11,10 @@
 //! - [`source`]: finding new extracts in folders and fetching them from URLs (no parsing).
 //! - [`extract`]: bytes of one extract -> canonical rows and row problems (pure, streaming).
 //! - [`store`]: SQLite: migrations, the one writer, as-of reads, the raw archive.
-//! - [`analysis`]: pure statistics: triangle, nowcasts, scores, delay fits, tests.
+//! - [`analysis`]: pure statistics: triangle, nowcasts, scores, delay fits, tests, EARS and
+//!   count CUSUM (`aberration`), CUSUM, EWMA and p-charts (`change`).
+//! - [`alert`]: signal vocabulary and the pure alert rules (quality, lag, volume, staleness,
+//!   count aberration) that turn measured aggregates into signals.
 //! - [`table`]: listings rendered as text, CSV or JSON.
 //! - [`metrics`]: the daemon's counters and their Prometheus text.
 //! - [`export`]: line lists, nowcasts and delay fits written as CSV or Parquet (files 0600).

@@ -154,6 +154,17 @@ enum Command {
         #[command(flatten)]
         listing: Listing,
     },
+    /// Alerts with their state and delivery; `ack ID --note TEXT`; `test` sends a test message.
+    #[command(args_conflicts_with_subcommands = true)]
+    Alerts {
+        #[command(subcommand)]
+        action: Option<AlertAction>,
+        /// Include resolved alerts.
+        #[arg(long)]
+        all: bool,
+        #[command(flatten)]
+        listing: Listing,
+    },
     /// Run one read-only SQL statement against the store.
     Query {
         sql: String,
@@ -201,6 +212,18 @@ enum Command {
         #[arg(long, default_value_t = DEFAULT_DAYS)]
         days: u32,
     },
+}
+
+#[derive(Debug, Subcommand)]
+enum AlertAction {
+    /// Acknowledge an alert: no more re-sends; it still resolves when clear.
+    Ack {
+        id: i64,
+        #[arg(long)]
+        note: String,
+    },
+    /// Send a test message through every configured channel now.
+    Test,
 }
 
 #[derive(Debug, Subcommand)]
@@ -330,6 +353,14 @@ fn run(cli: Cli) -> Result<u8> {
         }
         Command::Quality { source, snapshot, listing } => {
             tidemark::app::quality::quality(&load(flag)?, &source, snapshot, listing.format)?
+        }
+        Command::Alerts { action, all, listing } => {
+            let config = load(flag)?;
+            match action {
+                None => tidemark::app::alerting::list(&config, all, listing.format)?,
+                Some(AlertAction::Ack { id, note }) => tidemark::app::alerting::ack(&config, id, &note)?,
+                Some(AlertAction::Test) => tidemark::app::alerting::test(&config)?,
+            }
         }
         Command::Query { sql, listing } => commands::query(&load(flag)?, &sql, listing.format)?,
         Command::Run { no_ops } => {

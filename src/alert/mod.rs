@@ -1,11 +1,19 @@
-//! Alerts: the pure rules (`rules`), the words of a message (`message`), the outbox's retry
-//! policy (`outbox`) and the two channels (`email`, `webhook`). The lifecycle's SQL is in
-//! `store::alerts`; evaluation and the delivery loop are in `app::alerting`.
+//! Alerts: what a detector reports. This module owns the signal vocabulary (rules,
+//! severities, the figures that tripped a rule) and, in [`rules`], the pure rule logic that
+//! turns measured inputs into signals. It does no IO and reads no clock; storing, deduplicating
+//! and delivering alerts belong to the store and the outbox: `message` words a message,
+//! `outbox` is the retry policy, `email` and `webhook` are the channels (the lifecycle's SQL is
+//! in `store::alerts`, evaluation and the delivery loop in `app::alerting`). A signal is a prompt to
+//! investigate, not a confirmed event, and it carries aggregates only, never a patient-level
+//! value.
 
 pub mod email;
 pub mod message;
 pub mod outbox;
+pub mod rules;
 pub mod webhook;
+
+use std::fmt;
 
 /// Why one delivery attempt did not succeed.
 #[derive(Debug, thiserror::Error)]
@@ -16,4 +24,215 @@ pub enum DeliveryError {
     /// The attempt failed (refused, timed out, an error status); retried.
     #[error("{0}")]
     Failed(String),
+}
+
+/// How urgently a signal needs a person. The mapping per rule is documented on each rule in
+/// [`rules`]; in short: `Critical` means the feed or the day's figures are likely wrong or
+/// missing now (held snapshot, no data for twice the expected interval, polls failing for
+/// twice the limit, a field gone almost entirely, new records at zero, a count statistic at
+/// twice its threshold); `Warning` is every other tripped rule; `Info` is for messages that
+/// need no action (for example a delivery test).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash)]
+pub enum Severity {
+    Info,
+    Warning,
+    Critical,
+}
+
+impl Severity {
+    /// Stable lowercase name, for config routing and storage.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Severity::Info => "info",
+            Severity::Warning => "warning",
+            Severity::Critical => "critical",
+        }
+    }
+
+    /// The severity named by [`Severity::as_str`].
+    pub fn parse(name: &str) -> Option<Severity> {
+        [Severity::Info, Severity::Warning, Severity::Critical].into_iter().find(|s| s.as_str() == name)
+    }
+}
+
+impl fmt::Display for Severity {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
+/// The rules a signal can come from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash)]
+pub enum Rule {
+    /// A field's missing share jumped in the records new or changed in the latest snapshot.
+    MissingnessJump,
+    /// The daily median reporting lag rose (EWMA, confirmed by Mann-Whitney).
+    LagJump,
+    /// The latest snapshot was held (truncated-feed guard).
+    HeldSnapshot,
+    /// Far fewer new records than usual in the latest snapshot.
+    VolumeDrop,
+    /// No applied snapshot within the source's expected interval.
+    StaleSource,
+    /// The source failed several polls in a row.
+    FailingPolls,
+    /// EARS C1 on daily counts by report date.
+    EarsC1,
+    /// EARS C2 on daily counts by report date.
+    EarsC2,
+    /// EARS C3 on daily counts by report date.
+    EarsC3,
+    /// Upper Poisson or negative-binomial CUSUM on daily counts by report date.
+    CountCusum,
+}
+
+impl Rule {
+    /// Every rule, in a fixed order.
+    pub const ALL: [Rule; 10] = [
+        Rule::MissingnessJump,
+        Rule::LagJump,
+        Rule::HeldSnapshot,
+        Rule::VolumeDrop,
+        Rule::StaleSource,
+        Rule::FailingPolls,
+        Rule::EarsC1,
+        Rule::EarsC2,
+        Rule::EarsC3,
+        Rule::CountCusum,
+    ];
+
+    /// Stable snake_case name, used in fingerprints, storage and messages.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Rule::MissingnessJump => "missingness_jump",
+            Rule::LagJump => "lag_jump",
+            Rule::HeldSnapshot => "held_snapshot",
+            Rule::VolumeDrop => "volume_drop",
+            Rule::StaleSource => "stale_source",
+            Rule::FailingPolls => "failing_polls",
+            Rule::EarsC1 => "ears_c1",
+            Rule::EarsC2 => "ears_c2",
+            Rule::EarsC3 => "ears_c3",
+            Rule::CountCusum => "count_cusum",
+        }
+    }
+
+    /// The rule named by [`Rule::as_str`].
+    pub fn parse(name: &str) -> Option<Rule> {
+        Rule::ALL.into_iter().find(|r| r.as_str() == name)
+    }
+}
+
+impl fmt::Display for Rule {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
+/// A named number: an aggregate such as a share, a median lag or a baseline mean.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Figure {
+    /// snake_case name, e.g. `baseline_share`.
+    pub name: &'static str,
+    pub value: f64,
+}
+
+impl Figure {
+    pub fn new(name: &'static str, value: f64) -> Figure {
+        Figure { name, value }
+    }
+}
+
+/// A tripped rule: what, where, how bad, and the aggregates that tripped it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Signal {
+    pub rule: Rule,
+    /// The source's configured name.
+    pub source: String,
+    /// The field or stratum (e.g. a jurisdiction); empty when the rule is about the whole
+    /// source.
+    pub subject: String,
+    pub severity: Severity,
+    /// What `observed` measures, snake_case (e.g. `missing_share`, `c1`, `hours_since_snapshot`).
+    pub measure: &'static str,
+    /// The measured value compared with the threshold.
+    pub observed: f64,
+    /// The value `observed` had to pass.
+    pub threshold: f64,
+    /// The baseline summary and any other aggregates behind the decision.
+    pub figures: Vec<Figure>,
+    /// One human-readable line with aggregates only.
+    pub summary: String,
+}
+
+impl Signal {
+    /// Stable identity of the condition: `rule|source|subject`. Two signals with the same
+    /// fingerprint are the same alert.
+    pub fn fingerprint(&self) -> String {
+        fingerprint(self.rule, &self.source, &self.subject)
+    }
+
+    /// The figure with this name, if present.
+    pub fn figure(&self, name: &str) -> Option<f64> {
+        self.figures.iter().find(|f| f.name == name).map(|f| f.value)
+    }
+}
+
+/// The fingerprint of a (rule, source, subject) triple, as [`Signal::fingerprint`] gives it; the
+/// store can compute it for conditions that are clear. `|` in names is escaped as `\|` so
+/// different triples never collide.
+pub fn fingerprint(rule: Rule, source: &str, subject: &str) -> String {
+    let escape = |text: &str| text.replace('\\', "\\\\").replace('|', "\\|");
+    format!("{}|{}|{}", rule.as_str(), escape(source), escape(subject))
+}
+
+/// What one rule concluded for one subject.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Outcome {
+    /// The rule tripped.
+    Signal(Signal),
+    /// The rule was evaluated on enough data and did not trip (counts towards resolving an
+    /// open alert).
+    Clear,
+    /// Too little data to evaluate; the reason is short and has no patient-level value. Neither
+    /// raises nor resolves an alert.
+    NotEnoughData(String),
+}
+
+impl Outcome {
+    /// The signal, if the rule tripped.
+    pub fn signal(&self) -> Option<&Signal> {
+        match self {
+            Outcome::Signal(signal) => Some(signal),
+            _ => None,
+        }
+    }
+
+    pub fn is_clear(&self) -> bool {
+        matches!(self, Outcome::Clear)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn names_round_trip() {
+        for rule in Rule::ALL {
+            assert_eq!(Rule::parse(rule.as_str()), Some(rule));
+        }
+        for severity in [Severity::Info, Severity::Warning, Severity::Critical] {
+            assert_eq!(Severity::parse(&severity.to_string()), Some(severity));
+        }
+        assert_eq!(Rule::parse("nope"), None);
+        assert!(Severity::Critical > Severity::Warning);
+    }
+
+    #[test]
+    fn fingerprints_are_stable_and_do_not_collide() {
+        assert_eq!(fingerprint(Rule::LagJump, "labs", "North"), "lag_jump|labs|North");
+        assert_eq!(fingerprint(Rule::StaleSource, "labs", ""), "stale_source|labs|");
+        assert_ne!(fingerprint(Rule::LagJump, "a|b", "c"), fingerprint(Rule::LagJump, "a", "b|c"));
+    }
 }

@@ -3,8 +3,11 @@
 //! truncation, and group comparisons. No IO, no clock, no database: data and parameters in,
 //! values and problems out. Randomness takes an explicit seed so results are reproducible.
 
+pub mod aberration;
 pub mod backtest;
+pub mod change;
 pub mod delay;
+pub mod detector_sim;
 pub mod mannwhitney;
 pub mod nowcast;
 pub mod quantile;

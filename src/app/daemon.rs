@@ -57,6 +57,8 @@ struct Shared {
     /// Set on shutdown so an ingest in progress rolls back instead of finishing.
     cancel_ingest: Arc<AtomicBool>,
     events: Option<mpsc::UnboundedSender<PollEvent>>,
+    /// When this daemon started watching (the staleness rule's origin without snapshots).
+    started: DateTime<Utc>,
 }
 
 /// Runs the daemon until `shutdown` fires. `ops` is the listener for `/healthz` and
@@ -79,6 +81,7 @@ pub async fn run(
         shutdown: shutdown.clone(),
         cancel_ingest: Arc::new(AtomicBool::new(false)),
         events: hooks.events,
+        started: Utc::now(),
     });
     let tracker = TaskTracker::new();
     if let Some(listener) = ops {
@@ -96,6 +99,7 @@ pub async fn run(
         tracker.spawn(source_loop(shared.clone(), source.clone(), source_id, nudge));
     }
     tracker.spawn(heartbeat(shared.clone()));
+    tracker.spawn(deliver_outbox(shared.clone()));
     running.store(true, Ordering::SeqCst);
     tracing::info!(sources = config.sources.len(), store = %config.store.path.display(), "daemon started");
     shutdown.cancelled().await;
@@ -128,6 +132,22 @@ async fn register_sources(writer: &Writer, config: &Arc<Config>) -> Result<Vec<i
             Ok(ids)
         })
         .await?
+}
+
+/// Delivers due outbox rows every tick until shutdown. A row is marked only after its
+/// channel answered, so a crash between the two re-sends it (at-least-once; the event id is
+/// the receiver's idempotency key).
+async fn deliver_outbox(shared: Arc<Shared>) {
+    let client = super::alerting::delivery_client(&shared.config);
+    loop {
+        if let Err(err) = super::alerting::deliver_due(&shared.writer, &shared.config, &client).await {
+            tracing::warn!(error = %format!("{err:#}"), "outbox not read");
+        }
+        tokio::select! {
+            () = tokio::time::sleep(super::alerting::DELIVERY_TICK) => {}
+            () = shared.shutdown.cancelled() => return,
+        }
+    }
 }
 
 async fn heartbeat(shared: Arc<Shared>) {
@@ -247,6 +267,18 @@ async fn finish_poll(
     let record = PollRecord { at: Utc::now(), error: error.clone(), snapshot_id, validators: None };
     if let Err(err) = shared.writer.run(move |store| store.record_poll(source_id, &record)).await {
         tracing::warn!(source = %source.name, error = %err, "poll health not recorded");
+    }
+    let (config, job_source, started_at) = (shared.config.clone(), source.clone(), shared.started);
+    let checked = shared
+        .writer
+        .run(move |store| super::alerting::after_poll(store, &config, &job_source, started_at, Utc::now()))
+        .await;
+    match checked {
+        Ok(Ok(_)) => {}
+        Ok(Err(err)) => {
+            tracing::warn!(source = %source.name, error = %format!("{err:#}"), "staleness rules not evaluated")
+        }
+        Err(err) => tracing::warn!(source = %source.name, error = %err, "staleness rules not evaluated"),
     }
     if let Some(events) = &shared.events {
         let snapshots = outcomes.iter().map(|o| (o.snapshot_id, o.status)).collect();

@@ -54,6 +54,8 @@ pub struct DemoReport {
     pub nowcast_method: String,
     /// Backtest summary lines (county feed, by onset).
     pub backtest: String,
+    /// Alerts the rules raised during the run: (day of the snapshot that opened it, line).
+    pub alerts: Vec<(String, String)>,
 }
 
 #[derive(Debug, Clone)]
@@ -200,7 +202,9 @@ fn summarise(config: &Config, scenario: &Scenario, dir: PathBuf) -> Result<DemoR
         }
     }
     let (nowcast, nowcast_method, backtest) = nowcast_against_truth(config, scenario, county_id, last)?;
+    let alerts = demo_alerts(&reader)?;
     Ok(DemoReport {
+        alerts,
         dir,
         config: config.file.clone(),
         true_cases: scenario.cases.len(),
@@ -211,6 +215,37 @@ fn summarise(config: &Config, scenario: &Scenario, dir: PathBuf) -> Result<DemoR
         nowcast_method,
         backtest,
     })
+}
+
+/// Every alert raised in the run, by the day of the snapshot that opened it.
+fn demo_alerts(reader: &Reader) -> Result<Vec<(String, String)>> {
+    let table = reader.query(
+        "SELECT coalesce(substr(n.as_of, 1, 10), substr(a.opened_at, 1, 10)), a.rule, a.source, a.subject,
+                a.severity, a.state, a.summary
+         FROM alert a LEFT JOIN snapshot n ON n.snapshot_id = a.snapshot_id ORDER BY 1, a.alert_id",
+        10_000,
+    )?;
+    let text = |c: &crate::table::Cell| match c {
+        crate::table::Cell::Text(t) => t.clone(),
+        _ => String::new(),
+    };
+    Ok(table
+        .rows
+        .iter()
+        .map(|r| {
+            let subject = if text(&r[3]).is_empty() { String::new() } else { format!(" [{}]", text(&r[3])) };
+            let line = format!(
+                "{} {}{} {} ({}): {}",
+                text(&r[1]),
+                text(&r[2]),
+                subject,
+                text(&r[4]),
+                text(&r[5]),
+                text(&r[6])
+            );
+            (text(&r[0]), line)
+        })
+        .collect())
 }
 
 type NowcastSummary = (Vec<(NowcastRow, u32, u32)>, String, String);
@@ -324,6 +359,18 @@ impl DemoReport {
             self.nowcast.len()
         );
         let _ = writeln!(out, "\nBacktest of the county feed by onset:\n{}", self.backtest);
+        let _ = writeln!(
+            out,
+            "\nAlerts raised ({}); the demo config has no alert channel, so they are stored, not sent:",
+            self.alerts.len()
+        );
+        for (day, line) in &self.alerts {
+            let _ = writeln!(out, "  {day}  {line}");
+        }
+        let _ = writeln!(
+            out,
+            "  No problem is injected into this scenario yet, so each alert above fired without an injected cause.\n  Alerts are signals for investigation, not confirmed events."
+        );
         let _ = writeln!(out, "Store and files: {}", self.dir.display());
         let _ = writeln!(
             out,

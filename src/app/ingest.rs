@@ -116,6 +116,7 @@ pub fn ingest_archived(
     if outcome.status == SnapshotStatus::Applied {
         analyse_applied(store, config, source, outcome.snapshot_id);
     }
+    evaluate_alerts(store, config, source, &outcome);
     Ok(outcome)
 }
 
@@ -134,6 +135,21 @@ fn analyse_applied(store: &mut Store, config: &Config, source: &SourceConfig, sn
         }
     }
     measure_applied(store, config, source, snapshot_id);
+}
+
+/// Runs the snapshot alert rules after an applied or held snapshot; logged, not returned.
+fn evaluate_alerts(store: &mut Store, config: &Config, source: &SourceConfig, outcome: &IngestOutcome) {
+    if !matches!(outcome.status, SnapshotStatus::Applied | SnapshotStatus::Held) {
+        return;
+    }
+    match super::alerting::after_snapshot(store, config, source, outcome, Utc::now()) {
+        Ok(done) => {
+            tracing::debug!(source = %source.name, snapshot_id = outcome.snapshot_id, ?done, "alert rules evaluated")
+        }
+        Err(err) => tracing::warn!(
+            source = %source.name, snapshot_id = outcome.snapshot_id, error = %format!("{err:#}"), "alert rules not evaluated"
+        ),
+    }
 }
 
 /// Stores the quality measures of an applied snapshot; logged, not returned, like the
@@ -169,13 +185,15 @@ pub fn release(store: &mut Store, config: &Config, snapshot_id: i64) -> Result<I
     let counts = ingest.apply(&plan, summary.rows_total, Some("released by operator"), Some(&spec))?;
     let source = source.clone();
     analyse_applied(store, config, &source, snapshot_id);
-    Ok(IngestOutcome {
+    let outcome = IngestOutcome {
         snapshot_id,
         status: SnapshotStatus::Applied,
         counts,
         field_problems: summary.field_problems,
         note: Some("released by operator".into()),
-    })
+    };
+    evaluate_alerts(store, config, &source, &outcome);
+    Ok(outcome)
 }
 
 fn stage(

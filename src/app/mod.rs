@@ -2,6 +2,7 @@
 //! `store`, the writer thread and the daemon's tasks. The only library module that uses
 //! `anyhow`; nothing else depends on it.
 
+pub mod alerting;
 pub mod analyse;
 pub mod commands;
 pub mod daemon;

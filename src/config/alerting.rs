@@ -2,7 +2,6 @@
 //! as written (unknown keys refused) and their validated forms. Channel secrets stay in
 //! environment variables; only their names are kept here.
 
-use std::collections::BTreeMap;
 use std::time::Duration;
 
 use serde::Deserialize;
@@ -10,32 +9,7 @@ use serde::Deserialize;
 use super::parse_duration;
 use crate::model::Field;
 
-/// How urgent an alert is; channels take alerts at or above their `min_severity`.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
-pub enum Severity {
-    Info,
-    Warning,
-    Critical,
-}
-
-impl Severity {
-    pub fn name(self) -> &'static str {
-        match self {
-            Severity::Info => "info",
-            Severity::Warning => "warning",
-            Severity::Critical => "critical",
-        }
-    }
-
-    pub fn parse(text: &str) -> Option<Severity> {
-        match text {
-            "info" => Some(Severity::Info),
-            "warning" => Some(Severity::Warning),
-            "critical" => Some(Severity::Critical),
-            _ => None,
-        }
-    }
-}
+pub use crate::alert::Severity;
 
 /// Default re-send interval of an alert nobody has acknowledged: a working shift.
 pub const DEFAULT_RESEND_AFTER: Duration = Duration::from_secs(6 * 3600);
@@ -79,8 +53,8 @@ pub struct AlertSettings {
     pub retry_cap: Duration,
     /// Consecutive failed polls of a source before the poll-failure rule fires.
     pub failed_polls: u32,
-    /// Per rule name: parameter overrides as written, checked by `alert::rules`.
-    pub rules: BTreeMap<String, toml::Table>,
+    /// Typed rule parameters (defaults overridden by `[alert.rules.*]`).
+    pub rules: super::rule_params::RuleParams,
 }
 
 impl Default for AlertSettings {
@@ -92,7 +66,7 @@ impl Default for AlertSettings {
             retry_base: DEFAULT_RETRY_BASE,
             retry_cap: DEFAULT_RETRY_CAP,
             failed_polls: 3,
-            rules: BTreeMap::new(),
+            rules: super::rule_params::RuleParams::default(),
         }
     }
 }

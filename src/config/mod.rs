@@ -7,6 +7,7 @@
 pub mod alerting;
 pub mod analysis;
 mod raw;
+pub mod rule_params;
 mod source;
 
 use std::fmt::Write as _;
@@ -150,7 +151,7 @@ impl Config {
                 email.to.join(","),
                 env_state(email.username_env.as_deref()),
                 env_state(email.password_env.as_deref()),
-                email.min_severity.name(),
+                email.min_severity.as_str(),
                 email.timeout.as_millis(),
             );
         }
@@ -160,7 +161,7 @@ impl Config {
                 "webhook: {} secret={} min_severity={} timeout={}ms",
                 redact_url(&webhook.url),
                 env_state(webhook.secret_env.as_deref()),
-                webhook.min_severity.name(),
+                webhook.min_severity.as_str(),
                 webhook.timeout.as_millis()
             );
         }
@@ -257,7 +258,7 @@ fn build_alert_settings(raw: &raw::RawAlert, problems: &mut Vec<String>) -> Aler
         retry_base: duration_or(raw.retry_base.as_deref(), "alert.retry_base", d.retry_base, problems),
         retry_cap: duration_or(raw.retry_cap.as_deref(), "alert.retry_cap", d.retry_cap, problems),
         failed_polls: raw.failed_polls.unwrap_or(d.failed_polls).max(1),
-        rules: raw.rules.clone(),
+        rules: rule_params::build(&raw.rules, problems),
     };
     if settings.retry_base.is_zero() {
         problems.push("alert.retry_base: must be more than zero".into());
@@ -277,10 +278,7 @@ impl Config {
             a.retry_cap.as_millis(),
             a.failed_polls
         );
-        for (rule, table) in &a.rules {
-            let keys: Vec<String> = table.iter().map(|(k, v)| format!("{k}={v}")).collect();
-            let _ = writeln!(out, "alert.rules.{rule}: {}", keys.join(" "));
-        }
+        let _ = writeln!(out, "alert.rules: {:?}", a.rules);
         let lag: Vec<&str> = self.quality.lag_from.iter().map(|f| f.name()).collect();
         let _ = writeln!(out, "quality: lag_from={}", lag.join(","));
         if let Some(url) = &self.public_url {

@@ -27,6 +27,7 @@ pub struct Finding {
     pub summary: String,
     /// JSON object of the figures that tripped the rule (and its baseline).
     pub figures: String,
+    /// The snapshot evaluated; an alert keeps the one that opened it.
     pub snapshot_id: Option<i64>,
 }
 
@@ -117,6 +118,9 @@ pub struct OutboxItem {
     pub created_at: DateTime<Utc>,
 }
 
+/// A dead letter: (outbox id, event id, channel, attempts, last error, dead at).
+pub type DeadLetter = (i64, i64, String, i64, Option<String>, String);
+
 /// A live alert as the evaluation needs it.
 struct Live {
     alert_id: i64,
@@ -125,11 +129,12 @@ struct Live {
 }
 
 impl Store {
-    /// Applies one evaluation pass: `scope` lists the (source, rule) pairs evaluated; a live
-    /// alert of such a pair without a finding this time counts one clear evaluation.
+    /// Applies one evaluation pass: `findings` tripped; `clear` lists the fingerprints that
+    /// were evaluated on enough data and did not trip (each counts one clear evaluation of a
+    /// live alert). A rule without enough data appears in neither and changes nothing.
     pub fn apply_findings(
         &mut self,
-        scope: &[(String, String)],
+        clear: &[String],
         findings: &[Finding],
         life: &Lifecycle,
         delivery: &Delivery<'_>,
@@ -143,8 +148,8 @@ impl Store {
             }
             raise(&tx, finding, life, delivery, &mut outcome)?;
         }
-        for (source, rule) in scope {
-            clear_absent(&tx, source, rule, &seen, life, delivery, &mut outcome)?;
+        for fingerprint in clear.iter().filter(|f| !seen.contains(*f)) {
+            clear_one(&tx, fingerprint, life, delivery, &mut outcome)?;
         }
         tx.commit()?;
         Ok(outcome)
@@ -301,9 +306,9 @@ fn raise(
     };
     tx.execute(
         "UPDATE alert SET last_seen_at = ?2, times_seen = times_seen + 1, clear_count = 0, summary = ?3,
-             figures = ?4, severity = ?5, snapshot_id = coalesce(?6, snapshot_id)
+             figures = ?4, severity = ?5
          WHERE alert_id = ?1",
-        params![live.alert_id, now, f.summary, f.figures, f.severity, f.snapshot_id],
+        params![live.alert_id, now, f.summary, f.figures, f.severity],
     )?;
     outcome.updated += 1;
     if live.state != "acknowledged" && resend_due(live.last_sent_at.as_deref(), life) {
@@ -321,47 +326,40 @@ fn resend_due(last_sent_at: Option<&str>, life: &Lifecycle) -> bool {
     since >= life.resend_after
 }
 
-/// Counts a clear evaluation for the live alerts of (source, rule) not found this time,
-/// and resolves those clear for `resolve_after` evaluations in a row.
-fn clear_absent(
+/// Counts a clear evaluation of the live alert of `fingerprint`, if any, and resolves it
+/// once it has been clear for `resolve_after` evaluations in a row.
+fn clear_one(
     tx: &Transaction<'_>,
-    source: &str,
-    rule: &str,
-    seen: &HashSet<String>,
+    fingerprint: &str,
     life: &Lifecycle,
     delivery: &Delivery<'_>,
     outcome: &mut EvalOutcome,
 ) -> Result<(), StoreError> {
-    let live: Vec<(i64, String, i64, i64)> = {
-        let mut stmt = tx.prepare(
-            "SELECT alert_id, fingerprint, clear_count, sent_count FROM alert
-             WHERE source = ?1 AND rule = ?2 AND state <> 'resolved'",
-        )?;
-        let rows = stmt.query_map([source, rule], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?)))?;
-        rows.collect::<Result<_, _>>()?
-    };
+    let live: Option<(i64, i64, i64)> = tx
+        .query_row(
+            "SELECT alert_id, clear_count, sent_count FROM alert WHERE fingerprint = ?1 AND state <> 'resolved'",
+            [fingerprint],
+            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
+        )
+        .optional()?;
+    let Some((alert_id, clear_count, sent_count)) = live else { return Ok(()) };
+    if clear_count + 1 < life.resolve_after as i64 {
+        tx.execute("UPDATE alert SET clear_count = clear_count + 1 WHERE alert_id = ?1", [alert_id])?;
+        return Ok(());
+    }
     let now = time_text(life.now);
-    for (alert_id, fingerprint, clear_count, sent_count) in live {
-        if seen.contains(&fingerprint) {
-            continue;
-        }
-        if clear_count + 1 < life.resolve_after as i64 {
-            tx.execute("UPDATE alert SET clear_count = clear_count + 1 WHERE alert_id = ?1", [alert_id])?;
-            continue;
-        }
+    tx.execute(
+        "UPDATE alert SET clear_count = clear_count + 1, state = 'resolved', resolved_at = ?2 WHERE alert_id = ?1",
+        params![alert_id, now],
+    )?;
+    outcome.resolved += 1;
+    if sent_count > 0 {
+        notify(tx, alert_id, "resolved", life, delivery, outcome)?;
+    } else {
         tx.execute(
-            "UPDATE alert SET clear_count = clear_count + 1, state = 'resolved', resolved_at = ?2 WHERE alert_id = ?1",
+            "INSERT INTO alert_event (alert_id, kind, at) VALUES (?1, 'resolved', ?2)",
             params![alert_id, now],
         )?;
-        outcome.resolved += 1;
-        if sent_count > 0 {
-            notify(tx, alert_id, "resolved", life, delivery, outcome)?;
-        } else {
-            tx.execute(
-                "INSERT INTO alert_event (alert_id, kind, at) VALUES (?1, 'resolved', ?2)",
-                params![alert_id, now],
-            )?;
-        }
     }
     Ok(())
 }
@@ -431,6 +429,17 @@ fn enqueue(tx: &Transaction<'_>, event_id: i64, channel: &str, at: &str) -> Resu
 }
 
 impl Reader {
+    /// When the source's latest applied snapshot was received (the staleness rule's clock:
+    /// arrival, not the extract's own as-of time).
+    pub fn last_received(&self, source_id: i64) -> Result<Option<DateTime<Utc>>, StoreError> {
+        let text: Option<String> = self.conn.query_row(
+            "SELECT max(received_at) FROM snapshot WHERE source_id = ?1 AND status = 'applied'",
+            [source_id],
+            |r| r.get(0),
+        )?;
+        Ok(text.as_deref().and_then(super::parse_time))
+    }
+
     /// Alerts, live ones first, newest first, with their delivery counts.
     pub fn alerts(&self, include_resolved: bool) -> Result<Vec<AlertRow>, StoreError> {
         let mut stmt = self.conn.prepare(
@@ -475,7 +484,7 @@ impl Reader {
 
     /// Dead letters and the test messages' outbox rows: (outbox id, event id, channel,
     /// attempts, last error, dead at), newest first.
-    pub fn dead_letters(&self) -> Result<Vec<(i64, i64, String, i64, Option<String>, String)>, StoreError> {
+    pub fn dead_letters(&self) -> Result<Vec<DeadLetter>, StoreError> {
         let mut stmt = self.conn.prepare(
             "SELECT outbox_id, event_id, channel, attempts, last_error, dead_at FROM outbox
              WHERE dead_at IS NOT NULL ORDER BY outbox_id DESC",

@@ -77,6 +77,9 @@ struct Counts {
 
 type CellKey = (&'static str, String, Field);
 
+/// One bin of a stored lag histogram: (as-of day, stratum kind, stratum, lag days, count).
+pub type LagBin = (String, String, String, f64, u64);
+
 /// Per (stratum kind, stratum): new records, and the lag histogram of those with a date.
 type LagHistograms = BTreeMap<(String, String), (i64, Vec<(f64, u64)>)>;
 
@@ -92,6 +95,7 @@ impl Store {
         let tx = self.conn.transaction()?;
         tx.execute("DELETE FROM quality WHERE snapshot_id = ?1", [snapshot_id])?;
         tx.execute("DELETE FROM quality_lag WHERE snapshot_id = ?1", [snapshot_id])?;
+        tx.execute("DELETE FROM quality_lag_hist WHERE snapshot_id = ?1", [snapshot_id])?;
         let cells = field_counts(&tx, source_id, snapshot_id, &spec.fields)?;
         let written = insert_quality(&tx, source_id, snapshot_id, &cells)?;
         if !spec.lag_from.is_empty() {
@@ -241,7 +245,14 @@ fn write_lag(
              median_days, p90_days)
          VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9)",
     )?;
+    let mut insert_bin = tx.prepare(
+        "INSERT INTO quality_lag_hist (snapshot_id, source_id, stratum_kind, stratum, lag_days, n)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+    )?;
     for ((kind, stratum), (new_records, hist)) in &histograms {
+        for (lag, count) in hist {
+            insert_bin.execute(params![snapshot_id, source_id, kind, stratum, *lag as i64, *count as i64])?;
+        }
         let n: u64 = hist.iter().map(|(_, c)| c).sum();
         insert.execute(params![
             snapshot_id,
@@ -342,6 +353,48 @@ impl Reader {
                 rows_removed: r.get(7)?,
                 rows_rejected: r.get(8)?,
             })
+        })?;
+        Ok(rows.collect::<Result<_, _>>()?)
+    }
+}
+
+impl Reader {
+    /// Lag histograms of the snapshots of a source whose as-of day is on or after `from_day`
+    /// (ISO date) up to snapshot `upto`: (as-of day, stratum kind, stratum, lag days, count).
+    pub fn lag_histograms(
+        &self,
+        source_id: i64,
+        upto: i64,
+        from_day: &str,
+    ) -> Result<Vec<LagBin>, StoreError> {
+        let mut stmt = self.conn.prepare(
+            "SELECT substr(n.as_of, 1, 10), h.stratum_kind, h.stratum, h.lag_days, h.n
+             FROM quality_lag_hist h JOIN snapshot n ON n.snapshot_id = h.snapshot_id
+             WHERE h.source_id = ?1 AND h.snapshot_id <= ?2 AND substr(n.as_of, 1, 10) >= ?3
+             ORDER BY 1",
+        )?;
+        let rows = stmt.query_map(params![source_id, upto, from_day], |r| {
+            Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get::<_, i64>(3)? as f64, r.get::<_, i64>(4)? as u64))
+        })?;
+        Ok(rows.collect::<Result<_, _>>()?)
+    }
+
+    /// Daily counts by report date as known at snapshot `upto`, from the reporting triangle:
+    /// (stratum kind, stratum, report date, count) for dates on or after `from_day`.
+    pub fn report_counts(
+        &self,
+        source_id: i64,
+        upto: i64,
+        from_day: &str,
+    ) -> Result<Vec<(String, String, String, i64)>, StoreError> {
+        let mut stmt = self.conn.prepare(
+            "SELECT stratum_kind, stratum, ref_date, sum(delta) FROM triangle
+             WHERE source_id = ?1 AND ref_field = 'report_date' AND stratum_kind IN ('all', 'jurisdiction')
+               AND snapshot_id <= ?2 AND ref_date >= ?3
+             GROUP BY 1, 2, 3 ORDER BY 1, 2, 3",
+        )?;
+        let rows = stmt.query_map(params![source_id, upto, from_day], |r| {
+            Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?))
         })?;
         Ok(rows.collect::<Result<_, _>>()?)
     }

@@ -1,6 +1,7 @@
 //! Integration tests: one binary, one module per area. Real SQLite files in temporary
 //! folders, the real `tidemark` binary where a process matters.
 
+mod alerts;
 mod backup;
 mod bad_corpus;
 mod cli;

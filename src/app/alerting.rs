@@ -1,0 +1,445 @@
+//! Alert evaluation and delivery glue. After each applied or held snapshot, and after each
+//! poll in the daemon, the inputs of the pure rules (`alert::rules`) are read from the store,
+//! the rules run, and their findings go to `Store::apply_findings`, which opens, updates,
+//! re-sends and resolves alerts and writes their outbox rows in one transaction. The
+//! delivery loop takes due outbox rows, sends them by email or webhook, and records the
+//! result (retry with capped backoff, or a dead letter past the maximum age). Also the
+//! `tidemark alerts` commands.
+
+use std::collections::BTreeMap;
+use std::sync::Arc;
+use std::time::Duration;
+
+use anyhow::{Context, Result};
+use chrono::{DateTime, Days, NaiveDate, Utc};
+
+use super::ingest::IngestOutcome;
+use super::writer::Writer;
+use crate::alert::outbox::{RetryPolicy, next_try};
+use crate::alert::rules::{
+    self, CountInput, HeldInput, LagInput, MissingCount, MissingnessInput, StalenessInput, VolumeInput,
+};
+use crate::alert::{self, DeliveryError, Outcome, Rule, Severity, Signal, email, message, webhook};
+use crate::config::{Config, SourceConfig};
+use crate::model::SnapshotStatus;
+use crate::store::alerts::{Delivery, EvalOutcome, Finding, Lifecycle, MessageFacts, OutboxItem};
+use crate::store::{Reader, Store};
+use crate::table::{OutputFormat, Table};
+
+/// How often the daemon's delivery task looks for due outbox rows.
+pub const DELIVERY_TICK: Duration = Duration::from_secs(1);
+/// Outbox rows taken per look; the rest wait for the next tick.
+const DELIVERY_BATCH: usize = 20;
+
+/// What the rules concluded in one pass: signals, and fingerprints found clear.
+#[derive(Debug, Default)]
+struct Pass {
+    findings: Vec<Finding>,
+    clear: Vec<String>,
+}
+
+impl Pass {
+    fn add(&mut self, rule: Rule, source: &str, subject: &str, outcome: Outcome, snapshot_id: Option<i64>) {
+        match outcome {
+            Outcome::Signal(signal) => self.findings.push(finding(&signal, snapshot_id)),
+            Outcome::Clear => self.clear.push(alert::fingerprint(rule, source, subject)),
+            Outcome::NotEnoughData(_) => {}
+        }
+    }
+}
+
+fn finding(signal: &Signal, snapshot_id: Option<i64>) -> Finding {
+    let mut figures = serde_json::Map::new();
+    figures.insert(signal.measure.to_string(), serde_json::json!(signal.observed));
+    figures.insert("threshold".into(), serde_json::json!(signal.threshold));
+    for figure in &signal.figures {
+        figures.insert(figure.name.to_string(), serde_json::json!(figure.value));
+    }
+    Finding {
+        fingerprint: signal.fingerprint(),
+        rule: signal.rule.as_str().to_string(),
+        source: signal.source.clone(),
+        subject: signal.subject.clone(),
+        severity: signal.severity.as_str().to_string(),
+        summary: signal.summary.clone(),
+        figures: serde_json::Value::Object(figures).to_string(),
+        snapshot_id,
+    }
+}
+
+/// The dashboard's base address for links: `serve.public_url`, else the bind address.
+pub fn dashboard_base(config: &Config) -> String {
+    config.public_url.clone().unwrap_or_else(|| format!("http://{}", config.bind))
+}
+
+/// The channels configured to take an alert of `severity`.
+pub fn channels_for(config: &Config, severity: Severity) -> Vec<&'static str> {
+    let mut channels = Vec::new();
+    if config.email.as_ref().is_some_and(|e| severity >= e.min_severity) {
+        channels.push("email");
+    }
+    if config.webhook.as_ref().is_some_and(|w| severity >= w.min_severity) {
+        channels.push("webhook");
+    }
+    channels
+}
+
+/// Writes a pass through the lifecycle.
+fn apply(store: &mut Store, config: &Config, pass: &Pass, now: DateTime<Utc>) -> Result<EvalOutcome> {
+    let life = Lifecycle {
+        now,
+        resend_after: config.alerting.resend_after,
+        resolve_after: config.alerting.resolve_after,
+    };
+    let base = dashboard_base(config);
+    let route = |severity: &str| channels_for(config, Severity::parse(severity).unwrap_or(Severity::Warning));
+    let payload = |facts: &MessageFacts| message::payload(facts, &base);
+    let delivery = Delivery { route: &route, payload: &payload };
+    Ok(store.apply_findings(&pass.clear, &pass.findings, &life, &delivery)?)
+}
+
+/// Evaluates the snapshot rules after an ingest that applied or held a snapshot. Logged,
+/// not returned, by the caller: the snapshot is safe whatever happens here.
+pub fn after_snapshot(
+    store: &mut Store,
+    config: &Config,
+    source: &SourceConfig,
+    outcome: &IngestOutcome,
+    now: DateTime<Utc>,
+) -> Result<EvalOutcome> {
+    let reader = Reader::open(&config.store.path)?;
+    let source_id = reader.source_id(&source.name)?.context("source not registered")?;
+    let params = &config.alerting.rules;
+    let mut pass = Pass::default();
+    let snapshot_id = outcome.snapshot_id;
+    let volumes = reader.volumes(source_id, snapshot_id)?;
+    let applied: Vec<_> =
+        volumes.iter().filter(|v| v.status == "applied" && v.snapshot_id < snapshot_id).collect();
+    if params.enabled("held_snapshot") {
+        let input = HeldInput {
+            source: source.name.clone(),
+            held: outcome.status == SnapshotStatus::Held,
+            rows: outcome.counts.accepted,
+            previous_rows: applied.last().map(|v| v.rows_accepted as u64),
+        };
+        pass.add(Rule::HeldSnapshot, &source.name, "", rules::held_snapshot(&input), Some(snapshot_id));
+    }
+    if outcome.status == SnapshotStatus::Applied {
+        if params.enabled("volume_drop") {
+            let input = VolumeInput {
+                source: source.name.clone(),
+                subject: String::new(),
+                latest_new: outcome.counts.new,
+                baseline_new: applied.iter().map(|v| v.rows_new as u64).collect(),
+            };
+            pass.add(
+                Rule::VolumeDrop,
+                &source.name,
+                "",
+                rules::volume_drop(&input, &params.volume),
+                Some(snapshot_id),
+            );
+        }
+        if params.enabled("missingness_jump") {
+            missingness(&reader, source_id, snapshot_id, &source.name, config, &mut pass)?;
+        }
+        let day = super::analyse::snapshot_day(&reader, snapshot_id)?;
+        if params.enabled("lag_jump") {
+            lags(&reader, source_id, snapshot_id, &source.name, day, config, &mut pass)?;
+        }
+        if params.enabled("count") {
+            counts(&reader, source_id, snapshot_id, &source.name, day, config, &mut pass)?;
+        }
+    }
+    apply(store, config, &pass, now)
+}
+
+fn missingness(
+    reader: &Reader,
+    source_id: i64,
+    snapshot_id: i64,
+    source: &str,
+    config: &Config,
+    pass: &mut Pass,
+) -> Result<()> {
+    let rows = reader.quality_history(source_id, snapshot_id, "new_changed", "all")?;
+    let mut by_field: BTreeMap<String, Vec<(i64, MissingCount)>> = BTreeMap::new();
+    for r in rows {
+        let count = MissingCount { missing: r.missing as u64, records: r.records as u64 };
+        by_field.entry(r.field).or_default().push((r.snapshot_id, count));
+    }
+    for (field, mut series) in by_field {
+        let Some((last_id, latest)) = series.pop() else { continue };
+        if last_id != snapshot_id {
+            continue;
+        }
+        let input = MissingnessInput {
+            source: source.to_string(),
+            subject: field.clone(),
+            latest,
+            baseline: series.into_iter().map(|(_, c)| c).collect(),
+        };
+        let outcome = rules::missingness_jump(&input, &config.alerting.rules.missingness);
+        pass.add(Rule::MissingnessJump, source, &field, outcome, Some(snapshot_id));
+    }
+    Ok(())
+}
+
+/// The days `first..=last`, as ISO dates.
+fn days(first: NaiveDate, last: NaiveDate) -> Vec<String> {
+    first.iter_days().take_while(|d| *d <= last).map(|d| d.to_string()).collect()
+}
+
+fn lags(
+    reader: &Reader,
+    source_id: i64,
+    snapshot_id: i64,
+    source: &str,
+    day: NaiveDate,
+    config: &Config,
+    pass: &mut Pass,
+) -> Result<()> {
+    let p = &config.alerting.rules.lag;
+    let span = (p.baseline_days + p.recent_days) as u64;
+    let first = day.checked_sub_days(Days::new(span.saturating_sub(1))).unwrap_or(day);
+    let all_days = days(first, day);
+    let mut series: BTreeMap<String, BTreeMap<String, Vec<f64>>> = BTreeMap::new();
+    for (as_of_day, kind, stratum, lag, n) in
+        reader.lag_histograms(source_id, snapshot_id, &first.to_string())?
+    {
+        let subject = if kind == "all" { String::new() } else { stratum };
+        let lags = series.entry(subject).or_default().entry(as_of_day).or_default();
+        lags.extend(std::iter::repeat_n(lag, n as usize));
+    }
+    for (subject, by_day) in series {
+        let daily_lags = all_days.iter().map(|d| by_day.get(d).cloned().unwrap_or_default()).collect();
+        let input = LagInput { source: source.to_string(), subject: subject.clone(), daily_lags };
+        pass.add(Rule::LagJump, source, &subject, rules::lag_jump(&input, p), Some(snapshot_id));
+    }
+    Ok(())
+}
+
+fn counts(
+    reader: &Reader,
+    source_id: i64,
+    snapshot_id: i64,
+    source: &str,
+    day: NaiveDate,
+    config: &Config,
+    pass: &mut Pass,
+) -> Result<()> {
+    let p = &config.alerting.rules.count;
+    let span = p.cusum.map(|c| c.baseline_days + c.guard_days).unwrap_or(0).max(14) as u64 + 1;
+    let first = day.checked_sub_days(Days::new(span)).unwrap_or(day);
+    let all_days = days(first, day);
+    let mut series: BTreeMap<String, BTreeMap<String, f64>> = BTreeMap::new();
+    for (kind, stratum, date, n) in reader.report_counts(source_id, snapshot_id, &first.to_string())? {
+        let subject = if kind == "all" { String::new() } else { stratum };
+        *series.entry(subject).or_default().entry(date).or_default() += n as f64;
+    }
+    for (subject, by_day) in series {
+        let daily_counts = all_days.iter().map(|d| by_day.get(d).copied().unwrap_or(0.0)).collect();
+        let input = CountInput { source: source.to_string(), subject: subject.clone(), daily_counts };
+        for (rule, outcome) in rules::count_aberration(&input, p) {
+            pass.add(rule, source, &subject, outcome, Some(snapshot_id));
+        }
+    }
+    Ok(())
+}
+
+/// Evaluates the staleness and failing-poll rules of one source (after a poll).
+pub fn after_poll(
+    store: &mut Store,
+    config: &Config,
+    source: &SourceConfig,
+    watching_since: DateTime<Utc>,
+    now: DateTime<Utc>,
+) -> Result<EvalOutcome> {
+    let reader = Reader::open(&config.store.path)?;
+    let Some(source_id) = reader.source_id(&source.name)? else { return Ok(EvalOutcome::default()) };
+    let failures = reader
+        .source_statuses()?
+        .into_iter()
+        .find(|s| s.name == source.name)
+        .map(|s| s.consecutive_failures.max(0) as u32)
+        .unwrap_or(0);
+    let last_applied = reader.last_received(source_id)?;
+    let input = StalenessInput {
+        source: source.name.clone(),
+        now,
+        last_applied,
+        watching_since,
+        expect_every: source.expect_every,
+        consecutive_failures: failures,
+    };
+    let params = &config.alerting.rules;
+    let mut pass = Pass::default();
+    if params.enabled("stale_source") {
+        pass.add(Rule::StaleSource, &source.name, "", rules::stale_source(&input), None);
+    }
+    if params.enabled("failing_polls") {
+        pass.add(Rule::FailingPolls, &source.name, "", rules::failing_polls(&input, &params.staleness), None);
+    }
+    apply(store, config, &pass, now)
+}
+
+/// The retry policy of the config.
+pub fn retry_policy(config: &Config) -> RetryPolicy {
+    RetryPolicy {
+        base: config.alerting.retry_base,
+        cap: config.alerting.retry_cap,
+        max_age: config.alerting.max_age,
+    }
+}
+
+/// Sends one outbox row through its channel.
+pub async fn deliver(
+    config: &Config,
+    client: &reqwest::Client,
+    item: &OutboxItem,
+) -> Result<(), DeliveryError> {
+    match item.channel.as_str() {
+        "email" => match &config.email {
+            Some(email_config) => email::send(email_config, item.event_id, &item.payload).await,
+            None => Err(DeliveryError::Setup("alert.email is no longer configured".into())),
+        },
+        "webhook" => match &config.webhook {
+            Some(hook) => webhook::send(client, hook, item.event_id, &item.payload).await,
+            None => Err(DeliveryError::Setup("alert.webhook is no longer configured".into())),
+        },
+        other => Err(DeliveryError::Setup(format!("unknown channel {other}"))),
+    }
+}
+
+/// The webhook client (with the configured timeout), or a default one.
+pub fn delivery_client(config: &Config) -> reqwest::Client {
+    config.webhook.as_ref().and_then(|w| webhook::client(w).ok()).unwrap_or_default()
+}
+
+/// Delivers every due outbox row once; returns (delivered, failed).
+pub async fn deliver_due(
+    writer: &Writer,
+    config: &Arc<Config>,
+    client: &reqwest::Client,
+) -> Result<(usize, usize)> {
+    let items = writer.run(|store| store.due_outbox(Utc::now(), DELIVERY_BATCH)).await??;
+    let (mut delivered, mut failed) = (0, 0);
+    for item in items {
+        let result = deliver(config, client, &item).await;
+        let now = Utc::now();
+        let (id, attempt) = (item.outbox_id, item.attempts as u32 + 1);
+        match result {
+            Ok(()) => {
+                delivered += 1;
+                tracing::info!(event_id = item.event_id, channel = %item.channel, "alert message delivered");
+                writer.run(move |store| store.mark_delivered(id, now)).await??;
+            }
+            Err(err) => {
+                failed += 1;
+                let retry = next_try(&retry_policy(config), item.created_at, attempt, now);
+                tracing::warn!(event_id = item.event_id, channel = %item.channel, attempt, error = %err,
+                    dead_letter = retry.is_none(), "alert message not delivered");
+                let text = err.to_string();
+                writer.run(move |store| store.mark_failed(id, &text, now, retry)).await??;
+            }
+        }
+    }
+    Ok((delivered, failed))
+}
+
+/// `tidemark alerts`: alerts (live first) with state, counts, last sent and dead letters.
+pub fn list(config: &Config, all: bool, format: OutputFormat) -> Result<String> {
+    let reader = Reader::open(&config.store.path)?;
+    let mut table = Table::new(&[
+        "id",
+        "rule",
+        "source",
+        "subject",
+        "severity",
+        "state",
+        "opened_at",
+        "last_seen_at",
+        "seen",
+        "clear",
+        "last_sent_at",
+        "sent",
+        "delivered",
+        "pending",
+        "dead_letters",
+        "summary",
+    ]);
+    for a in reader.alerts(all)? {
+        table.push(vec![
+            a.alert_id.into(),
+            a.rule.into(),
+            a.source.into(),
+            a.subject.into(),
+            a.severity.into(),
+            a.state.into(),
+            a.opened_at.into(),
+            a.last_seen_at.into(),
+            a.times_seen.into(),
+            a.clear_count.into(),
+            a.last_sent_at.into(),
+            a.sent_count.into(),
+            a.delivered.into(),
+            a.pending.into(),
+            a.dead_letters.into(),
+            a.summary.into(),
+        ]);
+    }
+    let mut text = table.render(format);
+    if format == OutputFormat::Table {
+        let dead = reader.dead_letters()?;
+        for (outbox_id, event_id, channel, attempts, error, at) in dead.iter().take(20) {
+            text.push_str(&format!(
+                "dead letter {outbox_id}: event {event_id} via {channel}, {attempts} attempts, gave up {at}: {}\n",
+                error.as_deref().unwrap_or("-")
+            ));
+        }
+        text.push_str("Alerts are statistical signals for investigation, not confirmed events.\n");
+    }
+    Ok(text)
+}
+
+/// `tidemark alerts ack ID --note TEXT`.
+pub fn ack(config: &Config, alert_id: i64, note: &str) -> Result<String> {
+    let mut store = Store::open(&config.store.path)?;
+    store.ack_alert(alert_id, note, Utc::now())?;
+    Ok(format!("alert {alert_id} acknowledged; it will not be re-sent and resolves when clear\n"))
+}
+
+/// `tidemark alerts test`: queues a test message on every configured channel and delivers
+/// it now; prints what each channel did.
+pub fn test(config: &Config) -> Result<String> {
+    let channels = channels_for(config, Severity::Critical);
+    if channels.is_empty() {
+        anyhow::bail!("no alert channel is configured (add [alert.email] or [alert.webhook])");
+    }
+    let mut store = Store::open(&config.store.path)?;
+    let base = dashboard_base(config);
+    let event_id = store.enqueue_test(&channels, Utc::now(), &|facts| message::payload(facts, &base))?;
+    let runtime = tokio::runtime::Builder::new_current_thread().enable_all().build()?;
+    let client = delivery_client(config);
+    let items: Vec<OutboxItem> = store
+        .due_outbox(Utc::now() + chrono::Duration::seconds(1), 1000)?
+        .into_iter()
+        .filter(|i| i.event_id == event_id)
+        .collect();
+    let mut text = String::new();
+    for item in items {
+        let result = runtime.block_on(deliver(config, &client, &item));
+        let now = Utc::now();
+        match result {
+            Ok(()) => {
+                store.mark_delivered(item.outbox_id, now)?;
+                text.push_str(&format!("{}: delivered (event {event_id})\n", item.channel));
+            }
+            Err(err) => {
+                store.mark_failed(item.outbox_id, &err.to_string(), now, None)?;
+                text.push_str(&format!("{}: FAILED: {err}\n", item.channel));
+            }
+        }
+    }
+    Ok(text)
+}

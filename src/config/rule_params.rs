@@ -1,0 +1,212 @@
+//! `[alert.rules.<rule>]` parameter overrides, validated into the typed parameters of
+//! `alert::rules` (whose defaults are documented there). Each table may also say
+//! `enabled = false`. Unknown rules, unknown keys and values of the wrong type are config
+//! problems naming their key path.
+
+use std::collections::{BTreeMap, BTreeSet};
+
+use crate::alert::rules::{
+    CountFamily, CountParams, LagParams, MissingnessParams, StalenessParams, VolumeParams,
+};
+
+/// The rule tables `[alert.rules.*]` accepts.
+pub const RULE_TABLES: [&str; 7] = [
+    "missingness_jump",
+    "lag_jump",
+    "held_snapshot",
+    "volume_drop",
+    "stale_source",
+    "failing_polls",
+    "count",
+];
+
+/// Typed parameters of every rule, with the set of disabled rule tables.
+#[derive(Debug, Clone, Default)]
+pub struct RuleParams {
+    pub missingness: MissingnessParams,
+    pub lag: LagParams,
+    pub volume: VolumeParams,
+    pub staleness: StalenessParams,
+    pub count: CountParams,
+    pub disabled: BTreeSet<String>,
+}
+
+impl RuleParams {
+    pub fn enabled(&self, table: &str) -> bool {
+        !self.disabled.contains(table)
+    }
+}
+
+/// Reads one table's keys into `set`, which returns false for a key it does not know.
+struct Keys<'a> {
+    label: String,
+    table: &'a toml::Table,
+    problems: &'a mut Vec<String>,
+}
+
+impl Keys<'_> {
+    fn float(&mut self, key: &str, slot: &mut f64) {
+        match self.table.get(key) {
+            None => {}
+            Some(toml::Value::Float(x)) => *slot = *x,
+            Some(toml::Value::Integer(n)) => *slot = *n as f64,
+            Some(_) => self.problems.push(format!("{}.{key}: must be a number", self.label)),
+        }
+    }
+
+    fn count(&mut self, key: &str, slot: &mut usize) {
+        match self.table.get(key) {
+            None => {}
+            Some(toml::Value::Integer(n)) if *n >= 0 => *slot = *n as usize,
+            Some(_) => self.problems.push(format!("{}.{key}: must be a whole number >= 0", self.label)),
+        }
+    }
+
+    fn flag(&mut self, key: &str, slot: &mut bool) {
+        match self.table.get(key) {
+            None => {}
+            Some(toml::Value::Boolean(b)) => *slot = *b,
+            Some(_) => self.problems.push(format!("{}.{key}: must be true or false", self.label)),
+        }
+    }
+
+    fn only(&mut self, known: &[&str]) {
+        for key in self.table.keys() {
+            if key != "enabled" && !known.contains(&key.as_str()) {
+                self.problems.push(format!(
+                    "{}.{key}: unknown parameter (known: {})",
+                    self.label,
+                    known.join(", ")
+                ));
+            }
+        }
+    }
+}
+
+pub fn build(tables: &BTreeMap<String, toml::Table>, problems: &mut Vec<String>) -> RuleParams {
+    let mut params = RuleParams::default();
+    for (name, table) in tables {
+        let mut keys = Keys { label: format!("alert.rules.{name}"), table, problems };
+        let mut enabled = true;
+        keys.flag("enabled", &mut enabled);
+        if !enabled {
+            params.disabled.insert(name.clone());
+        }
+        match name.as_str() {
+            "missingness_jump" => missingness(&mut keys, &mut params.missingness),
+            "lag_jump" => lag(&mut keys, &mut params.lag),
+            "volume_drop" => volume(&mut keys, &mut params.volume),
+            "failing_polls" => {
+                let mut n = params.staleness.max_consecutive_failures as usize;
+                keys.count("max_consecutive_failures", &mut n);
+                params.staleness.max_consecutive_failures = n.max(1) as u32;
+                keys.only(&["max_consecutive_failures"]);
+            }
+            "held_snapshot" | "stale_source" => keys.only(&[]),
+            "count" => count(&mut keys, &mut params.count),
+            other => problems
+                .push(format!("alert.rules.{other}: unknown rule (known: {})", RULE_TABLES.join(", "))),
+        }
+    }
+    params
+}
+
+fn missingness(keys: &mut Keys<'_>, p: &mut MissingnessParams) {
+    keys.count("baseline_snapshots", &mut p.baseline_snapshots);
+    keys.float("min_effect", &mut p.min_effect);
+    let mut min_records = p.min_records as usize;
+    keys.count("min_records", &mut min_records);
+    p.min_records = min_records as u64;
+    keys.float("sigmas", &mut p.sigmas);
+    keys.only(&["baseline_snapshots", "min_effect", "min_records", "sigmas"]);
+}
+
+fn lag(keys: &mut Keys<'_>, p: &mut LagParams) {
+    keys.float("lambda", &mut p.ewma.lambda);
+    keys.float("width", &mut p.ewma.width);
+    keys.count("baseline_days", &mut p.baseline_days);
+    keys.count("recent_days", &mut p.recent_days);
+    keys.count("min_baseline_days", &mut p.min_baseline_days);
+    keys.count("min_records", &mut p.min_records);
+    keys.float("alpha", &mut p.alpha);
+    keys.float("min_effect_days", &mut p.min_effect_days);
+    keys.float("min_sd_days", &mut p.min_sd_days);
+    keys.only(&[
+        "lambda",
+        "width",
+        "baseline_days",
+        "recent_days",
+        "min_baseline_days",
+        "min_records",
+        "alpha",
+        "min_effect_days",
+        "min_sd_days",
+    ]);
+}
+
+fn volume(keys: &mut Keys<'_>, p: &mut VolumeParams) {
+    keys.count("baseline_snapshots", &mut p.baseline_snapshots);
+    keys.float("drop_fraction", &mut p.drop_fraction);
+    keys.float("min_baseline_median", &mut p.min_baseline_median);
+    keys.count("min_baseline_snapshots", &mut p.min_baseline_snapshots);
+    keys.only(&["baseline_snapshots", "drop_fraction", "min_baseline_median", "min_baseline_snapshots"]);
+}
+
+fn count(keys: &mut Keys<'_>, p: &mut CountParams) {
+    keys.flag("c1", &mut p.c1);
+    keys.flag("c2", &mut p.c2);
+    keys.flag("c3", &mut p.c3);
+    keys.float("c1_threshold", &mut p.ears.c1_threshold);
+    keys.float("c2_threshold", &mut p.ears.c2_threshold);
+    keys.float("c3_threshold", &mut p.ears.c3_threshold);
+    keys.float("min_sd", &mut p.ears.min_sd);
+    let mut cusum = p.cusum.is_some();
+    keys.flag("cusum", &mut cusum);
+    let mut c = p.cusum.unwrap_or_default();
+    match keys.table.get("cusum_family").and_then(|v| v.as_str()) {
+        None => {}
+        Some("poisson") => c.family = CountFamily::Poisson,
+        Some("negative_binomial") => c.family = CountFamily::NegativeBinomial,
+        Some(other) => keys.problems.push(format!(
+            "{}.cusum_family: \"{other}\" is not one of poisson, negative_binomial",
+            keys.label
+        )),
+    }
+    keys.float("cusum_shift_sds", &mut c.shift_sds);
+    keys.float("cusum_h_sds", &mut c.h_sds);
+    keys.count("cusum_baseline_days", &mut c.baseline_days);
+    p.cusum = cusum.then_some(c);
+    keys.only(&[
+        "c1",
+        "c2",
+        "c3",
+        "c1_threshold",
+        "c2_threshold",
+        "c3_threshold",
+        "min_sd",
+        "cusum",
+        "cusum_family",
+        "cusum_shift_sds",
+        "cusum_h_sds",
+        "cusum_baseline_days",
+    ]);
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn overrides_and_problems() {
+        let text = "[missingness_jump]\nmin_effect = 0.2\n[count]\ncusum = true\ncusum_family = \"negative_binomial\"\n[lag_jump]\nenabled = false\nbogus = 1\n[nope]\n";
+        let tables: BTreeMap<String, toml::Table> = toml::from_str(text).unwrap();
+        let mut problems = Vec::new();
+        let p = build(&tables, &mut problems);
+        assert_eq!(p.missingness.min_effect, 0.2);
+        assert_eq!(p.count.cusum.unwrap().family, CountFamily::NegativeBinomial);
+        assert!(!p.enabled("lag_jump") && p.enabled("count"));
+        assert_eq!(problems.len(), 2, "{problems:?}");
+        assert!(problems[0].contains("alert.rules.lag_jump.bogus"));
+        assert!(problems[1].contains("alert.rules.nope: unknown rule"));
+    }
+}
