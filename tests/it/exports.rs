@@ -12,8 +12,16 @@ use parquet::record::Field as ParquetField;
 
 use crate::support::{Env, TestResult, count, csv, day, mode, run, source_toml, tidemark};
 
-/// Every row of a Parquet file as (column name, value) pairs.
-fn parquet_rows(path: &Path) -> Result<Vec<Vec<(String, ParquetField)>>, Box<dyn std::error::Error>> {
+type Error = Box<dyn std::error::Error>;
+
+/// A Parquet row as (column name, value) pairs.
+type ParquetRow = Vec<(String, ParquetField)>;
+
+/// A CSV file's header and rows.
+type CsvFile = (Vec<String>, Vec<Vec<String>>);
+
+/// Every row of a Parquet file.
+fn parquet_rows(path: &Path) -> Result<Vec<ParquetRow>, Error> {
     let reader = SerializedFileReader::new(File::open(path)?)?;
     let mut rows = Vec::new();
     for row in reader.get_row_iter(None)? {
@@ -23,7 +31,7 @@ fn parquet_rows(path: &Path) -> Result<Vec<Vec<(String, ParquetField)>>, Box<dyn
     Ok(rows)
 }
 
-fn csv_rows(path: &Path) -> Result<(Vec<String>, Vec<Vec<String>>), Box<dyn std::error::Error>> {
+fn csv_rows(path: &Path) -> Result<CsvFile, Error> {
     let mut reader = csv::Reader::from_path(path)?;
     let headers = reader.headers()?.iter().map(str::to_string).collect();
     let mut rows = Vec::new();
