@@ -17,7 +17,8 @@
 //!   count aberration) that turn measured aggregates into signals.
 //! - [`table`]: listings rendered as text, CSV or JSON.
 //! - [`metrics`]: the daemon's counters and their Prometheus text.
-//! - [`serve`]: HTTP edges (ops endpoints; the demo's extract server); read-only.
+//! - [`export`]: line lists, nowcasts and delay fits written as CSV or Parquet (files 0600).
+//! - [`serve`]: HTTP edges (ops endpoints, the dashboard; the demo's extract server); read-only.
 //! - [`demo`]: an invented scenario with known truth, for the demo and tests.
 //! - [`app`]: command bodies, the ingest pipeline, the writer thread and the daemon (the only
 //!   place that uses `anyhow`).
@@ -27,6 +28,7 @@ pub mod analysis;
 pub mod app;
 pub mod config;
 pub mod demo;
+pub mod export;
 pub mod extract;
 pub mod metrics;
 pub mod model;

@@ -200,6 +200,21 @@ enum Command {
     Backup { dest: PathBuf },
     /// Replace the store with a backup (refused while the daemon runs).
     Restore { backup: PathBuf },
+    /// Write the line list, nowcasts or delay fits as of a snapshot to a CSV or Parquet file
+    /// (mode 0600; a line list holds patient-level data).
+    Export {
+        #[arg(long)]
+        source: String,
+        #[arg(long, value_name = "TIME")]
+        as_of: Option<String>,
+        /// line-list, nowcast or delays.
+        #[arg(long, default_value = "line-list")]
+        table: String,
+        #[arg(long, value_enum)]
+        format: tidemark::export::ExportFormat,
+        #[arg(long, value_name = "FILE")]
+        out: PathBuf,
+    },
     /// Generate the invented scenario and run the whole pipeline on it.
     Demo {
         /// Folder for the scenario's files, config and store.
@@ -425,6 +440,16 @@ fn run(cli: Cli) -> Result<u8> {
         Command::Status { listing } => commands::status(&load(flag)?, listing.format)?,
         Command::Backup { dest } => commands::backup(&load(flag)?, &dest)?,
         Command::Restore { backup } => commands::restore(&load(flag)?, &backup)?,
+        Command::Export { source, as_of, table, format, out } => {
+            let args = tidemark::app::export::ExportArgs {
+                source: &source,
+                as_of: as_of.as_deref(),
+                table: &table,
+                format,
+                out: &out,
+            };
+            tidemark::app::export::export(&load(flag)?, &args)?.summary()
+        }
         Command::Demo { dir, seed, days } => {
             let options = DemoOptions { dir, seed, days };
             demo::run(&options, &mut |line| println!("{line}"))?.report()

@@ -86,7 +86,7 @@ pub fn serve(config: Config) -> Result<()> {
     })
 }
 
-/// Everything served on `serve.bind`: the API and the ops endpoints. `running` says whether
+/// Everything served on `serve.bind`: the API, the dashboard and the ops endpoints. `running` says whether
 /// a scheduler polls (the daemon); without one (`tidemark serve`) `/healthz` checks the store.
 pub fn app_router(config: &Arc<Config>, ops_state: Option<ops::OpsState>) -> axum::Router {
     let ops_state = ops_state.unwrap_or_else(|| ops::OpsState {
@@ -95,7 +95,8 @@ pub fn app_router(config: &Arc<Config>, ops_state: Option<ops::OpsState>) -> axu
         scheduler_running: Arc::new(AtomicBool::new(true)),
         store: config.store.path.clone(),
     });
-    serve::app_router(api_state(config), ops_state)
+    let dashboard = serve::dashboard::DashboardState { store: config.store.path.clone() };
+    serve::app_router(api_state(config), ops_state, dashboard)
 }
 
 /// The API's listings, answered by the CLI's own functions.

@@ -8,6 +8,7 @@ pub mod analyse;
 pub mod commands;
 pub mod daemon;
 pub mod demo;
+pub mod export;
 pub mod ingest;
 pub mod quality;
 pub mod writer;

@@ -6,6 +6,8 @@
 pub mod alerts;
 pub mod archive;
 pub mod backup;
+mod dashboard;
+mod export;
 pub mod lock;
 pub mod quality;
 mod read;
@@ -23,6 +25,10 @@ use std::time::Duration;
 
 use rusqlite::{Connection, OpenFlags};
 
+pub use self::dashboard::{
+    FirstSeenLag, MISSINGNESS_FIELDS, SnapshotMissing, SourceOverview, StoredDelayFit,
+};
+pub use self::export::{ColumnKind, ExportTable};
 pub use self::read::{AGE_BAND_EDGES, CurveRow, Reader, SnapshotRow, VersionRow};
 pub use self::sources::{FileRecord, PollRecord, SourceStatus};
 pub use self::sql::{SqlLimits, run_sql};

@@ -7,6 +7,8 @@ mod backup;
 mod bad_corpus;
 mod cli;
 mod crash;
+mod dashboard_browser;
+mod exports;
 mod folder_source;
 mod history_props;
 mod run_process;
