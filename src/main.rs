@@ -225,6 +225,9 @@ enum Command {
         /// Days of extracts to generate.
         #[arg(long, default_value_t = DEFAULT_DAYS)]
         days: u32,
+        /// Keep serving the API and dashboard of the demo store afterwards (until Ctrl-C).
+        #[arg(long)]
+        serve: bool,
     },
 }
 
@@ -305,6 +308,19 @@ fn init_tracing(daemon: bool, json: bool) {
     let builder =
         tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr).with_ansi(ansi);
     let _ = if json { builder.json().try_init() } else { builder.try_init() };
+}
+
+/// Where the demo's dashboard is (served now with `--serve`, or by `tidemark serve`).
+fn demo_dashboard_line(config: &Config, config_path: &Path, serving: bool) -> String {
+    let url = format!("http://{}/", config.bind);
+    if serving {
+        format!("Dashboard: {url} (serving the demo store; Ctrl-C to stop)")
+    } else {
+        format!(
+            "Dashboard: {url} after `tidemark --config {} serve` (or run the demo with --serve)",
+            config_path.display()
+        )
+    }
 }
 
 fn load(flag: Option<&Path>) -> Result<Config> {
@@ -450,9 +466,16 @@ fn run(cli: Cli) -> Result<u8> {
             };
             tidemark::app::export::export(&load(flag)?, &args)?.summary()
         }
-        Command::Demo { dir, seed, days } => {
+        Command::Demo { dir, seed, days, serve } => {
+            let config_path = dir.join("tidemark.toml");
             let options = DemoOptions { dir, seed, days };
-            demo::run(&options, &mut |line| println!("{line}"))?.report()
+            print!("{}", demo::run(&options, &mut |line| println!("{line}"))?.report());
+            let config = Config::load(&config_path)?;
+            println!("{}", demo_dashboard_line(&config, &config_path, serve));
+            if serve {
+                access::serve(config)?;
+            }
+            return Ok(0);
         }
     };
     print!("{text}");

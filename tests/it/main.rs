@@ -1,8 +1,8 @@
 //! Integration tests: one binary, one module per area. Real SQLite files in temporary
 //! folders, the real `tidemark` binary where a process matters.
 
-mod api;
 mod alerts;
+mod api;
 mod backup;
 mod bad_corpus;
 mod cli;
