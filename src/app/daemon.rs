@@ -269,6 +269,19 @@ async fn finish_poll(
     if let Err(err) = shared.writer.run(move |store| store.record_poll(source_id, &record)).await {
         tracing::warn!(source = %source.name, error = %err, "poll health not recorded");
     }
+    if shared.shutdown.is_cancelled() {
+        tracing::debug!(source = %source.name, "shutdown asked; staleness rules skipped until the next poll");
+    } else {
+        check_staleness(shared, source).await;
+    }
+    if let Some(events) = &shared.events {
+        let snapshots = outcomes.iter().map(|o| (o.snapshot_id, o.status)).collect();
+        let _ = events.send(PollEvent { source: source.name.clone(), started, snapshots, error });
+    }
+}
+
+/// Runs the staleness rules on the writer after a poll; logged, not returned.
+async fn check_staleness(shared: &Arc<Shared>, source: &SourceConfig) {
     let (config, job_source, started_at) = (shared.config.clone(), source.clone(), shared.started);
     let checked = shared
         .writer
@@ -280,10 +293,6 @@ async fn finish_poll(
             tracing::warn!(source = %source.name, error = %format!("{err:#}"), "staleness rules not evaluated")
         }
         Err(err) => tracing::warn!(source = %source.name, error = %err, "staleness rules not evaluated"),
-    }
-    if let Some(events) = &shared.events {
-        let snapshots = outcomes.iter().map(|o| (o.snapshot_id, o.status)).collect();
-        let _ = events.send(PollEvent { source: source.name.clone(), started, snapshots, error });
     }
 }
 

@@ -54,8 +54,42 @@ pub struct DemoReport {
     pub nowcast_method: String,
     /// Backtest summary lines (county feed, by onset).
     pub backtest: String,
-    /// Alerts the rules raised during the run: (day of the snapshot that opened it, line).
-    pub alerts: Vec<(String, String)>,
+    /// Alerts the rules raised during the run, by the day of the snapshot that opened them.
+    pub alerts: Vec<DemoAlert>,
+    /// The problems injected into the feeds (known truth).
+    pub injections: Vec<demo::Injection>,
+}
+
+/// One alert of the run and the injected problem it matches, if any.
+#[derive(Debug, Clone)]
+pub struct DemoAlert {
+    pub rule: String,
+    pub source: String,
+    pub subject: String,
+    /// Scenario day of the snapshot that opened it.
+    pub day: i64,
+    /// Day its matching problem was injected.
+    pub injected_day: Option<i32>,
+    pub line: String,
+}
+
+/// The injection an alert matches: same source, a rule expected for it, the same subject
+/// (or the whole source, which a problem in one part also moves), fired on or after it.
+fn matching_injection(
+    injections: &[demo::Injection],
+    rule: &str,
+    source: &str,
+    subject: &str,
+    day: i64,
+) -> Option<i32> {
+    injections
+        .iter()
+        .filter(|i| {
+            i.feed == source && i.rules.contains(&rule) && (subject.is_empty() || subject == i.subject)
+        })
+        .filter(|i| day >= i64::from(i.day))
+        .map(|i| i.day)
+        .max()
 }
 
 #[derive(Debug, Clone)]
@@ -202,9 +236,10 @@ fn summarise(config: &Config, scenario: &Scenario, dir: PathBuf) -> Result<DemoR
         }
     }
     let (nowcast, nowcast_method, backtest) = nowcast_against_truth(config, scenario, county_id, last)?;
-    let alerts = demo_alerts(&reader)?;
+    let alerts = demo_alerts(&reader, scenario)?;
     Ok(DemoReport {
         alerts,
+        injections: scenario.injections.clone(),
         dir,
         config: config.file.clone(),
         true_cases: scenario.cases.len(),
@@ -218,7 +253,7 @@ fn summarise(config: &Config, scenario: &Scenario, dir: PathBuf) -> Result<DemoR
 }
 
 /// Every alert raised in the run, by the day of the snapshot that opened it.
-fn demo_alerts(reader: &Reader) -> Result<Vec<(String, String)>> {
+fn demo_alerts(reader: &Reader, scenario: &Scenario) -> Result<Vec<DemoAlert>> {
     let table = reader.query(
         "SELECT coalesce(substr(n.as_of, 1, 10), substr(a.opened_at, 1, 10)), a.rule, a.source, a.subject,
                 a.severity, a.state, a.summary
@@ -243,7 +278,12 @@ fn demo_alerts(reader: &Reader) -> Result<Vec<(String, String)>> {
                 text(&r[5]),
                 text(&r[6])
             );
-            (text(&r[0]), line)
+            let day = NaiveDate::parse_from_str(&text(&r[0]), "%Y-%m-%d")
+                .map(|d| (d - scenario.start).num_days())
+                .unwrap_or(-1);
+            let (rule, source, subject) = (text(&r[1]), text(&r[2]), text(&r[3]));
+            let injected_day = matching_injection(&scenario.injections, &rule, &source, &subject, day);
+            DemoAlert { rule, source, subject, day, injected_day, line }
         })
         .collect())
 }
@@ -364,13 +404,36 @@ impl DemoReport {
             "\nAlerts raised ({}); the demo config has no alert channel, so they are stored, not sent:",
             self.alerts.len()
         );
-        for (day, line) in &self.alerts {
-            let _ = writeln!(out, "  {day}  {line}");
-        }
         let _ = writeln!(
             out,
-            "  No problem is injected into this scenario yet, so each alert above fired without an injected cause.\n  Alerts are signals for investigation, not confirmed events."
+            "  {:<18} {:<15} {:<14} {:>5} {:>9}",
+            "rule", "source", "subject", "fired", "injected"
         );
+        for a in self.alerts.iter().filter(|a| a.injected_day.is_some()) {
+            let injected = a.injected_day.map(|d| d.to_string()).unwrap_or_default();
+            let _ = writeln!(
+                out,
+                "  {:<18} {:<15} {:<14} {:>5} {:>9}",
+                a.rule, a.source, a.subject, a.day, injected
+            );
+        }
+        let unexplained: Vec<_> = self.alerts.iter().filter(|a| a.injected_day.is_none()).collect();
+        let _ = writeln!(
+            out,
+            "Alerts with no injected cause ({}; false alarms or real features of the invented epidemic):",
+            unexplained.len()
+        );
+        for a in &unexplained {
+            let _ = writeln!(out, "  day {:>3}  {}  (no injected cause)", a.day, a.line);
+        }
+        for i in &self.injections {
+            let caught = self.alerts.iter().any(|a| a.injected_day == Some(i.day));
+            let place =
+                if i.jurisdiction.is_empty() { String::new() } else { format!(" in {}", i.jurisdiction) };
+            let verdict = if caught { "detected" } else { "NOT detected" };
+            let _ = writeln!(out, "  injected day {:>3}: {}{place} ({}): {verdict}", i.day, i.kind, i.feed);
+        }
+        let _ = writeln!(out, "  Alerts are signals for investigation, not confirmed events.");
         let _ = writeln!(out, "Store and files: {}", self.dir.display());
         let _ = writeln!(
             out,

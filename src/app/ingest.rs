@@ -114,16 +114,42 @@ pub fn ingest_archived(
     };
     let outcome = finish(ingest, config, source, last.as_ref(), &summary)?;
     if outcome.status == SnapshotStatus::Applied {
-        analyse_applied(store, config, source, outcome.snapshot_id);
+        analyse_applied(store, config, source, outcome.snapshot_id, cancelled);
     }
-    evaluate_alerts(store, config, source, &outcome);
+    if !skipped_for_shutdown(cancelled, source, outcome.snapshot_id, "alert rules") {
+        evaluate_alerts(store, config, source, &outcome);
+    }
     Ok(outcome)
+}
+
+/// True (with a debug line) when shutdown has been asked, so a post-snapshot step is
+/// skipped: the snapshot is applied and safe, and the next one recomputes the step.
+fn skipped_for_shutdown(
+    cancelled: &dyn Fn() -> bool,
+    source: &SourceConfig,
+    snapshot_id: i64,
+    step: &str,
+) -> bool {
+    let skip = cancelled();
+    if skip {
+        tracing::debug!(source = %source.name, snapshot_id, step, "shutdown asked; skipped until the next snapshot");
+    }
+    skip
 }
 
 /// Recomputes the nowcasts and delay fits after an applied snapshot. A failure here is
 /// logged, not returned: the snapshot itself is applied and safe, and the next one
-/// recomputes.
-fn analyse_applied(store: &mut Store, config: &Config, source: &SourceConfig, snapshot_id: i64) {
+/// recomputes. Each step is skipped once `cancelled` says shutdown has been asked.
+fn analyse_applied(
+    store: &mut Store,
+    config: &Config,
+    source: &SourceConfig,
+    snapshot_id: i64,
+    cancelled: &dyn Fn() -> bool,
+) {
+    if skipped_for_shutdown(cancelled, source, snapshot_id, "analyses") {
+        return;
+    }
     let started = std::time::Instant::now();
     match super::analyse::analyse_snapshot(store, config, source, snapshot_id) {
         Ok((nowcasts, delay_fits)) => tracing::debug!(
@@ -134,7 +160,9 @@ fn analyse_applied(store: &mut Store, config: &Config, source: &SourceConfig, sn
             tracing::warn!(source = %source.name, snapshot_id, error = %format!("{err:#}"), "analyses not computed")
         }
     }
-    measure_applied(store, config, source, snapshot_id);
+    if !skipped_for_shutdown(cancelled, source, snapshot_id, "quality measures") {
+        measure_applied(store, config, source, snapshot_id);
+    }
 }
 
 /// Runs the snapshot alert rules after an applied or held snapshot; logged, not returned.
@@ -184,7 +212,7 @@ pub fn release(store: &mut Store, config: &Config, snapshot_id: i64) -> Result<I
     let spec = config.triangle_spec();
     let counts = ingest.apply(&plan, summary.rows_total, Some("released by operator"), Some(&spec))?;
     let source = source.clone();
-    analyse_applied(store, config, &source, snapshot_id);
+    analyse_applied(store, config, &source, snapshot_id, &|| false);
     let outcome = IngestOutcome {
         snapshot_id,
         status: SnapshotStatus::Applied,

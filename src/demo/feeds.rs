@@ -6,7 +6,7 @@ use std::fmt::Write as _;
 
 use serde_json::json;
 
-use super::scenario::{JURISDICTIONS, LABS, Scenario, TrueCase};
+use super::scenario::{JURISDICTIONS, LABS, MISSING_SPECIMEN_FROM, Scenario, TrueCase};
 
 /// Column header of the county feed.
 pub const COUNTY_HEADER: &str = "case_id,district,symptom_onset,specimen_collected,result_released,reported_on,\
@@ -155,7 +155,7 @@ pub fn lab_ndjson(scenario: &Scenario, day: i32) -> String {
             "specimen_id": format!("LAB-{:06}", case.id),
             "area": JURISDICTIONS[case.jurisdiction].2,
             "onsetDate": onset,
-            "specimenDate": date(case.specimen),
+            "specimenDate": specimen_filled(scenario, case).then(|| date(case.specimen)),
             "resultDate": date(case.result),
             "patientAge": age,
             "gender": gender,
@@ -169,6 +169,20 @@ pub fn lab_ndjson(scenario: &Scenario, day: i32) -> String {
         }
     }
     out
+}
+
+/// Injected problem (b): from `MISSING_SPECIMEN_FROM` the lab leaves the specimen date blank
+/// on 8 of 10 rows it first sends (earlier rows keep theirs, so history is not rewritten).
+fn specimen_filled(scenario: &Scenario, case: &TrueCase) -> bool {
+    scenario.injections.is_empty()
+        || case.lab_visible.is_none_or(|v| v < MISSING_SPECIMEN_FROM)
+        || case.id % 10 >= 8
+}
+
+/// Injected problem (c): the extract cut after the first `share` of its lines.
+pub fn truncated(text: &str, share: f64) -> String {
+    let keep = (text.lines().count() as f64 * share) as usize;
+    text.lines().take(keep).flat_map(|l| [l, "\n"]).collect()
 }
 
 #[cfg(test)]

@@ -10,7 +10,7 @@ use std::fs;
 use std::io;
 use std::path::{Path, PathBuf};
 
-pub use self::scenario::{JURISDICTIONS, Scenario, TrueCase};
+pub use self::scenario::{Injection, JURISDICTIONS, Scenario, TrueCase};
 
 /// Days of extracts the demo generates unless told otherwise.
 pub const DEFAULT_DAYS: u32 = 100;
@@ -46,7 +46,11 @@ pub fn write(dir: &Path, scenario: &Scenario, lab_url: &str) -> io::Result<DemoF
     fs::create_dir_all(&county_inbox)?;
     let mut extracts = Vec::new();
     for day in 0..scenario.days as i32 {
-        let (county_text, lab_text) = (feeds::county_csv(scenario, day), feeds::lab_ndjson(scenario, day));
+        let (county_text, mut lab_text) =
+            (feeds::county_csv(scenario, day), feeds::lab_ndjson(scenario, day));
+        if day == scenario::TRUNCATED_DAY && !scenario.injections.is_empty() {
+            lab_text = feeds::truncated(&lab_text, scenario::TRUNCATED_SHARE);
+        }
         // A feed with nothing to report yet sends nothing: the demo starts on the first day
         // both feeds have a record.
         if extracts.is_empty() && (lab_text.is_empty() || !county_text.contains("\nCR-")) {
@@ -60,6 +64,7 @@ pub fn write(dir: &Path, scenario: &Scenario, lab_url: &str) -> io::Result<DemoF
         extracts.push((day, county, lab));
     }
     fs::write(dir.join("truth.csv"), truth_csv(scenario))?;
+    fs::write(dir.join("injected.csv"), injected_csv(scenario))?;
     let config = dir.join("tidemark.toml");
     fs::write(&config, config_text(lab_url))?;
     Ok(DemoFiles { dir: dir.to_path_buf(), config, county_inbox, extracts })
@@ -100,6 +105,22 @@ pub fn truth_csv(scenario: &Scenario) -> String {
             out.push_str(&format!(",{count}"));
         }
         out.push('\n');
+    }
+    out
+}
+
+/// The injected problems: day, date, feed, jurisdiction (empty: the whole feed), kind.
+pub fn injected_csv(scenario: &Scenario) -> String {
+    let mut out = String::from("day,date,feed,jurisdiction,kind\n");
+    for i in &scenario.injections {
+        out.push_str(&format!(
+            "{},{},{},{},{}\n",
+            i.day,
+            scenario.date(i.day),
+            i.feed,
+            i.jurisdiction,
+            i.kind
+        ));
     }
     out
 }
@@ -209,5 +230,28 @@ mod tests {
         let text = config_text("http://127.0.0.1:9/lab-results.ndjson");
         let config = crate::config::Config::parse(&text, Path::new("/tmp/demo/tidemark.toml")).unwrap();
         assert_eq!(config.sources.len(), 2);
+    }
+
+    #[test]
+    fn injected_problems_are_in_the_feeds() {
+        let scenario = Scenario::generate(7, 100);
+        assert_eq!(scenario.injections.len(), 4);
+        let csv = injected_csv(&scenario);
+        assert!(csv.lines().nth(1).unwrap().starts_with("60,2026-03-06,county-reports,Brackwater,"), "{csv}");
+        let blank = |day| {
+            let text = feeds::lab_ndjson(&scenario, day);
+            let rows: Vec<_> =
+                text.lines().filter_map(|l| serde_json::from_str::<serde_json::Value>(l).ok()).collect();
+            rows.iter().filter(|r| r["specimenDate"].is_null()).count() as f64 / rows.len() as f64
+        };
+        assert_eq!(blank(65), 0.0);
+        assert!(blank(99) > 0.05, "rows first sent from day 70 lack the specimen date");
+        let full = feeds::lab_ndjson(&scenario, 75);
+        let cut = feeds::truncated(&full, scenario::TRUNCATED_SHARE);
+        assert!(cut.lines().count() * 2 < full.lines().count() && cut.ends_with('\n'));
+        let reported = |day| scenario.cases.iter().filter(|c| c.jurisdiction == 3 && c.report == day).count();
+        assert!(reported(81) >= scenario::SPIKE_PER_DAY as usize, "the spike adds its cases on day 81");
+        let short = Scenario::generate(7, 30);
+        assert!(short.injections.is_empty());
     }
 }

@@ -30,6 +30,70 @@ pub const ONSET_CORRECTION_RATE: f64 = 0.03;
 /// Share of cases tested by the lab network (and so present in the lab feed).
 pub const LAB_COVERAGE: f64 = 0.7;
 
+/// A problem injected into the feeds, recorded as known truth so the demo can tell which
+/// alerts it should cause. `rules` are the alert rules expected to catch it and `subject` the
+/// alert subject they use (a jurisdiction, a field, or empty for the whole source).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Injection {
+    pub day: i32,
+    pub feed: &'static str,
+    pub jurisdiction: &'static str,
+    pub kind: &'static str,
+    pub rules: &'static [&'static str],
+    pub subject: &'static str,
+}
+
+/// Day from which Brackwater's reports arrive `LAG_JUMP_DAYS` later than before.
+pub const LAG_JUMP_FROM: i32 = 60;
+pub const LAG_JUMP_DAYS: i32 = 5;
+/// Day from which the lab feed leaves the specimen date blank on most new rows.
+pub const MISSING_SPECIMEN_FROM: i32 = 70;
+/// Day on which the lab feed's full extract carries only `TRUNCATED_SHARE` of its rows.
+pub const TRUNCATED_DAY: i32 = 75;
+pub const TRUNCATED_SHARE: f64 = 0.4;
+/// Days on which an extra cluster of Dunhollow cases is reported, and cases per day.
+pub const SPIKE_DAYS: [i32; 3] = [80, 81, 82];
+pub const SPIKE_PER_DAY: u32 = 12;
+
+/// The four injected problems, for scenarios long enough to hold them.
+pub fn injections(days: u32) -> Vec<Injection> {
+    let all = [
+        Injection {
+            day: LAG_JUMP_FROM,
+            feed: "county-reports",
+            jurisdiction: "Brackwater",
+            kind: "reporting lag jump",
+            rules: &["lag_jump"],
+            subject: "Brackwater",
+        },
+        Injection {
+            day: MISSING_SPECIMEN_FROM,
+            feed: "lab-results",
+            jurisdiction: "",
+            kind: "missingness jump (specimen date)",
+            rules: &["missingness_jump"],
+            subject: "specimen_date",
+        },
+        Injection {
+            day: TRUNCATED_DAY,
+            feed: "lab-results",
+            jurisdiction: "",
+            kind: "truncated extract",
+            rules: &["held_snapshot", "volume_drop"],
+            subject: "",
+        },
+        Injection {
+            day: SPIKE_DAYS[0],
+            feed: "county-reports",
+            jurisdiction: "Dunhollow",
+            kind: "count spike",
+            rules: &["ears_c1", "ears_c2", "ears_c3", "count_cusum"],
+            subject: "Dunhollow",
+        },
+    ];
+    all.into_iter().filter(|i| i.day < days as i32).collect()
+}
+
 /// One true case. Days are offsets from the scenario's first day.
 #[derive(Debug, Clone)]
 pub struct TrueCase {
@@ -82,6 +146,7 @@ pub struct Scenario {
     pub start: chrono::NaiveDate,
     pub days: u32,
     pub cases: Vec<TrueCase>,
+    pub injections: Vec<Injection>,
 }
 
 impl Scenario {
@@ -97,7 +162,12 @@ impl Scenario {
                 cases.push(draw_case(&mut rng, id, onset));
             }
         }
-        Scenario { start: chrono::NaiveDate::from_ymd_opt(2026, 1, 5).unwrap(), days, cases }
+        let injections = injections(days);
+        if !injections.is_empty() {
+            lengthen_lags(&mut cases);
+            add_spike(&mut cases, seed, days);
+        }
+        Scenario { start: chrono::NaiveDate::from_ymd_opt(2026, 1, 5).unwrap(), days, cases, injections }
     }
 
     pub fn date(&self, day: i32) -> chrono::NaiveDate {
@@ -119,6 +189,34 @@ impl Scenario {
 pub fn expected_onsets(day: i32) -> f64 {
     let z = (day as f64 - 45.0) / 14.0;
     3.0 + 107.0 * (-0.5 * z * z).exp()
+}
+
+/// Injected problem (a): Brackwater's reports due from `LAG_JUMP_FROM` on arrive later.
+fn lengthen_lags(cases: &mut [TrueCase]) {
+    let brackwater = JURISDICTIONS.iter().position(|j| j.0 == "Brackwater").unwrap_or(1);
+    for case in cases.iter_mut().filter(|c| c.jurisdiction == brackwater && c.report >= LAG_JUMP_FROM) {
+        case.report += LAG_JUMP_DAYS;
+    }
+}
+
+/// Injected problem (d): an extra cluster of Dunhollow cases reported on `SPIKE_DAYS`, drawn
+/// from their own random stream so the rest of the scenario is unchanged.
+fn add_spike(cases: &mut Vec<TrueCase>, seed: u64, days: u32) {
+    let mut rng = StdRng::seed_from_u64(seed ^ 0x5eed_5b1e);
+    let dunhollow = JURISDICTIONS.len() - 1;
+    for day in SPIKE_DAYS.into_iter().filter(|d| *d < days as i32) {
+        for _ in 0..SPIKE_PER_DAY {
+            let id = cases.len() as u32 + 1;
+            let onset = day - rng.random_range(1..=3);
+            let mut case = draw_case(&mut rng, id, onset);
+            case.jurisdiction = dunhollow;
+            case.report = day;
+            case.specimen = case.specimen.min(day);
+            case.result = case.result.min(day);
+            case.lab_visible = case.lab_visible.map(|v| v.clamp(case.result, day));
+            cases.push(case);
+        }
+    }
 }
 
 fn gamma_days(rng: &mut StdRng, mean: f64, shape: f64) -> i32 {

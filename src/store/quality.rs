@@ -246,8 +246,10 @@ fn write_lag(
          VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9)",
     )?;
     let mut insert_bin = tx.prepare(
+        // The whole-source histogram gathers the same lag from every jurisdiction: add up.
         "INSERT INTO quality_lag_hist (snapshot_id, source_id, stratum_kind, stratum, lag_days, n)
-         VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6)
+         ON CONFLICT (snapshot_id, stratum_kind, stratum, lag_days) DO UPDATE SET n = n + excluded.n",
     )?;
     for ((kind, stratum), (new_records, hist)) in &histograms {
         for (lag, count) in hist {
