@@ -47,7 +47,7 @@ pub struct Injection {
 pub const LAG_JUMP_FROM: i32 = 60;
 pub const LAG_JUMP_DAYS: i32 = 5;
 /// Day from which the lab feed leaves the specimen date blank on most new rows.
-pub const MISSING_SPECIMEN_FROM: i32 = 70;
+pub const MISSING_SPECIMEN_FROM: i32 = 45;
 /// Day on which the lab feed's full extract carries only `TRUNCATED_SHARE` of its rows.
 pub const TRUNCATED_DAY: i32 = 75;
 pub const TRUNCATED_SHARE: f64 = 0.4;
