@@ -11,6 +11,7 @@ mod dashboard_browser;
 mod exports;
 mod folder_source;
 mod history_props;
+mod quality;
 mod run_process;
 mod support;
 mod tidy;
