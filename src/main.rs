@@ -15,6 +15,12 @@ use tidemark::config::{Config, ConfigError};
 use tidemark::demo::DEFAULT_DAYS;
 use tidemark::table::OutputFormat;
 
+/// mimalloc instead of the system allocator: an ingest allocates on the parsing thread and
+/// frees on the writer's, where glibc's arenas contend (measured in the README's ingest
+/// benchmark section).
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 #[derive(Debug, Parser)]
 #[command(name = "tidemark", version, about = "Versioned case line lists, backfill-aware counts and alerts")]
 struct Cli {
