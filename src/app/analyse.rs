@@ -11,7 +11,7 @@ use crate::analysis::nowcast::{Nowcast, hazard, smooth};
 use crate::analysis::triangle::{self, Triangle};
 use crate::config::{AnalysisConfig, Config, DelayEnd, SourceConfig};
 use crate::model::Field;
-use crate::store::{Reader, Store};
+use crate::store::{DelayRow, Reader, Store};
 
 /// Horizons over which `auto` compares methods (the acceptance range).
 pub const AUTO_HORIZONS: usize = 7;
@@ -127,8 +127,12 @@ pub fn analyse_snapshot(
 ) -> Result<(usize, usize)> {
     let reader = Reader::open(&config.store.path)?;
     let Some(source_id) = reader.source_id(&source.name)? else { return Ok((0, 0)) };
+    let started = std::time::Instant::now();
     let nowcasts = nowcast_snapshot(store, &reader, config, source_id, snapshot_id)?;
+    tracing::debug!(snapshot_id, nowcasts, ms = started.elapsed().as_millis() as u64, "nowcasts stored");
+    let started = std::time::Instant::now();
     let delays = delays_snapshot(store, &reader, config, source_id, snapshot_id)?;
+    tracing::debug!(snapshot_id, delays, ms = started.elapsed().as_millis() as u64, "delay fits stored");
     Ok((nowcasts, delays))
 }
 
@@ -253,14 +257,18 @@ pub fn delay_observations(
         DelayEnd::FirstSeen => None,
     };
     let rows = reader.delay_rows(source_id, snapshot_id, from, to_field, stratum, age_edges)?;
-    Ok(rows
-        .into_iter()
-        .map(|r| {
-            let obs =
-                DelayObs { delay: (r.to - r.from).num_days(), horizon: Some((day - r.from).num_days()) };
-            (r.stratum, r.from, obs)
-        })
-        .collect())
+    Ok(expand_observations(day, rows))
+}
+
+/// One observation per record from counted rows: its delay, and its truncation horizon on
+/// the snapshot `day`.
+fn expand_observations(day: NaiveDate, rows: Vec<DelayRow>) -> Vec<(String, NaiveDate, DelayObs)> {
+    let mut out = Vec::with_capacity(rows.iter().map(|r| r.count as usize).sum());
+    for r in rows {
+        let obs = DelayObs { delay: (r.to - r.from).num_days(), horizon: Some((day - r.from).num_days()) };
+        out.extend(std::iter::repeat_n((r.stratum, r.from, obs), r.count as usize));
+    }
+    out
 }
 
 /// Fits every family to one set of observations (best AIC first) and summarises them.
@@ -270,7 +278,9 @@ pub fn fit_delays(obs: &[DelayObs], bootstrap: usize, seed: u64) -> (DelaySummar
     (delay::summarize(&delays), delay::fit_all(obs, &options, seed))
 }
 
-/// Fits the configured delay distributions (whole source).
+/// Fits the configured delay distributions (whole source), from one scan of the records for
+/// all pairs. The pairs are fitted on up to two threads (each fit is pure and seeded, so the
+/// results do not depend on the order) and written in configuration order.
 fn delays_snapshot(
     store: &mut Store,
     reader: &Reader,
@@ -278,20 +288,67 @@ fn delays_snapshot(
     source_id: i64,
     snapshot_id: i64,
 ) -> Result<usize> {
+    let pairs: Vec<(Field, Option<Field>)> = config
+        .analysis
+        .delays
+        .iter()
+        .map(|&(from, to)| match to {
+            DelayEnd::Field(field) => (from, Some(field)),
+            DelayEnd::FirstSeen => (from, None),
+        })
+        .collect();
+    let day = snapshot_day(reader, snapshot_id)?;
+    let started = std::time::Instant::now();
+    let counted = reader.delay_rows_of_pairs(source_id, snapshot_id, &pairs)?;
+    tracing::debug!(snapshot_id, ms = started.elapsed().as_millis() as u64, "delay observations read");
+    let jobs: Vec<(DelayEnd, Field, Vec<DelayRow>)> =
+        config.analysis.delays.iter().zip(counted).map(|(&(from, to), rows)| (to, from, rows)).collect();
+    let bootstrap = config.analysis.bootstrap;
+    let fitted = in_parallel(&jobs, 2, |(to, from, rows)| {
+        let obs: Vec<(DelayObs, u64)> = rows
+            .iter()
+            .map(|r| {
+                let obs =
+                    DelayObs { delay: (r.to - r.from).num_days(), horizon: Some((day - r.from).num_days()) };
+                (obs, r.count)
+            })
+            .collect();
+        (!obs.is_empty()).then(|| {
+            let seed = seed_for(snapshot_id, &TriangleKey::all(*from), to.name());
+            let options = FitOptions { bootstrap, ..FitOptions::default() };
+            delay::fit_all_counted(&obs, &options, seed)
+        })
+    });
     let mut written = 0;
-    for &(from, to) in &config.analysis.delays {
-        let obs: Vec<DelayObs> =
-            delay_observations(reader, source_id, snapshot_id, (from, to), None, &config.analysis.age_bands)?
-                .into_iter()
-                .map(|(_, _, o)| o)
-                .collect();
-        if obs.is_empty() {
-            continue;
-        }
-        let seed = seed_for(snapshot_id, &TriangleKey::all(from), to.name());
-        let (_, fits) = fit_delays(&obs, config.analysis.bootstrap, seed);
+    for ((to, from, _), fits) in jobs.iter().zip(fitted) {
+        let Some(fits) = fits else { continue };
         store.write_delay_fits(snapshot_id, source_id, (from.name(), to.name(), "all", ""), &fits)?;
         written += 1;
     }
     Ok(written)
+}
+
+/// `work` applied to every job on at most `threads` threads; the results in job order.
+fn in_parallel<J: Sync, R: Send>(jobs: &[J], threads: usize, work: impl Fn(&J) -> R + Sync) -> Vec<R> {
+    let next = std::sync::atomic::AtomicUsize::new(0);
+    let mut results: Vec<(usize, R)> = std::thread::scope(|scope| {
+        let workers: Vec<_> = (0..threads.clamp(1, jobs.len().max(1)))
+            .map(|_| {
+                scope.spawn(|| {
+                    let mut done = Vec::new();
+                    loop {
+                        let at = next.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+                        let Some(job) = jobs.get(at) else { break done };
+                        done.push((at, work(job)));
+                    }
+                })
+            })
+            .collect();
+        workers
+            .into_iter()
+            .flat_map(|w| w.join().unwrap_or_else(|panic| std::panic::resume_unwind(panic)))
+            .collect()
+    });
+    results.sort_unstable_by_key(|(at, _)| *at);
+    results.into_iter().map(|(_, r)| r).collect()
 }

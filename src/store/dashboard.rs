@@ -163,9 +163,7 @@ impl Reader {
             "SELECT v.valid_from, substr(n.as_of, 1, 10), v.onset_date
              FROM case_version v JOIN snapshot n ON n.snapshot_id = v.valid_from
              WHERE v.source_id = ?1 AND v.valid_from <= ?2 AND v.onset_date IS NOT NULL
-               AND NOT EXISTS (SELECT 1 FROM case_version e
-                               WHERE e.source_id = v.source_id AND e.case_key = v.case_key
-                                 AND e.valid_from < v.valid_from)
+               AND v.first_seen IS NULL
              ORDER BY v.valid_from",
         )?;
         let rows = stmt.query_map(params![source_id, until_snapshot], |r| {

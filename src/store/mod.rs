@@ -43,6 +43,7 @@ const MIGRATIONS: &[(i64, &str)] = &[
     (3, include_str!("../../migrations/0003_analysis.sql")),
     (4, include_str!("../../migrations/0004_quality_alerts.sql")),
     (5, include_str!("../../migrations/0005_access.sql")),
+    (6, include_str!("../../migrations/0006_ingest_speed.sql")),
 ];
 
 /// The schema version this build writes and understands.

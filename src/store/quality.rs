@@ -1,5 +1,6 @@
-//! Data-quality measures of one applied snapshot, computed in SQL with `GROUP BY` (one scan
-//! of the source's versions valid at the snapshot, never a row at a time in Rust) and stored
+//! Data-quality measures of one applied snapshot, computed in SQL with `GROUP BY` (from the
+//! previous snapshot's measures and the versions opened and closed since, or one scan of the
+//! versions valid at the snapshot; never a row at a time in Rust) and stored
 //! keyed by the snapshot: per canonical field the missing and invalid counts among all
 //! current records and among the records the snapshot added or changed, overall and per
 //! jurisdiction; the reporting lag of records first seen in the snapshot (median and 90th
@@ -7,6 +8,7 @@
 
 use std::collections::BTreeMap;
 
+use rusqlite::types::ValueRef;
 use rusqlite::{Transaction, params};
 
 use super::{Reader, Store, StoreError};
@@ -77,6 +79,19 @@ struct Counts {
 
 type CellKey = (&'static str, String, Field);
 
+/// Quality cells by key, before they are stored.
+type Cells = BTreeMap<CellKey, Counts>;
+
+/// One scan's sums for one jurisdiction (as stored) and "written by the snapshot or not".
+#[derive(Debug)]
+struct ScanGroup {
+    jurisdiction: Option<Vec<u8>>,
+    fresh: bool,
+    records: i64,
+    /// Per measured field: the NULL count and the invalid count.
+    per_field: Vec<(i64, i64)>,
+}
+
 /// One bin of a stored lag histogram: (as-of day, stratum kind, stratum, lag days, count).
 pub type LagBin = (String, String, String, f64, u64);
 
@@ -114,57 +129,151 @@ fn value_column(field: Field) -> &'static str {
     }
 }
 
-fn invalid_test(field: Field) -> String {
-    format!("(invalid IS NOT NULL AND instr(',' || invalid || ',', ',{},') > 0)", field.name())
+/// Whether a version's `invalid` column (comma-separated field names) lists `field`.
+fn lists_field(invalid: &[u8], field: Field) -> bool {
+    invalid.split(|b| *b == b',').any(|name| name == field.name().as_bytes())
 }
 
-/// One grouped scan: per jurisdiction and "written by this snapshot or not", the number of
-/// records, and per field the NULL and invalid counts; then summed into the four cells.
+/// Versions current at snapshot `?2` (the whole-scan baseline).
+const CURRENT_AT: &str = "valid_from <= ?2 AND (valid_to IS NULL OR valid_to > ?2)";
+
+/// Versions opened after the base snapshot `?3` and current at `?2`: added to the base.
+const OPENED_SINCE_BASE: &str =
+    "valid_from > ?3 AND valid_from <= ?2 AND (valid_to IS NULL OR valid_to > ?2)";
+
+/// Versions current at the base snapshot `?3` and closed by `?2`: taken from the base.
+const CLOSED_SINCE_BASE: &str = "valid_to > ?3 AND valid_to <= ?2 AND valid_from <= ?3";
+
+/// The missing and invalid counts of a snapshot, per cell. Incremental where it can be: the
+/// 'current' cells of the source's previous applied snapshot, plus the versions opened
+/// since, minus the versions closed since (a re-ingest touches a few thousand versions, not
+/// the million current ones). Without a usable base (the first snapshot, a base measured
+/// for other fields, or one whose measures were never stored) one grouped scan of the
+/// versions current at the snapshot; both ways give the same cells (tests/it/quality.rs).
 fn field_counts(
     tx: &Transaction<'_>,
     source_id: i64,
     snapshot_id: i64,
     fields: &[Field],
 ) -> Result<BTreeMap<CellKey, Counts>, StoreError> {
-    let mut select = String::new();
-    for field in fields {
-        select.push_str(&format!(", sum({} IS NULL), sum({})", value_column(*field), invalid_test(*field)));
-    }
-    let sql = format!(
-        "SELECT coalesce(jurisdiction, '{NO_JURISDICTION}'), valid_from = ?2, count(*){select}
-         FROM case_version
-         WHERE source_id = ?1 AND valid_from <= ?2 AND (valid_to IS NULL OR valid_to > ?2)
-         GROUP BY 1, 2"
-    );
-    let mut stmt = tx.prepare(&sql)?;
-    let mut rows = stmt.query(params![source_id, snapshot_id])?;
+    let Some((base_id, mut cells)) = base_counts(tx, source_id, snapshot_id, fields)? else {
+        let mut cells = BTreeMap::new();
+        add_grouped(tx, (source_id, snapshot_id, 0), fields, CURRENT_AT, 1, &mut cells)?;
+        return Ok(cells);
+    };
+    let ids = (source_id, snapshot_id, base_id);
+    add_grouped(tx, ids, fields, OPENED_SINCE_BASE, 1, &mut cells)?;
+    add_grouped(tx, ids, fields, CLOSED_SINCE_BASE, -1, &mut cells)?;
+    // A stratum left without records has no row in a whole scan either.
+    cells.retain(|_, c| c.records != 0);
+    Ok(cells)
+}
+
+/// The 'current' cells stored for the source's applied snapshot before `snapshot_id`, if
+/// that snapshot was measured for exactly `fields`.
+fn base_counts(
+    tx: &Transaction<'_>,
+    source_id: i64,
+    snapshot_id: i64,
+    fields: &[Field],
+) -> Result<Option<(i64, Cells)>, StoreError> {
+    let base: Option<i64> = tx.query_row(
+        "SELECT max(snapshot_id) FROM snapshot WHERE source_id = ?1 AND status = 'applied' AND snapshot_id < ?2",
+        params![source_id, snapshot_id],
+        |r| r.get(0),
+    )?;
+    let Some(base) = base else { return Ok(None) };
+    let mut stmt = tx.prepare(
+        "SELECT stratum_kind, stratum, field, records, missing, invalid
+         FROM quality WHERE snapshot_id = ?1 AND scope = 'current'",
+    )?;
+    let mut rows = stmt.query([base])?;
     let mut cells: BTreeMap<CellKey, Counts> = BTreeMap::new();
     while let Some(row) = rows.next()? {
-        let jurisdiction: String = row.get(0)?;
+        let (kind, stratum, name): (String, String, String) = (row.get(0)?, row.get(1)?, row.get(2)?);
+        let Some(field) = Field::parse(&name).filter(|f| fields.contains(f)) else { return Ok(None) };
+        let (records, missing, invalid): (i64, i64, i64) = (row.get(3)?, row.get(4)?, row.get(5)?);
+        let counts = Counts { records, nulls: missing + invalid, invalid };
+        cells.insert(("current", format!("{kind}\u{1f}{stratum}"), field), counts);
+    }
+    let measured: std::collections::BTreeSet<Field> = cells.keys().map(|(_, _, f)| *f).collect();
+    Ok((measured.len() == fields.len()).then_some((base, cells)))
+}
+
+/// One scan of the versions that `filter` selects (`?1` source, `?2` snapshot, `?3` base
+/// snapshot): per jurisdiction and "written by this snapshot or not", the number of
+/// versions and per field the NULL and invalid counts, added with `sign` into the 'current'
+/// cells (and, for versions the snapshot wrote, the 'new_changed' ones), overall and per
+/// jurisdiction. The rows are summed here rather than by `GROUP BY`, which would sort a
+/// million rows on a first snapshot only to produce a few dozen groups.
+fn add_grouped(
+    tx: &Transaction<'_>,
+    (source_id, snapshot_id, base_id): (i64, i64, i64),
+    fields: &[Field],
+    filter: &str,
+    sign: i64,
+    cells: &mut BTreeMap<CellKey, Counts>,
+) -> Result<(), StoreError> {
+    let nulls: Vec<String> = fields.iter().map(|f| format!("{} IS NULL", value_column(*f))).collect();
+    let sql = format!(
+        "SELECT jurisdiction, valid_from = ?2, invalid, {} FROM case_version WHERE source_id = ?1 AND {filter}",
+        nulls.join(", ")
+    );
+    let mut stmt = tx.prepare(&sql)?;
+    let mut rows = if stmt.parameter_count() == 3 {
+        stmt.query(params![source_id, snapshot_id, base_id])?
+    } else {
+        stmt.query(params![source_id, snapshot_id])?
+    };
+    let mut groups: Vec<ScanGroup> = Vec::new();
+    while let Some(row) = rows.next()? {
+        let jurisdiction = match row.get_ref(0)? {
+            ValueRef::Text(text) => Some(text),
+            _ => None,
+        };
         let fresh: bool = row.get(1)?;
-        let records: i64 = row.get(2)?;
+        let invalid = match row.get_ref(2)? {
+            ValueRef::Text(text) => text,
+            _ => &[],
+        };
+        // A linear search: a source has a few dozen jurisdictions at most, and this spares
+        // a million key allocations.
+        let found = groups.iter().position(|g| g.fresh == fresh && g.jurisdiction.as_deref() == jurisdiction);
+        let at = found.unwrap_or_else(|| {
+            groups.push(ScanGroup {
+                jurisdiction: jurisdiction.map(<[u8]>::to_vec),
+                fresh,
+                records: 0,
+                per_field: vec![(0, 0); fields.len()],
+            });
+            groups.len() - 1
+        });
+        let group = &mut groups[at];
+        group.records += 1;
         for (idx, field) in fields.iter().enumerate() {
-            let counts = Counts {
-                records,
-                nulls: row.get::<_, Option<i64>>(3 + 2 * idx)?.unwrap_or(0),
-                invalid: row.get::<_, Option<i64>>(4 + 2 * idx)?.unwrap_or(0),
-            };
-            let mut scopes = vec!["current"];
-            if fresh {
-                scopes.push("new_changed");
-            }
+            let null: bool = row.get(3 + idx)?;
+            group.per_field[idx].0 += i64::from(null);
+            group.per_field[idx].1 += i64::from(!invalid.is_empty() && lists_field(invalid, *field));
+        }
+    }
+    for ScanGroup { jurisdiction, fresh, records, per_field } in groups {
+        let jurisdiction = jurisdiction
+            .map(|bytes| String::from_utf8_lossy(&bytes).into_owned())
+            .unwrap_or_else(|| NO_JURISDICTION.to_string());
+        let scopes: &[&'static str] = if fresh { &["current", "new_changed"] } else { &["current"] };
+        for (field, (nulls, invalid)) in fields.iter().zip(per_field) {
             for scope in scopes {
-                for stratum in [("all", String::new()), ("jurisdiction", jurisdiction.clone())] {
-                    let key = (scope, format!("{}\u{1f}{}", stratum.0, stratum.1), *field);
+                for stratum in [("all", ""), ("jurisdiction", jurisdiction.as_str())] {
+                    let key = (*scope, format!("{}\u{1f}{}", stratum.0, stratum.1), *field);
                     let cell = cells.entry(key).or_default();
-                    cell.records += counts.records;
-                    cell.nulls += counts.nulls;
-                    cell.invalid += counts.invalid;
+                    cell.records += sign * records;
+                    cell.nulls += sign * nulls;
+                    cell.invalid += sign * invalid;
                 }
             }
         }
     }
-    Ok(cells)
+    Ok(())
 }
 
 fn insert_quality(
@@ -211,31 +320,41 @@ fn write_lag(
     // coalesce() needs two arguments; one field is just the column.
     let reference =
         if names.len() == 1 { names[0].clone() } else { format!("coalesce({})", names.join(", ")) };
+    // A version is its record's first when it has no `first_seen` (migration 0006).
     let sql = format!(
         "SELECT coalesce(c.jurisdiction, '{NO_JURISDICTION}'),
-                julianday(substr(n.as_of, 1, 10)) - julianday({reference}), count(*)
+                CAST(julianday(substr(n.as_of, 1, 10)) - julianday({reference}) AS INTEGER)
          FROM case_version c JOIN snapshot n ON n.snapshot_id = c.valid_from
-         WHERE c.valid_from = ?2 AND c.source_id = ?1
-           AND NOT EXISTS (SELECT 1 FROM case_version p
-                           WHERE p.source_id = c.source_id AND p.case_key = c.case_key AND p.valid_from < ?2)
-         GROUP BY 1, 2"
+         WHERE c.valid_from = ?2 AND c.source_id = ?1 AND c.first_seen IS NULL"
     );
-    let mut histograms: LagHistograms = BTreeMap::new();
+    // Summed here rather than by `GROUP BY` (which sorts every row): (jurisdiction, lag) -> n.
+    let mut counts: BTreeMap<(String, Option<i64>), i64> = BTreeMap::new();
     {
         let mut stmt = tx.prepare(&sql)?;
         let mut rows = stmt.query(params![source_id, snapshot_id])?;
+        let mut last: Option<(String, Option<i64>)> = None;
+        let mut run = 0i64;
         while let Some(row) = rows.next()? {
-            let jurisdiction: String = row.get(0)?;
-            let lag: Option<f64> = row.get(1)?;
-            let count: i64 = row.get(2)?;
-            for key in
-                [("all".to_string(), String::new()), ("jurisdiction".to_string(), jurisdiction.clone())]
-            {
-                let entry = histograms.entry(key).or_default();
-                entry.0 += count;
-                if let Some(lag) = lag {
-                    entry.1.push((lag, count as u64));
+            let key = (row.get::<_, String>(0)?, row.get::<_, Option<i64>>(1)?);
+            if last.as_ref() != Some(&key) {
+                if let Some(done) = last.replace(key) {
+                    *counts.entry(done).or_default() += run;
                 }
+                run = 0;
+            }
+            run += 1;
+        }
+        if let Some(done) = last {
+            *counts.entry(done).or_default() += run;
+        }
+    }
+    let mut histograms: LagHistograms = BTreeMap::new();
+    for ((jurisdiction, lag), count) in counts {
+        for key in [("all".to_string(), String::new()), ("jurisdiction".to_string(), jurisdiction.clone())] {
+            let entry = histograms.entry(key).or_default();
+            entry.0 += count;
+            if let Some(lag) = lag {
+                entry.1.push((lag as f64, count as u64));
             }
         }
     }

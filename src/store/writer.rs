@@ -342,6 +342,7 @@ impl<'s> Ingest<'s> {
                 close.execute((self.snapshot_id, version_id))?;
             }
         }
+        mark_first_seen(&self.tx, self.source_id, self.snapshot_id)?;
         if let Some(spec) = triangle {
             record_deltas(&self.tx, self.source_id, self.snapshot_id, spec)?;
         }
@@ -644,6 +645,31 @@ fn add_field_problem(
 
 /// The store's folder, where the spill file goes: it holds patient-level text, so it stays
 /// beside the store (a private folder) rather than in a shared temporary folder.
+/// Sets `first_seen` (the snapshot of the record's first version) on the versions snapshot
+/// `snapshot_id` wrote for records that had versions before: changed records, and removed
+/// ones that came back. On a source's first snapshot there are none, and the per-version
+/// look at the history is skipped. Returns the number of versions marked.
+fn mark_first_seen(tx: &Transaction<'_>, source_id: i64, snapshot_id: i64) -> Result<usize, StoreError> {
+    let history: bool = tx.query_row(
+        "SELECT EXISTS (SELECT 1 FROM snapshot WHERE source_id = ?1 AND status = 'applied' AND snapshot_id < ?2)",
+        params![source_id, snapshot_id],
+        |r| r.get(0),
+    )?;
+    if !history {
+        return Ok(0);
+    }
+    Ok(tx.execute(
+        "UPDATE case_version
+         SET first_seen = (SELECT min(p.valid_from) FROM case_version p
+                           WHERE p.source_id = case_version.source_id AND p.case_key = case_version.case_key)
+         WHERE source_id = ?1 AND valid_from = ?2
+           AND EXISTS (SELECT 1 FROM case_version p
+                       WHERE p.source_id = case_version.source_id AND p.case_key = case_version.case_key
+                         AND p.valid_from < ?2)",
+        params![source_id, snapshot_id],
+    )?)
+}
+
 fn spill_dir(store: &Path) -> PathBuf {
     match store.parent() {
         Some(parent) if !parent.as_os_str().is_empty() => parent.to_path_buf(),

@@ -8,6 +8,7 @@ mod bad_corpus;
 mod cli;
 mod crash;
 mod dashboard_browser;
+mod delays;
 mod exports;
 mod folder_source;
 mod history_props;

@@ -86,6 +86,17 @@ pub struct DelayFit {
 /// Negative delays are excluded (and counted in a warning); a horizon shorter than its delay
 /// (impossible for a record that was observed) is raised to the delay, with a warning.
 pub fn fit(obs: &[DelayObs], family: Family, options: &FitOptions, seed: u64) -> DelayFit {
+    fit_counted(&once_each(obs), family, options, seed)
+}
+
+/// Each observation counted once.
+fn once_each(obs: &[DelayObs]) -> Vec<(DelayObs, u64)> {
+    obs.iter().map(|o| (*o, 1)).collect()
+}
+
+/// `fit` of observations given with how many records share each: the same fit as with every
+/// record listed, in time and memory proportional to the distinct observations.
+pub fn fit_counted(obs: &[(DelayObs, u64)], family: Family, options: &FitOptions, seed: u64) -> DelayFit {
     let data = Data::new(obs, options.truncation);
     let mut warnings = data.warnings.clone();
     if data.n == 0 {
@@ -158,8 +169,13 @@ fn tail_check(dist: &Dist, longest_horizon: Option<i64>) -> Option<String> {
 
 /// Fits every family and sorts them by AIC, best first (fits without an AIC last).
 pub fn fit_all(obs: &[DelayObs], options: &FitOptions, seed: u64) -> Vec<DelayFit> {
+    fit_all_counted(&once_each(obs), options, seed)
+}
+
+/// `fit_all` of counted observations (see `fit_counted`).
+pub fn fit_all_counted(obs: &[(DelayObs, u64)], options: &FitOptions, seed: u64) -> Vec<DelayFit> {
     let mut fits: Vec<DelayFit> =
-        Family::ALL.into_iter().map(|family| fit(obs, family, options, seed)).collect();
+        Family::ALL.into_iter().map(|family| fit_counted(obs, family, options, seed)).collect();
     let key = |f: &DelayFit| if f.aic.is_nan() { f64::INFINITY } else { f.aic };
     fits.sort_by(|a, b| key(a).total_cmp(&key(b)));
     fits
@@ -202,47 +218,51 @@ struct Data {
 }
 
 impl Data {
-    fn new(obs: &[DelayObs], truncation: bool) -> Data {
-        let kept: Vec<&DelayObs> = obs.iter().filter(|o| o.delay >= 0).collect();
+    fn new(obs: &[(DelayObs, u64)], truncation: bool) -> Data {
+        let total = |pick: &dyn Fn(&DelayObs) -> bool| -> u64 {
+            obs.iter().filter(|(o, _)| pick(o)).map(|(_, count)| count).sum()
+        };
         let mut warnings = Vec::new();
-        let negative = obs.len() - kept.len();
+        let negative = total(&|o| o.delay < 0);
         if negative > 0 {
             warnings.push(format!(
                 "{negative} negative delays excluded from the fit (asymptomatic cases or \
                  data-entry errors)"
             ));
         }
-        let short = kept.iter().filter(|o| truncation && o.horizon.is_some_and(|t| t < o.delay)).count();
+        let short = total(&|o| o.delay >= 0 && truncation && o.horizon.is_some_and(|t| t < o.delay));
         if short > 0 {
             warnings.push(format!(
                 "{short} records had a horizon shorter than their delay; it was raised to the delay"
             ));
         }
-        let records: Vec<(i64, Option<i64>)> = kept
+        let records: Vec<((i64, Option<i64>), u64)> = obs
             .iter()
-            .map(|o| {
+            .filter(|(o, count)| o.delay >= 0 && *count > 0)
+            .map(|(o, count)| {
                 let horizon = o.horizon.filter(|_| truncation).map(|t| t.max(o.delay));
-                (o.delay, horizon)
+                ((o.delay, horizon), *count)
             })
             .collect();
-        let reach = records.iter().map(|&(d, t)| t.unwrap_or(d).max(d)).max().unwrap_or(0);
+        let reach = records.iter().map(|&((d, t), _)| t.unwrap_or(d).max(d)).max().unwrap_or(0);
         let longest_horizon = records
             .iter()
-            .map(|r| r.1)
+            .map(|r| r.0.1)
             .collect::<Option<Vec<i64>>>()
             .and_then(|horizons| horizons.into_iter().max());
-        let n = records.len();
-        let (mean, cv) = moments(records.iter().map(|r| r.0 as f64), n);
-        Data { design: Design::new(records), n, mean, cv, reach, longest_horizon, warnings }
+        let n = records.iter().map(|r| r.1).sum::<u64>() as usize;
+        let (mean, cv) = moments(records.iter().map(|&((d, _), count)| (d as f64, count as f64)), n);
+        Data { design: Design::from_counts(records), n, mean, cv, reach, longest_horizon, warnings }
     }
 }
 
 /// Mean and coefficient of variation of whole-day delays, for starting values. The variance is
 /// reduced by the 1/6 day² that daily censoring adds, and both are kept away from zero.
-fn moments(values: impl Iterator<Item = f64> + Clone, n: usize) -> (f64, f64) {
+/// `values` come with the number of records that share each.
+fn moments(values: impl Iterator<Item = (f64, f64)> + Clone, n: usize) -> (f64, f64) {
     let n = n.max(1) as f64;
-    let mean = values.clone().sum::<f64>() / n;
-    let variance = values.map(|v| (v - mean).powi(2)).sum::<f64>() / n;
+    let mean = values.clone().map(|(v, w)| w * v).sum::<f64>() / n;
+    let variance = values.map(|(v, w)| w * (v - mean).powi(2)).sum::<f64>() / n;
     let mean = mean.max(0.5);
     let variance = (variance - 1.0 / 6.0).max(0.01 * mean * mean);
     (mean, variance.sqrt() / mean)

@@ -83,11 +83,18 @@ pub(crate) struct Counts {
 
 impl Design {
     /// Groups `(delay, horizon)` records; delays must be non-negative.
+    #[cfg(test)]
     pub fn new(records: impl IntoIterator<Item = (i64, Option<i64>)>) -> Design {
+        Design::from_counts(records.into_iter().map(|record| (record, 1)))
+    }
+
+    /// Groups `(delay, horizon)` records given with how many records share them.
+    pub fn from_counts(records: impl IntoIterator<Item = ((i64, Option<i64>), u64)>) -> Design {
         let mut grouped: BTreeMap<(i64, Option<i64>), u64> = BTreeMap::new();
-        for record in records {
-            *grouped.entry(record).or_default() += 1;
+        for (record, count) in records {
+            *grouped.entry(record).or_default() += count;
         }
+        grouped.retain(|_, count| *count > 0);
         let mut points: Vec<i64> = grouped
             .keys()
             .flat_map(|&(d, tau)| {

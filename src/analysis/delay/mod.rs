@@ -16,7 +16,7 @@ mod optim;
 mod simulate;
 
 pub use dist::{Dist, Family};
-pub use fit::{DelayFit, FitOptions, Interval, fit, fit_all};
+pub use fit::{DelayFit, FitOptions, Interval, fit, fit_all, fit_all_counted, fit_counted};
 pub use likelihood::log_likelihood;
 
 /// One record's delay in days and its horizon.

@@ -177,7 +177,7 @@ fn build_panels(
     let delays: Vec<i64> = reader
         .delay_rows(source_id, snapshot_id, Field::OnsetDate, Some(Field::ReportDate), None, &[])?
         .iter()
-        .map(|r| (r.to - r.from).num_days())
+        .flat_map(|r| std::iter::repeat_n((r.to - r.from).num_days(), r.count as usize))
         .collect();
     let fit = reader.best_delay_fit(snapshot_id, Field::OnsetDate.name(), Field::ReportDate.name())?;
     let lags = shape::lag_trend(&reader.first_seen_lags(source_id, snapshot_id)?, shape::SNAPSHOT_COLUMNS);
