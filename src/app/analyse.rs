@@ -118,22 +118,48 @@ pub fn seed_for(snapshot_id: i64, key: &TriangleKey, method: &str) -> u64 {
 }
 
 /// After an applied snapshot: the nowcasts and the delay fits of that snapshot, stored with
-/// it. Returns how many of each were written.
+/// it, and `alongside` (the caller's other post-snapshot work, e.g. the quality measures) on
+/// this thread while the delay observations are read and fitted on others: the two are the
+/// longest steps and use different connections. Returns how many nowcasts and delay fits
+/// were written; `alongside` runs even when the analyses fail.
 pub fn analyse_snapshot(
     store: &mut Store,
     config: &Config,
     source: &SourceConfig,
     snapshot_id: i64,
+    alongside: impl FnOnce(&mut Store),
 ) -> Result<(usize, usize)> {
-    let reader = Reader::open(&config.store.path)?;
-    let Some(source_id) = reader.source_id(&source.name)? else { return Ok((0, 0)) };
-    let started = std::time::Instant::now();
-    let nowcasts = nowcast_snapshot(store, &reader, config, source_id, snapshot_id)?;
-    tracing::debug!(snapshot_id, nowcasts, ms = started.elapsed().as_millis() as u64, "nowcasts stored");
-    let started = std::time::Instant::now();
-    let delays = delays_snapshot(store, &reader, config, source_id, snapshot_id)?;
-    tracing::debug!(snapshot_id, delays, ms = started.elapsed().as_millis() as u64, "delay fits stored");
-    Ok((nowcasts, delays))
+    let opened =
+        Reader::open(&config.store.path).and_then(|reader| Ok((reader.source_id(&source.name)?, reader)));
+    let (source_id, reader) = match opened {
+        Ok((Some(source_id), reader)) => (source_id, reader),
+        Ok((None, _)) => {
+            alongside(store);
+            return Ok((0, 0));
+        }
+        Err(err) => {
+            alongside(store);
+            return Err(err.into());
+        }
+    };
+    std::thread::scope(|scope| {
+        let fitting = scope.spawn(|| {
+            let reader = Reader::open(&config.store.path)?;
+            delay_fits(&reader, config, source_id, snapshot_id)
+        });
+        let started = std::time::Instant::now();
+        let nowcasts = nowcast_snapshot(store, &reader, config, source_id, snapshot_id);
+        tracing::debug!(snapshot_id, ms = started.elapsed().as_millis() as u64, "nowcasts stored");
+        alongside(store);
+        let fits = fitting.join().unwrap_or_else(|panic| std::panic::resume_unwind(panic))?;
+        let nowcasts = nowcasts?;
+        let mut written = 0;
+        for ((from, to), fits) in fits {
+            store.write_delay_fits(snapshot_id, source_id, (from.name(), to.name(), "all", ""), &fits)?;
+            written += 1;
+        }
+        Ok((nowcasts, written))
+    })
 }
 
 /// Nowcasts every maintained triangle. The whole source gets every configured method;
@@ -278,16 +304,14 @@ pub fn fit_delays(obs: &[DelayObs], bootstrap: usize, seed: u64) -> (DelaySummar
     (delay::summarize(&delays), delay::fit_all(obs, &options, seed))
 }
 
-/// Fits the configured delay distributions (whole source), from one scan of the records for
-/// all pairs. The pairs are fitted on up to two threads (each fit is pure and seeded, so the
-/// results do not depend on the order) and written in configuration order.
-fn delays_snapshot(
-    store: &mut Store,
-    reader: &Reader,
-    config: &Config,
-    source_id: i64,
-    snapshot_id: i64,
-) -> Result<usize> {
+/// Delay fits per configured (start field, end) pair.
+type PairFits = Vec<((Field, DelayEnd), Vec<DelayFit>)>;
+
+/// The configured delay distributions (whole source) fitted as of a snapshot, from one scan
+/// of the records for all pairs, in configuration order; pairs without observations are
+/// left out. The pairs are fitted on up to two threads (each fit is pure and seeded, so the
+/// results do not depend on the order).
+fn delay_fits(reader: &Reader, config: &Config, source_id: i64, snapshot_id: i64) -> Result<PairFits> {
     let pairs: Vec<(Field, Option<Field>)> = config
         .analysis
         .delays
@@ -301,10 +325,10 @@ fn delays_snapshot(
     let started = std::time::Instant::now();
     let counted = reader.delay_rows_of_pairs(source_id, snapshot_id, &pairs)?;
     tracing::debug!(snapshot_id, ms = started.elapsed().as_millis() as u64, "delay observations read");
-    let jobs: Vec<(DelayEnd, Field, Vec<DelayRow>)> =
-        config.analysis.delays.iter().zip(counted).map(|(&(from, to), rows)| (to, from, rows)).collect();
+    let jobs: Vec<((Field, DelayEnd), Vec<DelayRow>)> =
+        config.analysis.delays.iter().copied().zip(counted).collect();
     let bootstrap = config.analysis.bootstrap;
-    let fitted = in_parallel(&jobs, 2, |(to, from, rows)| {
+    let fitted = in_parallel(&jobs, 2, |((from, to), rows)| {
         let obs: Vec<(DelayObs, u64)> = rows
             .iter()
             .map(|r| {
@@ -319,13 +343,7 @@ fn delays_snapshot(
             delay::fit_all_counted(&obs, &options, seed)
         })
     });
-    let mut written = 0;
-    for ((to, from, _), fits) in jobs.iter().zip(fitted) {
-        let Some(fits) = fits else { continue };
-        store.write_delay_fits(snapshot_id, source_id, (from.name(), to.name(), "all", ""), &fits)?;
-        written += 1;
-    }
-    Ok(written)
+    Ok(jobs.into_iter().zip(fitted).filter_map(|((pair, _), fits)| Some((pair, fits?))).collect())
 }
 
 /// `work` applied to every job on at most `threads` threads; the results in job order.

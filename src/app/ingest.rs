@@ -137,9 +137,10 @@ fn skipped_for_shutdown(
     skip
 }
 
-/// Recomputes the nowcasts and delay fits after an applied snapshot. A failure here is
-/// logged, not returned: the snapshot itself is applied and safe, and the next one
-/// recomputes. Each step is skipped once `cancelled` says shutdown has been asked.
+/// Recomputes the nowcasts, delay fits and quality measures after an applied snapshot (the
+/// quality measures while the delays are fitted). A failure here is logged, not returned:
+/// the snapshot itself is applied and safe, and the next one recomputes. Each step is
+/// skipped once `cancelled` says shutdown has been asked.
 fn analyse_applied(
     store: &mut Store,
     config: &Config,
@@ -151,17 +152,19 @@ fn analyse_applied(
         return;
     }
     let started = std::time::Instant::now();
-    match super::analyse::analyse_snapshot(store, config, source, snapshot_id) {
+    let quality = |store: &mut Store| {
+        if !skipped_for_shutdown(cancelled, source, snapshot_id, "quality measures") {
+            measure_applied(store, config, source, snapshot_id);
+        }
+    };
+    match super::analyse::analyse_snapshot(store, config, source, snapshot_id, quality) {
         Ok((nowcasts, delay_fits)) => tracing::debug!(
             source = %source.name, snapshot_id, nowcasts, delay_fits,
-            ms = started.elapsed().as_millis() as u64, "analyses stored"
+            ms = started.elapsed().as_millis() as u64, "analyses and quality measures stored"
         ),
         Err(err) => {
             tracing::warn!(source = %source.name, snapshot_id, error = %format!("{err:#}"), "analyses not computed")
         }
-    }
-    if !skipped_for_shutdown(cancelled, source, snapshot_id, "quality measures") {
-        measure_applied(store, config, source, snapshot_id);
     }
 }
 
