@@ -144,6 +144,27 @@ pub(super) fn record_deltas(
 /// One triangle cell of `record_deltas`: reference date, stratum (NULL: none), net change.
 type Group<'t> = (&'t [u8], Option<&'t [u8]>, i64);
 
+/// One pair's sums as delay rows, oldest start first: (start text id, end text id) -> count,
+/// or with `first_seen` (start text id, first snapshot id) -> count, the snapshot read as its
+/// day. Sums whose dates do not parse are left out, as `delay_rows` leaves them out.
+fn counted_rows(
+    sum: &HashMap<(u32, i64), u64>,
+    first_seen: bool,
+    texts: &Texts,
+    days: &HashMap<i64, NaiveDate>,
+) -> Vec<DelayRow> {
+    let date = |id: u32| texts.text(id).and_then(|b| std::str::from_utf8(b).ok()?.parse::<NaiveDate>().ok());
+    let mut rows: Vec<DelayRow> = sum
+        .iter()
+        .filter_map(|(&(start, end), &count)| {
+            let to = if first_seen { *days.get(&end)? } else { date(u32::try_from(end).ok()?)? };
+            Some(DelayRow { from: date(start)?, to, stratum: String::new(), count })
+        })
+        .collect();
+    rows.sort_unstable_by_key(|r| (r.from, r.to));
+    rows
+}
+
 /// Distinct texts of one `record_deltas` pass, by small ids (0 is NULL), so that summing a
 /// version into every triangle allocates nothing.
 #[derive(Debug, Default)]
@@ -515,24 +536,11 @@ impl Reader {
             }
         }
         let days = if first_seen { self.snapshot_days(source_id)? } else { HashMap::new() };
-        let date =
-            |bytes: Option<&[u8]>| bytes.and_then(|b| std::str::from_utf8(b).ok()?.parse::<NaiveDate>().ok());
-        let mut out = Vec::with_capacity(pairs.len());
-        for ((_, end), sum) in plan.iter().zip(sums) {
-            let mut rows: Vec<DelayRow> = sum
-                .into_iter()
-                .filter_map(|((start, finish), count)| {
-                    let to = match end {
-                        Some(_) => date(texts.text(finish as u32))?,
-                        None => *days.get(&finish)?,
-                    };
-                    Some(DelayRow { from: date(texts.text(start))?, to, stratum: String::new(), count })
-                })
-                .collect();
-            rows.sort_unstable_by_key(|r| (r.from, r.to));
-            out.push(rows);
-        }
-        Ok(out)
+        Ok(plan
+            .iter()
+            .zip(sums)
+            .map(|((_, end), sum)| counted_rows(&sum, end.is_none(), &texts, &days))
+            .collect())
     }
 
     /// The as-of day of every snapshot of a source, by id.
