@@ -643,8 +643,6 @@ fn add_field_problem(
     Ok(())
 }
 
-/// The store's folder, where the spill file goes: it holds patient-level text, so it stays
-/// beside the store (a private folder) rather than in a shared temporary folder.
 /// Sets `first_seen` (the snapshot of the record's first version) on the versions snapshot
 /// `snapshot_id` wrote for records that had versions before: changed records, and removed
 /// ones that came back. On a source's first snapshot there are none, and the per-version
@@ -670,6 +668,8 @@ fn mark_first_seen(tx: &Transaction<'_>, source_id: i64, snapshot_id: i64) -> Re
     )?)
 }
 
+/// The store's folder, where the spill file goes: it holds patient-level text, so it stays
+/// beside the store (a private folder) rather than in a shared temporary folder.
 fn spill_dir(store: &Path) -> PathBuf {
     match store.parent() {
         Some(parent) if !parent.as_os_str().is_empty() => parent.to_path_buf(),
