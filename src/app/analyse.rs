@@ -278,11 +278,7 @@ pub fn delay_observations(
     age_edges: &[u32],
 ) -> Result<Vec<(String, NaiveDate, DelayObs)>> {
     let day = snapshot_day(reader, snapshot_id)?;
-    let to_field = match to {
-        DelayEnd::Field(field) => Some(field),
-        DelayEnd::FirstSeen => None,
-    };
-    let rows = reader.delay_rows(source_id, snapshot_id, from, to_field, stratum, age_edges)?;
+    let rows = reader.delay_rows(source_id, snapshot_id, from, to.field(), stratum, age_edges)?;
     Ok(expand_observations(day, rows))
 }
 
@@ -291,10 +287,15 @@ pub fn delay_observations(
 fn expand_observations(day: NaiveDate, rows: Vec<DelayRow>) -> Vec<(String, NaiveDate, DelayObs)> {
     let mut out = Vec::with_capacity(rows.iter().map(|r| r.count as usize).sum());
     for r in rows {
-        let obs = DelayObs { delay: (r.to - r.from).num_days(), horizon: Some((day - r.from).num_days()) };
+        let obs = observation(day, &r);
         out.extend(std::iter::repeat_n((r.stratum, r.from, obs), r.count as usize));
     }
     out
+}
+
+/// The delay of a row's records and their truncation horizon on the snapshot `day`.
+fn observation(day: NaiveDate, row: &DelayRow) -> DelayObs {
+    DelayObs { delay: (row.to - row.from).num_days(), horizon: Some((day - row.from).num_days()) }
 }
 
 /// Fits every family to one set of observations (best AIC first) and summarises them.
@@ -312,15 +313,8 @@ type PairFits = Vec<((Field, DelayEnd), Vec<DelayFit>)>;
 /// left out. The pairs are fitted on up to two threads (each fit is pure and seeded, so the
 /// results do not depend on the order).
 fn delay_fits(reader: &Reader, config: &Config, source_id: i64, snapshot_id: i64) -> Result<PairFits> {
-    let pairs: Vec<(Field, Option<Field>)> = config
-        .analysis
-        .delays
-        .iter()
-        .map(|&(from, to)| match to {
-            DelayEnd::Field(field) => (from, Some(field)),
-            DelayEnd::FirstSeen => (from, None),
-        })
-        .collect();
+    let pairs: Vec<(Field, Option<Field>)> =
+        config.analysis.delays.iter().map(|&(from, to)| (from, to.field())).collect();
     let day = snapshot_day(reader, snapshot_id)?;
     let started = std::time::Instant::now();
     let counted = reader.delay_rows_of_pairs(source_id, snapshot_id, &pairs)?;
@@ -329,14 +323,7 @@ fn delay_fits(reader: &Reader, config: &Config, source_id: i64, snapshot_id: i64
         config.analysis.delays.iter().copied().zip(counted).collect();
     let bootstrap = config.analysis.bootstrap;
     let fitted = in_parallel(&jobs, 2, |((from, to), rows)| {
-        let obs: Vec<(DelayObs, u64)> = rows
-            .iter()
-            .map(|r| {
-                let obs =
-                    DelayObs { delay: (r.to - r.from).num_days(), horizon: Some((day - r.from).num_days()) };
-                (obs, r.count)
-            })
-            .collect();
+        let obs: Vec<(DelayObs, u64)> = rows.iter().map(|r| (observation(day, r), r.count)).collect();
         (!obs.is_empty()).then(|| {
             let seed = seed_for(snapshot_id, &TriangleKey::all(*from), to.name());
             let options = FitOptions { bootstrap, ..FitOptions::default() };

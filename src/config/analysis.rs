@@ -20,6 +20,14 @@ impl DelayEnd {
         }
     }
 
+    /// The end's date field; `None` for the day the record first appeared.
+    pub fn field(self) -> Option<Field> {
+        match self {
+            DelayEnd::Field(field) => Some(field),
+            DelayEnd::FirstSeen => None,
+        }
+    }
+
     pub fn parse(text: &str) -> Option<DelayEnd> {
         match text.trim() {
             "first_seen" | "first-seen" => Some(DelayEnd::FirstSeen),
