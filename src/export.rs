@@ -8,6 +8,10 @@
 //! Files hold patient-level data: they are created with mode 0600, written under a temporary
 //! name next to the target and renamed into place when complete, so a failed export leaves
 //! no partial file.
+//!
+//! CSV text cells that a spreadsheet would run as a formula get a leading apostrophe
+//! (`table::spreadsheet_safe`); `ExportFormat::CsvRaw` (`--raw`) writes them exactly.
+//! Parquet is typed and always exact.
 
 use std::fs::{self, File, OpenOptions};
 use std::io::{BufWriter, Write};
@@ -21,7 +25,7 @@ use parquet::file::properties::WriterProperties;
 use parquet::file::writer::{SerializedColumnWriter, SerializedFileWriter};
 
 use crate::store::{ColumnKind, StoreError};
-use crate::table::Cell;
+use crate::table::{Cell, spreadsheet_safe};
 
 /// Rows per Parquet row group: large enough for efficient columns, small enough that a
 /// million-row line list is never buffered whole.
@@ -30,8 +34,22 @@ const ROW_GROUP_ROWS: usize = 65_536;
 /// File format of an export.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
 pub enum ExportFormat {
+    /// CSV with text cells made safe for spreadsheets.
     Csv,
     Parquet,
+    /// CSV with every cell exactly as stored: `--format csv --raw`, not a `--format` value.
+    #[value(skip)]
+    CsvRaw,
+}
+
+impl ExportFormat {
+    /// The format `--raw` asks for: CSV becomes exact CSV; Parquet is exact already.
+    pub fn with_raw(self, raw: bool) -> ExportFormat {
+        match self {
+            ExportFormat::Csv if raw => ExportFormat::CsvRaw,
+            other => other,
+        }
+    }
 }
 
 #[derive(Debug, thiserror::Error)]
@@ -61,8 +79,10 @@ impl std::fmt::Debug for ExportWriter {
     }
 }
 
+/// The writer of each format; CSV's `exact`: cells as stored (`--raw`), else text cells made
+/// safe for spreadsheets.
 enum Inner {
-    Csv(csv::Writer<BufWriter<File>>),
+    Csv { writer: csv::Writer<BufWriter<File>>, exact: bool },
     Parquet { writer: SerializedFileWriter<File>, buffer: Vec<Vec<Cell>> },
 }
 
@@ -77,12 +97,12 @@ impl ExportWriter {
         let temp = temp_path(target);
         let file = create_private(&temp)?;
         let inner = match format {
-            ExportFormat::Csv => {
+            ExportFormat::Csv | ExportFormat::CsvRaw => {
                 let mut writer = csv::Writer::from_writer(BufWriter::new(file));
                 writer
                     .write_record(columns.iter().map(|(name, _)| *name))
                     .map_err(|e| io_error(&temp, e.into()))?;
-                Inner::Csv(writer)
+                Inner::Csv { writer, exact: format == ExportFormat::CsvRaw }
             }
             ExportFormat::Parquet => {
                 let schema = parquet::schema::parser::parse_message_type(&message_type(table_name, columns))
@@ -100,8 +120,9 @@ impl ExportWriter {
     /// Adds one row, its cells in column order.
     pub fn push(&mut self, row: Vec<Cell>) -> Result<(), ExportError> {
         match &mut self.inner {
-            Inner::Csv(writer) => {
-                writer.write_record(row.iter().map(csv_text)).map_err(|e| io_error(&self.temp, e.into()))
+            Inner::Csv { writer, exact } => {
+                let cells = row.iter().map(|cell| csv_cell(cell, *exact));
+                writer.write_record(cells).map_err(|e| io_error(&self.temp, e.into()))
             }
             Inner::Parquet { writer, buffer } => {
                 buffer.push(row);
@@ -117,7 +138,7 @@ impl ExportWriter {
     pub fn finish(self) -> Result<PathBuf, ExportError> {
         let ExportWriter { target, temp, columns, inner } = self;
         let done = (|| match inner {
-            Inner::Csv(writer) => {
+            Inner::Csv { writer, .. } => {
                 let mut out = writer.into_inner().map_err(|e| io_error(&temp, e.into_error()))?;
                 out.flush().map_err(|e| io_error(&temp, e))?;
                 out.get_ref().sync_all().map_err(|e| io_error(&temp, e))
@@ -255,7 +276,15 @@ fn write_column<'c>(
     written.map(|_| ()).map_err(|e| parquet_error(path, e))
 }
 
-/// A cell as CSV text: empty when missing; reals in full precision.
+/// A cell of a CSV export: its text, made safe for spreadsheets unless `exact`.
+fn csv_cell(cell: &Cell, exact: bool) -> String {
+    match cell {
+        Cell::Text(t) if !exact => spreadsheet_safe(t).into_owned(),
+        other => csv_text(other),
+    }
+}
+
+/// A cell as text, exactly: empty when missing; reals in full precision.
 fn csv_text(cell: &Cell) -> String {
     match cell {
         Cell::Null => String::new(),
@@ -306,6 +335,18 @@ mod tests {
             "message line_list {\n  OPTIONAL BYTE_ARRAY key (UTF8);\n  OPTIONAL INT32 onset (DATE);\n  OPTIONAL INT64 n;\n}"
         );
         assert!(parquet::schema::parser::parse_message_type(&text).is_ok());
+    }
+
+    #[test]
+    fn csv_cells_are_safe_for_spreadsheets_unless_exact() {
+        let formula = Cell::Text("=cmd|' /C calc'!A0".into());
+        assert_eq!(csv_cell(&formula, false), "'=cmd|' /C calc'!A0");
+        assert_eq!(csv_cell(&formula, true), "=cmd|' /C calc'!A0");
+        assert_eq!(csv_cell(&Cell::Int(-3), false), "-3");
+        assert_eq!(csv_cell(&Cell::Real(-0.5), false), "-0.5");
+        assert_eq!(csv_cell(&Cell::Null, false), "");
+        assert_eq!(ExportFormat::Csv.with_raw(true), ExportFormat::CsvRaw);
+        assert_eq!(ExportFormat::Parquet.with_raw(true), ExportFormat::Parquet);
     }
 
     #[test]

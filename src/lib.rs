@@ -16,6 +16,7 @@
 //! - [`alert`]: signal vocabulary and the pure alert rules (quality, lag, volume, staleness,
 //!   count aberration) that turn measured aggregates into signals.
 //! - [`table`]: listings rendered as text, CSV or JSON.
+//! - [`text`]: outside text (file names, URLs) escaped before it reaches a log or a terminal.
 //! - [`metrics`]: the daemon's counters and their Prometheus text.
 //! - [`export`]: line lists, nowcasts and delay fits written as CSV or Parquet (files 0600).
 //! - [`serve`]: HTTP edges (ops endpoints, the dashboard; the demo's extract server); read-only.
@@ -36,3 +37,4 @@ pub mod serve;
 pub mod source;
 pub mod store;
 pub mod table;
+pub mod text;

@@ -36,6 +36,17 @@ struct Listing {
     /// Output format.
     #[arg(long, value_enum, default_value = "table")]
     format: OutputFormat,
+    /// CSV cells exactly as stored: no apostrophe before text that starts like a
+    /// spreadsheet formula (=, +, -, @, tab, carriage return).
+    #[arg(long)]
+    raw: bool,
+}
+
+impl Listing {
+    /// The format to render: `--format`, with `--raw` applied.
+    fn output(&self) -> OutputFormat {
+        self.format.with_raw(self.raw)
+    }
 }
 
 #[derive(Debug, Subcommand)]
@@ -220,6 +231,10 @@ enum Command {
         format: tidemark::export::ExportFormat,
         #[arg(long, value_name = "FILE")]
         out: PathBuf,
+        /// CSV cells exactly as stored: no apostrophe before text that starts like a
+        /// spreadsheet formula (=, +, -, @, tab, carriage return).
+        #[arg(long)]
+        raw: bool,
     },
     /// Generate the invented scenario and run the whole pipeline on it.
     Demo {
@@ -359,6 +374,10 @@ fn run(cli: Cli) -> Result<u8> {
         Command::CheckConfig => commands::check_config(&load(flag)?),
         Command::Ingest { file, source, as_of } => {
             let config = load(flag)?;
+            // The file name is outside text: escaped, so it cannot forge a log line or drive
+            // the terminal.
+            let name = tidemark::text::escape_path(&file);
+            tracing::info!(target: "tidemark::progress", source = %source, file = %name, "ingesting");
             let outcome = commands::ingest(&config, &file, &source, as_of.as_deref())?;
             println!("{}", outcome.summary(&source));
             for line in commands::problem_lines(&config, outcome.snapshot_id, 20)? {
@@ -369,13 +388,13 @@ fn run(cli: Cli) -> Result<u8> {
         Command::Snapshots { action, source, listing } => {
             let config = load(flag)?;
             match action {
-                None => commands::snapshots(&config, source.as_deref(), listing.format)?,
+                None => commands::snapshots(&config, source.as_deref(), listing.output())?,
                 Some(SnapshotAction::Release { id }) => commands::release(&config, id)?,
                 Some(SnapshotAction::Reject { id, note }) => commands::reject(&config, id, note.as_deref())?,
             }
         }
         Command::History { case_key, source, listing } => {
-            commands::history(&load(flag)?, &case_key, &source, listing.format)?
+            commands::history(&load(flag)?, &case_key, &source, listing.output())?
         }
         Command::Curve { source, by, as_of, stratify, listing } => {
             let args = CurveArgs {
@@ -383,7 +402,7 @@ fn run(cli: Cli) -> Result<u8> {
                 by: &by,
                 as_of: as_of.as_deref(),
                 stratify: stratify.as_deref(),
-                format: listing.format,
+                format: listing.output(),
             };
             commands::curve(&load(flag)?, &args)?
         }
@@ -394,7 +413,7 @@ fn run(cli: Cli) -> Result<u8> {
                 as_of: as_of.as_deref(),
                 method: &method,
                 stratify: stratify.as_deref(),
-                format: listing.format,
+                format: listing.output(),
             };
             commands::nowcast(&load(flag)?, &args)?
         }
@@ -405,7 +424,7 @@ fn run(cli: Cli) -> Result<u8> {
                 from: from.as_deref(),
                 to: to.as_deref(),
                 lag,
-                format: listing.format,
+                format: listing.output(),
             };
             commands::backtest(&load(flag)?, &args)?
         }
@@ -419,20 +438,20 @@ fn run(cli: Cli) -> Result<u8> {
                 stratify: stratify.as_deref(),
                 by_week,
                 compare_by: compare_by.as_deref(),
-                format: listing.format,
+                format: listing.output(),
             };
             commands::delays(&load(flag)?, &args)?
         }
         Command::Query { sql, max_rows, timeout, listing } => {
             let config = load(flag)?;
             let limits = query_limits(&config, max_rows, timeout.as_deref())?;
-            commands::query(&config, &sql, limits, listing.format)?
+            commands::query(&config, &sql, limits, listing.output())?
         }
         Command::Token { action } => {
             let config = load(flag)?;
             match action {
                 TokenAction::Create { name, scope } => access::token_create(&config, &name, &scope)?,
-                TokenAction::List { listing } => access::token_list(&config, listing.format)?,
+                TokenAction::List { listing } => access::token_list(&config, listing.output())?,
                 TokenAction::Revoke { name } => access::token_revoke(&config, &name)?,
             }
         }
@@ -443,12 +462,12 @@ fn run(cli: Cli) -> Result<u8> {
             return Ok(0);
         }
         Command::Quality { source, snapshot, listing } => {
-            tidemark::app::quality::quality(&load(flag)?, &source, snapshot, listing.format)?
+            tidemark::app::quality::quality(&load(flag)?, &source, snapshot, listing.output())?
         }
         Command::Alerts { action, all, listing } => {
             let config = load(flag)?;
             match action {
-                None => tidemark::app::alerting::list(&config, all, listing.format)?,
+                None => tidemark::app::alerting::list(&config, all, listing.output())?,
                 Some(AlertAction::Ack { id, note }) => tidemark::app::alerting::ack(&config, id, &note)?,
                 Some(AlertAction::Test) => tidemark::app::alerting::test(&config)?,
             }
@@ -459,15 +478,15 @@ fn run(cli: Cli) -> Result<u8> {
             commands::run_daemon(config, !no_ops)?;
             return Ok(0);
         }
-        Command::Status { listing } => commands::status(&load(flag)?, listing.format)?,
+        Command::Status { listing } => commands::status(&load(flag)?, listing.output())?,
         Command::Backup { dest } => commands::backup(&load(flag)?, &dest)?,
         Command::Restore { backup } => commands::restore(&load(flag)?, &backup)?,
-        Command::Export { source, as_of, table, format, out } => {
+        Command::Export { source, as_of, table, format, out, raw } => {
             let args = tidemark::app::export::ExportArgs {
                 source: &source,
                 as_of: as_of.as_deref(),
                 table: &table,
-                format,
+                format: format.with_raw(raw),
                 out: &out,
             };
             tidemark::app::export::export(&load(flag)?, &args)?.summary()

@@ -2,6 +2,9 @@
 //! through `store`, `extract` and `demo`, and returns the text to print. `main` parses the
 //! command line and chooses the exit code.
 
+use std::fs::Permissions;
+use std::io::Write as _;
+use std::os::unix::fs::{OpenOptionsExt, PermissionsExt};
 use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result, bail};
@@ -12,6 +15,7 @@ use crate::config::{self, Config, SourceConfig};
 use crate::model::{Field, SnapshotStatus};
 use crate::store::{Reader, Store};
 use crate::table::{Cell, OutputFormat, Table};
+use crate::text::escape_path;
 
 /// A mistake in how tidemark was called (exit code 2), as opposed to a failure (exit code 1).
 #[derive(Debug, thiserror::Error)]
@@ -52,28 +56,55 @@ fn source<'c>(config: &'c Config, name: &str) -> Result<&'c SourceConfig> {
     })
 }
 
-/// `tidemark init [DIR]`
+/// Mode of the folders `init` creates: owner only (they will hold extracts and the store).
+const PRIVATE_DIR: u32 = 0o700;
+
+/// Mode of the config `init` writes: owner only (it will name hosts and secrets' variables).
+const PRIVATE_FILE: u32 = 0o600;
+
+/// `tidemark init [DIR]`: folders 0700 and the config 0600, whatever the umask; folders that
+/// exist already keep their mode.
 pub fn init(dir: &Path) -> Result<String> {
-    std::fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
+    create_private_folders(dir)?;
     let path = dir.join("tidemark.toml");
     if path.exists() {
-        bail!("{} already exists; not overwriting it", path.display());
+        bail!("{} already exists; not overwriting it", escape_path(&path));
     }
-    std::fs::write(&path, config::EXAMPLE).with_context(|| format!("writing {}", path.display()))?;
+    write_private_new(&path, config::EXAMPLE).with_context(|| format!("writing {}", escape_path(&path)))?;
     let config = Config::load(&path)?;
     for source in &config.sources {
         if let config::Location::Folder(folder) = &source.location {
-            let path = &folder.path;
-            std::fs::create_dir_all(path).with_context(|| format!("creating {}", path.display()))?;
+            create_private_folders(&folder.path)?;
         }
     }
+    create_private_folders(config.store.path.parent().unwrap_or(Path::new(".")))?;
     Store::open(&config.store.path)?;
     Ok(format!(
         "wrote {}\ncreated store {}\nedit the [[source]] tables, then: tidemark --config {} check-config\n",
-        path.display(),
-        config.store.path.display(),
-        path.display()
+        escape_path(&path),
+        escape_path(&config.store.path),
+        escape_path(&path)
     ))
+}
+
+/// Creates `path` and its missing parents, each set to 0700 (the umask could have opened or
+/// narrowed them); the folders that already existed are left as they are.
+fn create_private_folders(path: &Path) -> Result<()> {
+    let missing: Vec<&Path> = path.ancestors().filter(|p| !p.as_os_str().is_empty() && !p.exists()).collect();
+    let creating = || format!("creating {}", escape_path(path));
+    crate::store::create_private_dir(path).with_context(creating)?;
+    for folder in missing {
+        std::fs::set_permissions(folder, Permissions::from_mode(PRIVATE_DIR)).with_context(creating)?;
+    }
+    Ok(())
+}
+
+/// Writes a new file (refusing an existing one) with mode 0600 whatever the umask.
+fn write_private_new(path: &Path, text: &str) -> std::io::Result<()> {
+    let mut file = std::fs::OpenOptions::new().write(true).create_new(true).mode(PRIVATE_FILE).open(path)?;
+    file.set_permissions(Permissions::from_mode(PRIVATE_FILE))?;
+    file.write_all(text.as_bytes())?;
+    file.sync_all()
 }
 
 /// `tidemark check-config`
@@ -395,11 +426,11 @@ pub fn status(config: &Config, format: OutputFormat) -> Result<String> {
 pub fn backup(config: &Config, dest: &Path) -> Result<String> {
     let summary = crate::store::backup::backup(&config.store.path, dest)?;
     Ok(format!(
-        "wrote {} ({} bytes, schema version {}); back up {} as well to keep every extract's bytes\n",
-        dest.display(),
+        "wrote {} ({} bytes, schema version {}, mode 0600); back up {} as well to keep every extract's bytes\n",
+        escape_path(dest),
         summary.bytes,
         summary.schema_version,
-        config.store.archive.display()
+        escape_path(&config.store.archive)
     ))
 }
 
@@ -407,9 +438,9 @@ pub fn backup(config: &Config, dest: &Path) -> Result<String> {
 pub fn restore(config: &Config, from: &Path) -> Result<String> {
     let summary = crate::store::backup::restore(from, &config.store.path)?;
     Ok(format!(
-        "restored {} from {} ({} bytes, schema version {}); migrations run at the next open\n",
-        config.store.path.display(),
-        from.display(),
+        "restored {} from {} ({} bytes, schema version {}, mode 0600); migrations run at the next open\n",
+        escape_path(&config.store.path),
+        escape_path(from),
         summary.bytes,
         summary.schema_version
     ))

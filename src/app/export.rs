@@ -1,6 +1,6 @@
 //! `tidemark export`: one table (the line list, the nowcasts or the delay fits) as of a
 //! snapshot, written as CSV or Parquet to a file with mode 0600. The store streams the rows;
-//! `crate::export` writes them.
+//! `crate::export` writes them (CSV text cells safe for spreadsheets unless `--raw`).
 
 use std::path::{Path, PathBuf};
 
@@ -10,6 +10,7 @@ use super::commands::{UsageError, parse_time_arg};
 use crate::config::Config;
 use crate::export::{ExportFormat, ExportWriter};
 use crate::store::{ExportTable, Reader, time_text};
+use crate::text::escape_path;
 
 /// What `tidemark export` was asked to do.
 #[derive(Debug, Clone)]
@@ -17,6 +18,7 @@ pub struct ExportArgs<'a> {
     pub source: &'a str,
     pub as_of: Option<&'a str>,
     pub table: &'a str,
+    /// With `--raw` applied (`ExportFormat::with_raw`).
     pub format: ExportFormat,
     pub out: &'a Path,
 }
@@ -39,7 +41,7 @@ impl ExportOutcome {
             self.table.name(),
             self.snapshot_id,
             self.as_of,
-            self.path.display()
+            escape_path(&self.path)
         );
         if self.table == ExportTable::LineList {
             text.push_str("the file holds patient-level data: keep it on the department's systems and follow local data-protection rules\n");

@@ -163,14 +163,32 @@ impl From<ListingError> for ApiError {
     }
 }
 
-/// JSON or CSV, from `?format=` or the Accept header.
+/// JSON or CSV, from `?format=` or the Accept header; `CsvRaw` with `?raw=true`.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 enum Format {
     Json,
+    /// Text cells that start like a spreadsheet formula get an apostrophe.
     Csv,
+    /// Every cell exactly as stored.
+    CsvRaw,
 }
 
 fn format_of(params: &mut BTreeMap<String, String>, headers: &HeaderMap) -> Result<Format, ApiError> {
+    let raw = raw_of(params)?;
+    let format = named_format(params, headers)?;
+    Ok(if raw && format == Format::Csv { Format::CsvRaw } else { format })
+}
+
+/// `?raw=true`: CSV cells exactly as stored (JSON is always exact). Absent is false.
+fn raw_of(params: &mut BTreeMap<String, String>) -> Result<bool, ApiError> {
+    match params.remove("raw").as_deref() {
+        None | Some("") | Some("false") | Some("0") => Ok(false),
+        Some("true") | Some("1") => Ok(true),
+        Some(_) => Err(ApiError::new(StatusCode::BAD_REQUEST, "raw: use true or false")),
+    }
+}
+
+fn named_format(params: &mut BTreeMap<String, String>, headers: &HeaderMap) -> Result<Format, ApiError> {
     match params.remove("format").as_deref() {
         Some("json") => Ok(Format::Json),
         Some("csv") => Ok(Format::Csv),
@@ -188,6 +206,9 @@ fn rows_response(table: &Table, format: Format) -> Response {
     match format {
         Format::Json => ([(header::CONTENT_TYPE, "application/json")], table.to_json()).into_response(),
         Format::Csv => ([(header::CONTENT_TYPE, "text/csv; charset=utf-8")], table.to_csv()).into_response(),
+        Format::CsvRaw => {
+            ([(header::CONTENT_TYPE, "text/csv; charset=utf-8")], table.to_csv_raw()).into_response()
+        }
     }
 }
 

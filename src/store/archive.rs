@@ -4,6 +4,8 @@
 //! archive file under a real name. Folders are 0700 and files 0600. A large extract is
 //! compressed in 4 MiB pieces on two threads, each piece a gzip member of its own (RFC 1952
 //! allows a file of several members; `gunzip` and `open` read them as one stream).
+//! A writer killed mid-copy leaves its temporary `.incoming-PID-N` file behind;
+//! `remove_orphans` deletes those whose process is gone.
 
 use std::fs::{self, File, OpenOptions};
 use std::io::{self, BufReader, Read, Write};
@@ -21,6 +23,12 @@ const MEMBER_BYTES: usize = 4 << 20;
 
 use super::create_private_dir;
 
+/// Name prefix of the temporary file an extract is copied into: `.incoming-PID-NANOS`.
+const INCOMING_PREFIX: &str = ".incoming-";
+
+/// Where Linux lists running processes; without it no process can be shown to be gone.
+const PROC_DIR: &str = "/proc";
+
 /// An extract as archived.
 #[derive(Debug, Clone)]
 pub struct Archived {
@@ -33,7 +41,7 @@ pub struct Archived {
 /// keeps the first file.
 pub fn store(archive: &Path, reader: impl Read) -> io::Result<Archived> {
     create_private_dir(archive)?;
-    let tmp_path = archive.join(format!(".incoming-{}-{}", std::process::id(), unique()));
+    let tmp_path = archive.join(format!("{INCOMING_PREFIX}{}-{}", std::process::id(), unique()));
     let mut tmp = OpenOptions::new().write(true).create_new(true).mode(0o600).open(&tmp_path)?;
     let copied = compress(reader, &mut tmp).and_then(|copied| tmp.sync_all().map(|()| copied));
     let (digest, bytes) = match copied {
@@ -152,6 +160,56 @@ pub fn path_of(archive: &Path, sha256: &str) -> PathBuf {
     archive.join(prefix).join(format!("{sha256}.gz"))
 }
 
+/// Removes the temporary files in `archive` that writers killed mid-copy left behind: those
+/// named `.incoming-PID-N` whose process is gone, or whose PID is this process's own (a
+/// previous run that had the same PID, as a container's daemon often does). Call it before
+/// this process archives anything, with the store's writer lock held, so that none of this
+/// process's own copies is in progress. A missing archive has nothing to remove. Returns the
+/// number of files removed.
+pub fn remove_orphans(archive: &Path) -> io::Result<usize> {
+    let entries = match fs::read_dir(archive) {
+        Ok(entries) => entries,
+        Err(err) if err.kind() == io::ErrorKind::NotFound => return Ok(0),
+        Err(err) => return Err(err),
+    };
+    let mut removed = 0;
+    for entry in entries {
+        let entry = entry?;
+        let Some(pid) = entry.file_name().to_str().and_then(incoming_pid) else { continue };
+        let is_file = entry.file_type().map(|t| t.is_file()).unwrap_or(false);
+        if is_file && writer_gone(pid) {
+            match fs::remove_file(entry.path()) {
+                Ok(()) => removed += 1,
+                Err(err) if err.kind() == io::ErrorKind::NotFound => {}
+                Err(err) => return Err(err),
+            }
+        }
+    }
+    if removed > 0 {
+        sync_dir(archive);
+    }
+    Ok(removed)
+}
+
+/// The writer's PID in a temporary file's name (`.incoming-PID-N`, both decimal), if the name
+/// is one.
+fn incoming_pid(name: &str) -> Option<u32> {
+    let (pid, unique) = name.strip_prefix(INCOMING_PREFIX)?.split_once('-')?;
+    let decimal = |t: &str| !t.is_empty() && t.bytes().all(|b| b.is_ascii_digit());
+    (decimal(pid) && decimal(unique)).then(|| pid.parse().ok()).flatten()
+}
+
+/// Whether the process that wrote a temporary file is gone: it is this process (see
+/// `remove_orphans`), or Linux lists no such process. Where processes cannot be listed,
+/// every other writer is taken to be alive.
+fn writer_gone(pid: u32) -> bool {
+    if pid == std::process::id() {
+        return true;
+    }
+    let proc = Path::new(PROC_DIR);
+    proc.join("self").exists() && !proc.join(pid.to_string()).exists()
+}
+
 fn unique() -> u128 {
     std::time::SystemTime::now()
         .duration_since(std::time::UNIX_EPOCH)
@@ -191,6 +249,47 @@ mod tests {
             .unwrap()
             .filter(|e| e.as_ref().unwrap().file_name().to_string_lossy().starts_with(".incoming"));
         assert_eq!(leftovers.count(), 0);
+    }
+
+    #[test]
+    fn orphaned_temporary_files_of_gone_writers_are_removed() {
+        let dir = tempfile::tempdir().unwrap();
+        let archive = dir.path().join("archive");
+        assert_eq!(remove_orphans(&archive).unwrap(), 0, "no archive yet");
+        let kept = store(&archive, &b"id\n1\n"[..]).unwrap();
+        // PID 1 is always running on Linux; a PID above the kernel's limit (2^22) never is.
+        let gone = u32::MAX - 1;
+        let ours = std::process::id();
+        let names = [
+            (format!(".incoming-{gone}-17"), false),
+            (format!(".incoming-{ours}-17"), false),
+            (".incoming-1-17".to_string(), true),
+            (format!(".incoming-{gone}"), true),
+            (format!(".incoming-{gone}-x"), true),
+            (format!("incoming-{gone}-17"), true),
+            (format!(".incoming--{gone}-17"), true),
+        ];
+        for (name, _) in &names {
+            fs::write(archive.join(name), b"partial").unwrap();
+        }
+        fs::create_dir(archive.join(format!(".incoming-{gone}-18"))).unwrap();
+        assert_eq!(remove_orphans(&archive).unwrap(), 2);
+        for (name, stays) in &names {
+            assert_eq!(archive.join(name).exists(), *stays, "{name}");
+        }
+        assert!(archive.join(format!(".incoming-{gone}-18")).is_dir(), "folders are never removed");
+        assert!(kept.path.exists(), "archived extracts are never touched");
+        assert_eq!(remove_orphans(&archive).unwrap(), 0);
+    }
+
+    #[test]
+    fn temporary_file_names_carry_the_writer_pid() {
+        assert_eq!(incoming_pid(".incoming-123-456"), Some(123));
+        assert_eq!(incoming_pid(".incoming-123-"), None);
+        assert_eq!(incoming_pid(".incoming--456"), None);
+        assert_eq!(incoming_pid(".incoming-+1-456"), None);
+        assert_eq!(incoming_pid(".incoming-99999999999-456"), None, "not a PID");
+        assert_eq!(incoming_pid("ab"), None);
     }
 
     #[test]

@@ -1,8 +1,12 @@
 //! Online backup and restore. `backup` copies a consistent snapshot of the store through
 //! SQLite's backup API from a read-only connection, so it runs while the daemon writes;
 //! `restore` takes the writer lock (so no daemon runs), checks the copy, and swaps it in.
+//! Both leave a file of mode 0600 whatever the umask and whatever the mode of the file
+//! restored from (the store holds patient-level data).
 
-use std::fs;
+use std::fs::{self, File, OpenOptions, Permissions};
+use std::io;
+use std::os::unix::fs::PermissionsExt;
 use std::path::Path;
 use std::time::Duration;
 
@@ -13,6 +17,9 @@ use super::{SCHEMA_VERSION, StoreError, create_private_file, lock, open_reader, 
 
 /// Pages copied per step; small steps let the daemon's writes interleave.
 const PAGES_PER_STEP: std::ffi::c_int = 1024;
+
+/// The mode of a backup and of a restored store: owner read and write only.
+const PRIVATE_FILE: u32 = 0o600;
 
 /// What a backup copied.
 #[derive(Debug, Clone, Copy)]
@@ -37,6 +44,7 @@ pub fn backup(store: &Path, dest: &Path) -> Result<BackupSummary, StoreError> {
     check(&target, dest)?;
     let schema_version = schema_version(&target).map_err(sqlite)?;
     drop(target);
+    make_private(dest).map_err(|source| StoreError::Create { path: dest.to_path_buf(), source })?;
     Ok(BackupSummary { bytes: fs::metadata(dest).map(|m| m.len()).unwrap_or(0), schema_version })
 }
 
@@ -59,7 +67,7 @@ pub fn restore(from: &Path, store: &Path) -> Result<BackupSummary, StoreError> {
     let _ = fs::remove_file(&staging);
     create_private_file(&staging)?;
     let io = |source| StoreError::Create { path: store.to_path_buf(), source };
-    fs::copy(from, &staging).map_err(io)?;
+    copy_private(from, &staging).map_err(io)?;
     for suffix in ["-wal", "-shm"] {
         let mut stale = store.as_os_str().to_os_string();
         stale.push(suffix);
@@ -67,6 +75,22 @@ pub fn restore(from: &Path, store: &Path) -> Result<BackupSummary, StoreError> {
     }
     fs::rename(&staging, store).map_err(io)?;
     Ok(BackupSummary { bytes: fs::metadata(store).map(|m| m.len()).unwrap_or(0), schema_version: version })
+}
+
+/// Copies `from` over the (existing, empty) file `to`, sets it to 0600 and syncs it.
+/// `fs::copy` would give the copy the mode of the file restored from, 0644 or worse.
+fn copy_private(from: &Path, to: &Path) -> io::Result<u64> {
+    let mut source = File::open(from)?;
+    let mut target = OpenOptions::new().write(true).truncate(true).open(to)?;
+    target.set_permissions(Permissions::from_mode(PRIVATE_FILE))?;
+    let bytes = io::copy(&mut source, &mut target)?;
+    target.sync_all()?;
+    Ok(bytes)
+}
+
+/// Sets `path` to 0600: the file was created so, but a umask may have taken bits away.
+fn make_private(path: &Path) -> io::Result<()> {
+    fs::set_permissions(path, Permissions::from_mode(PRIVATE_FILE))
 }
 
 fn check(conn: &Connection, path: &Path) -> Result<(), StoreError> {

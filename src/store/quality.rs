@@ -156,6 +156,9 @@ fn field_counts(
     snapshot_id: i64,
     fields: &[Field],
 ) -> Result<BTreeMap<CellKey, Counts>, StoreError> {
+    if fields.is_empty() {
+        return Ok(BTreeMap::new());
+    }
     let Some((base_id, mut cells)) = base_counts(tx, source_id, snapshot_id, fields)? else {
         let mut cells = BTreeMap::new();
         add_grouped(tx, (source_id, snapshot_id, 0), fields, CURRENT_AT, 1, &mut cells)?;
@@ -214,10 +217,9 @@ fn add_grouped(
     sign: i64,
     cells: &mut BTreeMap<CellKey, Counts>,
 ) -> Result<(), StoreError> {
-    let nulls: Vec<String> = fields.iter().map(|f| format!("{} IS NULL", value_column(*f))).collect();
     let sql = format!(
-        "SELECT jurisdiction, valid_from = ?2, invalid, {} FROM case_version WHERE source_id = ?1 AND {filter}",
-        nulls.join(", ")
+        "SELECT {} FROM case_version WHERE source_id = ?1 AND {filter}",
+        scan_columns(fields).join(", ")
     );
     let mut stmt = tx.prepare(&sql)?;
     let mut rows = if stmt.parameter_count() == 3 {
@@ -274,6 +276,14 @@ fn add_grouped(
         }
     }
     Ok(())
+}
+
+/// The columns `add_grouped` reads: jurisdiction, "written by the snapshot", `invalid`, then
+/// one "is NULL" per measured field (none when the source maps no fields).
+fn scan_columns(fields: &[Field]) -> Vec<String> {
+    let fixed = ["jurisdiction", "valid_from = ?2", "invalid"].map(String::from);
+    let nulls = fields.iter().map(|f| format!("{} IS NULL", value_column(*f)));
+    fixed.into_iter().chain(nulls).collect()
 }
 
 fn insert_quality(

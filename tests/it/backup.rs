@@ -49,3 +49,31 @@ fn backup_while_writing_and_restore_when_stopped() {
     let mode = std::fs::metadata(&copy).unwrap().permissions().mode() & 0o777;
     assert_eq!(mode, 0o600);
 }
+
+/// Unix permission bits of a file or folder.
+fn mode(path: &Path) -> u32 {
+    use std::os::unix::fs::PermissionsExt;
+    std::fs::metadata(path).unwrap().permissions().mode() & 0o777
+}
+
+/// A backup copied around with mode 0644 (as `cp` under a usual umask leaves it) restores to
+/// a store of mode 0600: the store holds patient-level data whatever the copy's mode.
+#[test]
+fn a_restored_store_is_private_whatever_the_mode_of_the_backup() {
+    use std::os::unix::fs::PermissionsExt;
+    let dir = tempfile::tempdir().unwrap();
+    let config = config(dir.path());
+    let mut store = Store::open(&config.store.path).unwrap();
+    ingest(&mut store, &config, dir.path(), 1, 5);
+    drop(store);
+    let copy = dir.path().join("copies").join("backup.db");
+    backup::backup(&config.store.path, &copy).unwrap();
+    assert_eq!(mode(&copy), 0o600);
+    assert_eq!(mode(copy.parent().unwrap()), 0o700);
+    std::fs::set_permissions(&copy, std::fs::Permissions::from_mode(0o644)).unwrap();
+    std::fs::set_permissions(&config.store.path, std::fs::Permissions::from_mode(0o644)).unwrap();
+    backup::restore(&copy, &config.store.path).unwrap();
+    assert_eq!(mode(&config.store.path), 0o600, "not the backup's 0644");
+    let reader = Reader::open(&config.store.path).unwrap();
+    assert_eq!(reader.snapshots(Some("feed")).unwrap()[0].rows_accepted, 5);
+}

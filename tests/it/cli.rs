@@ -541,3 +541,88 @@ fn ingest_takes_the_as_of_time_from_the_file_name_when_configured() {
     let (_, stdout, _) = tm(&config, &["snapshots", "--format", "json"]);
     assert_eq!(json(&stdout)[1]["as_of"], "2026-03-04T08:00:00Z");
 }
+
+/// `sh -c 'umask 000; exec tidemark ARGS...'`: the real binary under the most open umask,
+/// in a child process (the test process's own umask is shared by every test thread).
+fn tm_umask_000(args: &[&std::ffi::OsStr]) -> (i32, String, String) {
+    let bin = assert_cmd::cargo::cargo_bin("tidemark");
+    let mut cmd = assert_cmd::Command::new("sh");
+    cmd.args(["-c", "umask 000; exec \"$0\" \"$@\""]).arg(bin).args(args);
+    cmd.env_remove("TIDEMARK_CONFIG").env_remove("TIDEMARK_LOG");
+    cmd.timeout(std::time::Duration::from_secs(120));
+    run(&mut cmd)
+}
+
+/// Under umask 000 `init` still writes a 0600 config and 0700 folders, and the files that
+/// ingest, export and backup write are 0600 in 0700 folders: modes are set, not left to the
+/// umask.
+#[test]
+fn files_are_private_under_an_open_umask() -> TestResult {
+    let dir = tempfile::tempdir()?;
+    let target = dir.path().join("site");
+    let (code, stdout, stderr) = tm_umask_000(&["init".as_ref(), target.as_os_str()]);
+    assert_eq!(code, 0, "{stdout}{stderr}");
+    assert_eq!(mode(&target), 0o700);
+    assert_eq!(mode(&target.join("tidemark.toml")), 0o600, "not 0666");
+    assert_eq!(mode(&target.join("data")), 0o700, "not 0777");
+    assert_eq!(mode(&target.join("data").join("tidemark.db")), 0o600);
+    for folder in ["incoming", "incoming/county-reports"] {
+        assert_eq!(mode(&target.join(folder)), 0o700, "{folder}");
+    }
+
+    let (dir, config) = setup();
+    let file = dir.path().join("day1.csv");
+    std::fs::write(&file, csv(&["C-0001,Amberlee,2026-03-01,2026-03-02,34,F,cough"]))?;
+    let conf = config.as_os_str();
+    let ingest = ["--config".as_ref(), conf, "ingest".as_ref(), file.as_os_str()];
+    let args: Vec<&std::ffi::OsStr> =
+        ingest.into_iter().chain(["--source", "full", "--as-of", "2026-03-02"].map(AsRef::as_ref)).collect();
+    let (code, stdout, stderr) = tm_umask_000(&args);
+    assert_eq!(code, 0, "{stdout}{stderr}");
+    let store = dir.path().join("store");
+    assert_eq!(mode(&store), 0o700);
+    assert_eq!(mode(&store.join("tidemark.db")), 0o600);
+    let archive = store.join("archive");
+    assert_eq!(mode(&archive), 0o700);
+    for entry in std::fs::read_dir(&archive)? {
+        let folder = entry?.path();
+        assert_eq!(mode(&folder), 0o700);
+        for file in std::fs::read_dir(&folder)? {
+            assert_eq!(mode(&file?.path()), 0o600);
+        }
+    }
+    let (list, copy) = (dir.path().join("list.csv"), dir.path().join("backups").join("copy.db"));
+    let export = ["--config", "", "export", "--source", "full", "--format", "csv", "--out"];
+    let mut args: Vec<&std::ffi::OsStr> = export.iter().map(AsRef::as_ref).collect();
+    args[1] = conf;
+    args.push(list.as_os_str());
+    let (code, stdout, stderr) = tm_umask_000(&args);
+    assert_eq!(code, 0, "{stdout}{stderr}");
+    assert_eq!(mode(&list), 0o600);
+    let (code, stdout, stderr) =
+        tm_umask_000(&["--config".as_ref(), conf, "backup".as_ref(), copy.as_os_str()]);
+    assert_eq!(code, 0, "{stdout}{stderr}");
+    assert_eq!(mode(&copy), 0o600);
+    assert_eq!(mode(copy.parent().unwrap()), 0o700);
+    Ok(())
+}
+
+/// A file name with a newline, a fake log line and terminal escape codes is logged escaped
+/// by `tidemark ingest`: it forges no line and colours nothing.
+#[test]
+fn ingest_logs_an_outside_file_name_escaped() -> TestResult {
+    let (dir, config) = setup();
+    let name = "evil\n2026-03-02T00:00:00Z  INFO tidemark: extract ingested\x1b[31m.csv";
+    let file = dir.path().join(name);
+    std::fs::write(&file, csv(&["C-0001,Amberlee,2026-03-01,2026-03-02,34,F,cough"]))?;
+    let (code, stdout, stderr) =
+        tm(&config, &["ingest", file.to_str().unwrap(), "--source", "full", "--as-of", "2026-03-02"]);
+    assert_eq!(code, 0, "{stdout}{stderr}");
+    let escaped = "evil\\n2026-03-02T00:00:00Z  INFO tidemark: extract ingested\\u{1b}[31m.csv";
+    assert!(stderr.contains(escaped), "{stderr}");
+    for output in [&stdout, &stderr] {
+        assert!(!output.contains('\x1b'), "{output:?}");
+        assert!(!output.lines().any(|l| l.starts_with("2026-03-02T00:00:00Z")), "{output:?}");
+    }
+    Ok(())
+}

@@ -1,7 +1,10 @@
 //! `tidemark export` through the real binary: the line list as of an earlier snapshot, and
 //! the nowcast and delay tables, as CSV and Parquet. The Parquet file is read back with the
 //! parquet crate's reader and compared with the CSV export and with the store (row counts,
-//! typed values, nulls where the store has missing values); files are mode 0600.
+//! typed values, nulls where the store has missing values); files are mode 0600. CSV (exports,
+//! `tidemark query` and listings, the API's CSV answers) puts an apostrophe before text that
+//! starts like a spreadsheet formula, except with `--raw` / `raw=true`; JSON and Parquet are
+//! exact.
 
 use std::fs::File;
 use std::path::Path;
@@ -260,4 +263,122 @@ fn a_bad_export_request_is_refused_and_writes_nothing() -> TestResult {
         .collect();
     assert!(leftovers.is_empty());
     Ok(())
+}
+
+/// A jurisdiction that a spreadsheet would run as a command (the textbook CSV-injection
+/// payload, common practice in security advice), and one that is a plain negative number.
+const FORMULA: &str = "=cmd|' /C calc'!A0";
+
+/// One extract whose jurisdictions start like formulas: `FORMULA`, `-3` (a number as text)
+/// and `@SUM(A1)`.
+fn formula_env() -> Env {
+    let mut env = Env::with_sources(&[source_toml("full", "csv", "full", "")]);
+    let rows = [
+        format!("C-0001,{FORMULA},2026-02-20,2026-02-23,34,F,cough"),
+        "C-0002,-3,2026-02-21,2026-02-24,40,M,".to_string(),
+        "C-0003,@SUM(A1),2026-02-22,2026-02-25,51,M,".to_string(),
+    ];
+    env.ingest("full", &csv(&rows.iter().map(String::as_str).collect::<Vec<_>>()), day(0));
+    env
+}
+
+/// The jurisdiction column of a CSV export, in row order.
+fn jurisdictions(path: &Path) -> Result<Vec<String>, Error> {
+    let (headers, rows) = csv_rows(path)?;
+    let at = headers.iter().position(|h| h == "jurisdiction").ok_or("no jurisdiction column")?;
+    Ok(rows.into_iter().map(|row| row[at].clone()).collect())
+}
+
+#[test]
+fn csv_exports_neutralise_formula_text_unless_raw_and_parquet_stays_exact() -> TestResult {
+    let env = formula_env();
+    let dir = env.dir.path().to_path_buf();
+    let (safe, raw, parquet) = (dir.join("safe.csv"), dir.join("raw.csv"), dir.join("list.parquet"));
+    let out = |path: &Path| path.to_str().unwrap().to_string();
+    export(&env, &["--source", "full", "--format", "csv", "--out", &out(&safe)]);
+    export(&env, &["--source", "full", "--format", "csv", "--raw", "--out", &out(&raw)]);
+    export(&env, &["--source", "full", "--format", "parquet", "--raw", "--out", &out(&parquet)]);
+    assert_eq!(jurisdictions(&safe)?, [format!("'{FORMULA}"), "-3".into(), "'@SUM(A1)".into()]);
+    assert_eq!(jurisdictions(&raw)?, [FORMULA, "-3", "@SUM(A1)"]);
+    // Numbers are typed cells and never touched.
+    let (headers, rows) = csv_rows(&safe)?;
+    let age = headers.iter().position(|h| h == "age_lo").ok_or("no age_lo")?;
+    assert_eq!(rows[0][age], "34");
+    let stored: Vec<ParquetField> =
+        parquet_rows(&parquet)?.iter().map(|r| value(r, "jurisdiction").clone()).collect();
+    assert_eq!(stored, [FORMULA, "-3", "@SUM(A1)"].map(|j| ParquetField::Str(j.into())));
+    Ok(())
+}
+
+#[test]
+fn query_csv_neutralises_formula_text_unless_raw_and_json_stays_exact() {
+    let env = formula_env();
+    let sql = "SELECT '=1+1' AS f, -3 AS n, -0.5 AS x, '-0.5' AS t";
+    let query = |extra: &[&str]| {
+        let (code, stdout, stderr) =
+            run(tidemark().arg("--config").arg(&env.config_path).args(["query", sql]).args(extra));
+        assert_eq!(code, 0, "{stderr}");
+        stdout
+    };
+    assert_eq!(query(&["--format", "csv"]), "f,n,x,t\n'=1+1,-3,-0.5,-0.5\n");
+    assert_eq!(query(&["--format", "csv", "--raw"]), "f,n,x,t\n=1+1,-3,-0.5,-0.5\n");
+    let json: serde_json::Value = serde_json::from_str(&query(&["--format", "json"])).unwrap();
+    assert_eq!(json[0]["f"], "=1+1");
+    assert_eq!(json[0]["n"], -3);
+    // A listing takes --raw too.
+    let curve = |extra: &[&str]| {
+        let args =
+            ["curve", "--source", "full", "--by", "onset", "--stratify", "jurisdiction", "--format", "csv"];
+        let (code, stdout, stderr) =
+            run(tidemark().arg("--config").arg(&env.config_path).args(args).args(extra));
+        assert_eq!(code, 0, "{stderr}");
+        stdout
+    };
+    assert!(curve(&[]).contains(&format!("'{FORMULA}")), "{}", curve(&[]));
+    let raw = curve(&["--raw"]);
+    assert!(raw.contains(FORMULA) && !raw.contains(&format!("'{FORMULA}")), "{raw}");
+}
+
+/// `method uri` through the API router with a bearer token: (status, body).
+async fn api_call(router: &axum::Router, method: &str, uri: &str, token: &str, body: &str) -> (u16, String) {
+    use tower::ServiceExt;
+    let request = axum::http::Request::builder()
+        .method(method)
+        .uri(uri)
+        .header("authorization", format!("Bearer {token}"))
+        .body(axum::body::Body::from(body.to_string()))
+        .unwrap();
+    let response = router.clone().oneshot(request).await.unwrap();
+    let status = response.status().as_u16();
+    let bytes = axum::body::to_bytes(response.into_body(), 1 << 20).await.unwrap();
+    (status, String::from_utf8_lossy(&bytes).into_owned())
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn api_csv_answers_neutralise_formula_text_unless_raw_is_true() {
+    let env = formula_env();
+    let config = std::sync::Arc::new(env.config.clone());
+    let token = tidemark::app::access::token_create(&config, "etl", "sql").unwrap();
+    let token = token.lines().next().unwrap().to_string();
+    let router = tidemark::app::access::app_router(&config, None);
+    let sql = r#"{"sql": "SELECT '=1+1' AS f, -3 AS n"}"#;
+    let query = "/api/v1/query";
+    let ask = |uri: String| {
+        let (router, token) = (router.clone(), token.clone());
+        async move { api_call(&router, "POST", &uri, &token, sql).await }
+    };
+    assert_eq!(ask(format!("{query}?format=csv")).await, (200, "f,n\n'=1+1,-3\n".into()));
+    assert_eq!(ask(format!("{query}?format=csv&raw=true")).await, (200, "f,n\n=1+1,-3\n".into()));
+    assert_eq!(ask(format!("{query}?format=csv&raw=false")).await, (200, "f,n\n'=1+1,-3\n".into()));
+    assert_eq!(ask(format!("{query}?format=csv&raw=maybe")).await.0, 400);
+    let (status, json) = ask(format!("{query}?format=json&raw=true")).await;
+    assert_eq!(status, 200);
+    assert_eq!(serde_json::from_str::<serde_json::Value>(&json).unwrap()[0]["f"], "=1+1");
+    let curve = "/api/v1/curve?source=full&by=onset&stratify=jurisdiction&format=csv";
+    let (status, safe) = api_call(&router, "GET", curve, &token, "").await;
+    assert_eq!(status, 200, "{safe}");
+    assert!(safe.contains(&format!("'{FORMULA}")), "{safe}");
+    let (status, raw) = api_call(&router, "GET", &format!("{curve}&raw=true"), &token, "").await;
+    assert_eq!(status, 200, "{raw}");
+    assert!(raw.contains(FORMULA) && !raw.contains(&format!("'{FORMULA}")), "{raw}");
 }

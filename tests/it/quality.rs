@@ -111,3 +111,25 @@ fn incremental_quality_cells_equal_a_whole_scan_of_every_snapshot() {
         quality_cells(&env.db(), days).into_iter().filter(|c| c.0 == "current" && c.2 == "Dunhollow").count();
     assert_eq!(emptied, 0, "a jurisdiction without records has no cells");
 }
+
+/// A source that maps only its key column has no field to measure: the quality step still
+/// succeeds, storing no field cells (a regression: its scan was `SELECT ..., invalid, FROM`,
+/// a syntax error, and every snapshot of such a source went unmeasured).
+#[test]
+fn a_source_that_maps_only_its_key_is_measured_without_error() {
+    let dir = tempfile::tempdir().unwrap();
+    let text = "[store]\npath = \"store/t.db\"\narchive = \"store/archive\"\n\
+        [[source]]\nname = \"keys\"\nkind = \"folder\"\npath = \"in\"\nkey = \"id\"\n";
+    let config = tidemark::config::Config::parse(text, &dir.path().join("t.toml")).unwrap();
+    let source = config.source("keys").unwrap();
+    let path = dir.path().join("keys.csv");
+    std::fs::write(&path, "id,other\nK-1,x\nK-2,y\n").unwrap();
+    let mut store = tidemark::store::Store::open(&config.store.path).unwrap();
+    let outcome =
+        tidemark::app::ingest::ingest_file(&mut store, &config, source, &path, Some(day(1))).unwrap();
+    assert_eq!(outcome.counts.accepted, 2);
+    let spec = tidemark::app::quality::spec_for(&config, source);
+    assert!(spec.fields.is_empty() && spec.lag_from.is_empty(), "{spec:?}");
+    let rows = tidemark::app::quality::measure_snapshot(&mut store, &config, source, outcome.snapshot_id);
+    assert_eq!(rows.unwrap(), 0);
+}
