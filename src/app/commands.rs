@@ -117,7 +117,24 @@ pub fn ingest(config: &Config, file: &Path, source_name: &str, as_of: Option<&st
     let source = source(config, source_name)?;
     let as_of = as_of.map(parse_time_arg).transpose()?;
     let mut store = Store::open(&config.store.path)?;
+    remove_archive_orphans(config);
     ingest::ingest_file(&mut store, config, source, file, as_of)
+}
+
+/// Removes the temporary archive files that an ingest killed mid-copy left behind (logged,
+/// never fatal). Call it with the store open for writing (the writer lock held) and before
+/// this process archives anything: at `tidemark ingest` and at daemon start.
+pub fn remove_archive_orphans(config: &Config) {
+    let archive = &config.store.archive;
+    match crate::store::archive::remove_orphans(archive) {
+        Ok(0) => {}
+        Ok(removed) => tracing::warn!(
+            removed, archive = %escape_path(archive), "removed temporary files of interrupted ingests"
+        ),
+        Err(err) => tracing::warn!(
+            archive = %escape_path(archive), error = %err, "temporary files of interrupted ingests not removed"
+        ),
+    }
 }
 
 /// Up to `max` problems of a snapshot, for printing after an ingest.

@@ -2,8 +2,10 @@
 //! `check-config` prints the resolved config with secrets redacted; bad configs and unknown
 //! sources exit 2 naming the key path; `ingest`, `snapshots`, `history` and `curve` in all
 //! three formats (JSON is an array of objects with snake_case keys); `query` reads but every
-//! kind of write is refused and leaves the store unchanged; `demo` runs end to end. Exit
-//! codes are the contract: 0 ok, 1 error, 2 bad usage or config.
+//! kind of write is refused and leaves the store unchanged; `demo` runs end to end; files
+//! and folders are private under umask 000; an outside file name is logged escaped; an
+//! ingest removes the temporary archive files of killed writers. Exit codes are the
+//! contract: 0 ok, 1 error, 2 bad usage or config.
 
 use std::path::{Path, PathBuf};
 
@@ -624,5 +626,27 @@ fn ingest_logs_an_outside_file_name_escaped() -> TestResult {
         assert!(!output.contains('\x1b'), "{output:?}");
         assert!(!output.lines().any(|l| l.starts_with("2026-03-02T00:00:00Z")), "{output:?}");
     }
+    Ok(())
+}
+
+/// A temporary archive file left by an ingest killed mid-copy (its writer's PID is gone) is
+/// removed by the next `tidemark ingest`; the archived extracts stay.
+#[test]
+fn ingest_removes_temporary_archive_files_of_killed_writers() -> TestResult {
+    let (dir, config) = setup();
+    let archive = dir.path().join("store").join("archive");
+    std::fs::create_dir_all(&archive)?;
+    // No PID reaches 2^32 - 2 (Linux caps PIDs at 2^22): its writer is surely gone.
+    let orphan = archive.join(format!(".incoming-{}-1", u32::MAX - 1));
+    std::fs::write(&orphan, b"half an extract")?;
+    let file = dir.path().join("day1.csv");
+    std::fs::write(&file, csv(&["C-0001,Amberlee,2026-03-01,2026-03-02,34,F,cough"]))?;
+    let (code, stdout, stderr) =
+        tm(&config, &["ingest", file.to_str().unwrap(), "--source", "full", "--as-of", "2026-03-02"]);
+    assert_eq!(code, 0, "{stdout}{stderr}");
+    assert!(!orphan.exists(), "{stderr}");
+    assert!(stderr.contains("removed temporary files of interrupted ingests"), "{stderr}");
+    let archived = std::fs::read_dir(&archive)?.filter(|e| e.as_ref().is_ok_and(|e| e.path().is_dir()));
+    assert_eq!(archived.count(), 1, "the new extract is archived");
     Ok(())
 }
