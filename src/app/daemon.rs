@@ -26,6 +26,7 @@ use crate::serve::{self, ops};
 use crate::source::folder::{self, SeenFile};
 use crate::source::http::{self, Fetched, Validators};
 use crate::store::{FileRecord, PollRecord, Reader, Store, archive, time_text};
+use crate::text::{escape_outside, escape_path};
 
 /// How often the daemon writes its heartbeat for `tidemark status`.
 const HEARTBEAT_EVERY: Duration = Duration::from_secs(30);
@@ -70,6 +71,7 @@ pub async fn run(
     ops: Option<TcpListener>,
 ) -> Result<()> {
     let store = Store::open(&config.store.path)?;
+    super::commands::remove_archive_orphans(&config);
     let (writer, writer_thread) = writer::start(store)?;
     let source_ids = register_sources(&writer, &config).await?;
     let metrics = Arc::new(Metrics::default());
@@ -102,7 +104,7 @@ pub async fn run(
     tracker.spawn(heartbeat(shared.clone()));
     tracker.spawn(deliver_outbox(shared.clone()));
     running.store(true, Ordering::SeqCst);
-    tracing::info!(sources = config.sources.len(), store = %config.store.path.display(), "daemon started");
+    tracing::info!(sources = config.sources.len(), store = %escape_path(&config.store.path), "daemon started");
     shutdown.cancelled().await;
     running.store(false, Ordering::SeqCst);
     shared.cancel_ingest.store(true, Ordering::SeqCst);
@@ -168,7 +170,7 @@ async fn heartbeat(shared: Arc<Shared>) {
 /// A source's memory between polls.
 enum PollState {
     Folder { known: HashSet<(String, u64, i64)> },
-    Url { client: reqwest::Client, validators: Validators },
+    Url { client: reqwest::Client, validators: Validators, failed: Option<FailedBody> },
 }
 
 async fn source_loop(shared: Arc<Shared>, source: SourceConfig, source_id: i64, nudge: Arc<Notify>) {
@@ -204,7 +206,7 @@ async fn initial_state(config: &Config, source: &SourceConfig, source_id: i64) -
             let (etag, last_modified) =
                 tokio::task::spawn_blocking(move || Reader::open(&path)?.validators(source_id)).await??;
             let client = http::client(settings)?;
-            Ok(PollState::Url { client, validators: Validators { etag, last_modified } })
+            Ok(PollState::Url { client, validators: Validators { etag, last_modified }, failed: None })
         }
     }
 }
@@ -230,8 +232,8 @@ async fn poll(
         (Location::Folder(folder), PollState::Folder { known }) => {
             poll_folder(shared, source, source_id, folder, known).await
         }
-        (Location::Url(settings), PollState::Url { client, validators }) => {
-            match poll_url(shared, source, source_id, settings, client, validators).await {
+        (Location::Url(settings), PollState::Url { client, validators, failed }) => {
+            match poll_url(shared, source, source_id, settings, client, validators, failed).await {
                 Ok(outcomes) => (outcomes, None),
                 Err(err) => (Vec::new(), Some(format!("{err:#}"))),
             }
@@ -253,6 +255,7 @@ async fn finish_poll(
     if error.is_some() && outcomes.is_empty() && shared.shutdown.is_cancelled() {
         return;
     }
+    let error = with_failed_extracts(error, &outcomes);
     shared.metrics.poll_finished(&source.name, took, error.is_none());
     shared.metrics.update(&source.name, |c| {
         for outcome in &outcomes {
@@ -278,6 +281,24 @@ async fn finish_poll(
         let snapshots = outcomes.iter().map(|o| (o.snapshot_id, o.status)).collect();
         let _ = events.send(PollEvent { source: source.name.clone(), started, snapshots, error });
     }
+}
+
+/// A poll whose extract failed (parse, mapping, limit, truncation, out of order) failed,
+/// whatever the transfer did: the error names each failed snapshot and its reason.
+fn with_failed_extracts(error: Option<String>, outcomes: &[IngestOutcome]) -> Option<String> {
+    let failed: Vec<String> = outcomes
+        .iter()
+        .filter(|o| o.status == SnapshotStatus::Failed)
+        .map(|o| {
+            format!("snapshot {} failed: {}", o.snapshot_id, o.note.as_deref().unwrap_or("no reason given"))
+        })
+        .collect();
+    if failed.is_empty() {
+        return error;
+    }
+    let mut parts: Vec<String> = error.into_iter().collect();
+    parts.extend(failed);
+    Some(parts.join("; "))
 }
 
 /// Runs the staleness rules on the writer after a poll; logged, not returned.
@@ -328,7 +349,7 @@ async fn poll_folder(
     for file in candidates.into_iter().filter(|f| is_new(f)) {
         match as_of_for_file(&source.as_of, &file.path) {
             Ok(as_of) => pending.push((as_of, file)),
-            Err(err) => problems.push(format!("{}: {err:#}", file.name)),
+            Err(err) => problems.push(format!("{}: {err:#}", escape_outside(&file.name))),
         }
     }
     // Catch-up after downtime: everything pending, oldest as-of first.
@@ -339,11 +360,15 @@ async fn poll_folder(
             break;
         }
         match take_file(shared, source, source_id, &file, as_of).await {
-            Ok(outcome) => {
+            Ok(Taken::Ingested(outcome)) => {
                 known.insert(fingerprint(&file));
-                outcomes.extend(outcome);
+                outcomes.push(outcome);
             }
-            Err(err) => problems.push(format!("{}: {err:#}", file.name)),
+            Ok(Taken::Unchanged) => {
+                known.insert(fingerprint(&file));
+            }
+            Ok(Taken::Unsettled) => {}
+            Err(err) => problems.push(format!("{}: {err:#}", escape_outside(&file.name))),
         }
     }
     (outcomes, (!problems.is_empty()).then(|| problems.join("; ")))
@@ -354,28 +379,58 @@ async fn look(folder: &FolderSettings) -> Result<folder::Listing, String> {
     tokio::task::spawn_blocking(move || folder::look(&path, &pattern, marker.as_deref()))
         .await
         .map_err(|err| err.to_string())?
-        .map_err(|err| format!("cannot list {}: {err}", folder.path.display()))
+        .map_err(|err| format!("cannot list {}: {err}", escape_path(&folder.path)))
 }
 
 fn fingerprint(file: &SeenFile) -> (String, u64, i64) {
     (file.path.display().to_string(), file.size, file.mtime_ns)
 }
 
-/// Archives one file and ingests it unless the same bytes were taken before (a rename or a
-/// copy); either way the file's fingerprint is recorded so it is not looked at again.
+/// What became of one file a folder poll looked at.
+enum Taken {
+    /// Ingested: a new snapshot (applied, held or failed).
+    Ingested(IngestOutcome),
+    /// The same bytes as the source's latest applied snapshot (a copy or a rename): nothing new.
+    Unchanged,
+    /// The file changed while it was read: not taken, looked at again on the next poll.
+    Unsettled,
+}
+
+/// A file's size and modification time now, as the folder listing records them.
+fn stat(path: &Path) -> Option<(u64, i64)> {
+    let meta = std::fs::metadata(path).ok()?;
+    let mtime = meta.modified().ok()?.duration_since(std::time::UNIX_EPOCH).ok()?.as_nanos() as i64;
+    Some((meta.len(), mtime))
+}
+
+/// Archives one file and ingests it unless its bytes are those of the source's latest
+/// applied snapshot. The file must be the one the listing saw, and must not change while
+/// it is read: its size and mtime are checked immediately before and after reading, and the
+/// bytes read must equal its size. Bytes of an *older* snapshot are a new observation and
+/// are ingested like any other.
 async fn take_file(
     shared: &Arc<Shared>,
     source: &SourceConfig,
     source_id: i64,
     file: &SeenFile,
     as_of: DateTime<Utc>,
-) -> Result<Option<IngestOutcome>> {
+) -> Result<Taken> {
     let (archive_dir, path) = (shared.config.store.archive.clone(), file.path.clone());
-    let archived = tokio::task::spawn_blocking(move || {
-        let reader = std::fs::File::open(&path).with_context(|| format!("opening {}", path.display()))?;
-        archive::store(&archive_dir, std::io::BufReader::new(reader)).context("archiving")
+    let listed = (file.size, file.mtime_ns);
+    let read = tokio::task::spawn_blocking(move || -> Result<Option<archive::Archived>> {
+        if stat(&path) != Some(listed) {
+            return Ok(None);
+        }
+        let reader = std::fs::File::open(&path).with_context(|| format!("opening {}", escape_path(&path)))?;
+        let archived = archive::store(&archive_dir, std::io::BufReader::new(reader)).context("archiving")?;
+        let settled = stat(&path) == Some(listed) && archived.bytes == listed.0;
+        Ok(settled.then_some(archived))
     })
     .await??;
+    let Some(archived) = read else {
+        tracing::info!(source = %source.name, file = %escape_outside(&file.name), "file changed while it was read; looked at again on the next poll");
+        return Ok(Taken::Unsettled);
+    };
     let meta = ExtractMeta {
         as_of,
         received_at: Utc::now(),
@@ -394,17 +449,26 @@ async fn take_file(
     let (config, source, cancel) = (shared.config.clone(), source.clone(), shared.cancel_ingest.clone());
     shared
         .writer
-        .run(move |store| -> Result<Option<IngestOutcome>> {
-            if store.sha_known(source_id, &record.sha256)? {
+        .run(move |store| -> Result<Taken> {
+            if store.duplicate_of(source_id, &record.sha256)?.is_some() {
                 store.record_file(source_id, &record)?;
-                return Ok(None);
+                return Ok(Taken::Unchanged);
             }
             let outcome = ingest_archived(store, &config, &source, &meta, &|| cancel.load(Ordering::SeqCst))?;
             record.snapshot_id = Some(outcome.snapshot_id);
             store.record_file(source_id, &record)?;
-            Ok(Some(outcome))
+            Ok(Taken::Ingested(outcome))
         })
         .await?
+}
+
+/// Bytes of a URL source's last failed snapshot, so the same failing body is not parsed
+/// again on every poll (each such poll still counts as failed).
+#[derive(Debug, Clone)]
+struct FailedBody {
+    sha256: String,
+    snapshot_id: i64,
+    note: String,
 }
 
 async fn poll_url(
@@ -414,6 +478,7 @@ async fn poll_url(
     settings: &UrlSettings,
     client: &reqwest::Client,
     validators: &mut Validators,
+    failed: &mut Option<FailedBody>,
 ) -> Result<Vec<IngestOutcome>> {
     let fetched = http::fetch(client, settings, validators, &shared.shutdown).await?;
     let Fetched::Body { bytes, validators: new_validators, headers, attempts } = fetched else {
@@ -424,6 +489,13 @@ async fn poll_url(
     let size = bytes.len();
     let archived = tokio::task::spawn_blocking(move || archive::store(&archive_dir, &bytes[..])).await??;
     tracing::info!(source = %source.name, bytes = size, attempts, "fetched");
+    if let Some(earlier) = failed.as_ref().filter(|f| f.sha256 == archived.sha256) {
+        anyhow::bail!(
+            "the same bytes as failed snapshot {} again, not parsed again ({})",
+            earlier.snapshot_id,
+            earlier.note
+        );
+    }
     let meta = ExtractMeta {
         as_of,
         received_at: Utc::now(),
@@ -433,22 +505,42 @@ async fn poll_url(
         kind: source.extract,
     };
     let (config, job_source, cancel) = (shared.config.clone(), source.clone(), shared.cancel_ingest.clone());
-    let remembered = (new_validators.etag.clone(), new_validators.last_modified.clone());
+    let sha256 = meta.sha256.clone();
     let outcome = shared
         .writer
         .run(move |store| -> Result<Option<IngestOutcome>> {
-            let outcome = if store.sha_known(source_id, &meta.sha256)? {
-                None
-            } else {
-                Some(ingest_archived(store, &config, &job_source, &meta, &|| cancel.load(Ordering::SeqCst))?)
-            };
-            let poll =
-                PollRecord { at: Utc::now(), error: None, snapshot_id: None, validators: Some(remembered) };
-            store.record_poll(source_id, &poll)?;
-            Ok(outcome)
+            if store.duplicate_of(source_id, &meta.sha256)?.is_some() {
+                return Ok(None);
+            }
+            Ok(Some(ingest_archived(store, &config, &job_source, &meta, &|| cancel.load(Ordering::SeqCst))?))
         })
         .await??;
-    *validators = new_validators;
+    match outcome.as_ref().filter(|o| o.status == SnapshotStatus::Failed) {
+        // A failed body's validators are not kept: the next poll fetches the body again
+        // (and, if it is the same, counts as failed without parsing it).
+        Some(bad) => {
+            *failed = Some(FailedBody {
+                sha256,
+                snapshot_id: bad.snapshot_id,
+                note: bad.note.clone().unwrap_or_default(),
+            });
+        }
+        None => {
+            *failed = None;
+            let remembered = new_validators.clone();
+            shared
+                .writer
+                .run(move |store| {
+                    store.remember_validators(
+                        source_id,
+                        remembered.etag.as_deref(),
+                        remembered.last_modified.as_deref(),
+                    )
+                })
+                .await??;
+            *validators = new_validators;
+        }
+    }
     Ok(outcome.into_iter().collect())
 }
 

@@ -10,10 +10,11 @@ use std::path::Path;
 use anyhow::{Context, Result, bail};
 use chrono::{DateTime, NaiveDate, NaiveTime, Utc};
 
-use crate::config::{AsOfRule, Config, SourceConfig};
+use crate::config::{AsOfRule, Config, HOLD_REMOVED_MIN, SourceConfig};
 use crate::extract::{self, ParseError, ParseSummary};
 use crate::model::{ExtractKind, ExtractMeta, RowCounts, SnapshotStatus};
 use crate::store::{Ingest, LastApplied, Plan, Store, StoreError, archive};
+use crate::text::{escape_outside, escape_path};
 
 /// Rows between checks for a shutdown request: often enough to stop within a second.
 const CANCEL_CHECK_EVERY: u64 = 4096;
@@ -43,7 +44,7 @@ impl IngestOutcome {
             ));
         }
         if let Some(note) = &self.note {
-            line.push_str(&format!(" ({note})"));
+            line.push_str(&format!(" ({})", escape_outside(note)));
         }
         line
     }
@@ -61,9 +62,9 @@ pub fn ingest_file(
         Some(time) => time,
         None => as_of_for_file(&source.as_of, path)?,
     };
-    let file = File::open(path).with_context(|| format!("opening {}", path.display()))?;
+    let file = File::open(path).with_context(|| format!("opening {}", escape_path(path)))?;
     let archived = archive::store(&config.store.archive, BufReader::new(file))
-        .with_context(|| format!("archiving {}", path.display()))?;
+        .with_context(|| format!("archiving {}", escape_path(path)))?;
     let meta = ExtractMeta {
         as_of,
         received_at: Utc::now(),
@@ -89,6 +90,9 @@ pub fn ingest_archived(
         let note = format!("same bytes as snapshot {earlier}");
         return unapplied(store, source_id, meta, SnapshotStatus::Duplicate, note);
     }
+    if let Some(note) = as_of_in_future(meta.as_of, Utc::now(), source) {
+        return unapplied(store, source_id, meta, SnapshotStatus::Failed, note);
+    }
     let last = store.last_applied(source_id)?;
     if let Some(last) = last.as_ref().filter(|l| l.as_of > meta.as_of) {
         let note = format!(
@@ -107,7 +111,7 @@ pub fn ingest_archived(
         Ok(summary) => summary,
         Err(ParseError::Extract(err)) => {
             drop(ingest);
-            tracing::warn!(source = %source.name, origin = %meta.origin, error = %err, "extract failed");
+            tracing::warn!(source = %source.name, origin = %escape_outside(&meta.origin), error = %err, "extract failed");
             return unapplied(store, source_id, meta, SnapshotStatus::Failed, err.to_string());
         }
         Err(ParseError::Sink(err)) => return Err(err.into()),
@@ -120,6 +124,21 @@ pub fn ingest_archived(
         evaluate_alerts(store, config, source, &outcome);
     }
     Ok(outcome)
+}
+
+/// Why an as-of time is refused for lying too far after the server's clock, if it does: a
+/// typo in a file name (2062 for 2026) or a wrong clock would otherwise put every later
+/// extract out of order.
+fn as_of_in_future(as_of: DateTime<Utc>, now: DateTime<Utc>, source: &SourceConfig) -> Option<String> {
+    let tolerance = chrono::Duration::from_std(source.as_of_tolerance).unwrap_or(chrono::Duration::MAX);
+    (as_of > now + tolerance).then(|| {
+        format!(
+            "as-of time {} is more than {}h after the server's clock ({}); check the file name or --as-of (as_of_tolerance)",
+            crate::store::time_text(as_of),
+            source.as_of_tolerance.as_secs() / 3600,
+            crate::store::time_text(now)
+        )
+    })
 }
 
 /// True (with a debug line) when shutdown has been asked, so a post-snapshot step is
@@ -257,7 +276,7 @@ fn finish(
     let snapshot_id = ingest.snapshot_id();
     let plan = ingest.plan()?;
     let hold_reason = if source.extract == ExtractKind::Full {
-        truncation_guard(&plan, last, source.hold_fraction)
+        truncation_guard(&plan, last, source.hold_fraction, source.hold_removed_fraction)
     } else {
         None
     };
@@ -284,8 +303,14 @@ fn finish(
 }
 
 /// Why a full extract looks truncated, if it does: far fewer rows than the last applied
-/// snapshot, or removing a large share of the current records.
-pub fn truncation_guard(plan: &Plan, last: Option<&LastApplied>, fraction: f64) -> Option<String> {
+/// snapshot (`fraction`), or removing a share of the current records above the stricter
+/// `removed_fraction` (and more than `HOLD_REMOVED_MIN` records).
+pub fn truncation_guard(
+    plan: &Plan,
+    last: Option<&LastApplied>,
+    fraction: f64,
+    removed_fraction: f64,
+) -> Option<String> {
     let last = last?;
     let floor = (1.0 - fraction) * last.rows_accepted as f64;
     if last.rows_accepted > 0 && (plan.accepted as f64) < floor {
@@ -297,12 +322,13 @@ pub fn truncation_guard(plan: &Plan, last: Option<&LastApplied>, fraction: f64) 
             fraction * 100.0
         ));
     }
-    if plan.current_before > 0 && plan.removed as f64 > fraction * plan.current_before as f64 {
+    let removed_floor = removed_fraction * plan.current_before as f64;
+    if plan.current_before > 0 && plan.removed > HOLD_REMOVED_MIN && plan.removed as f64 > removed_floor {
         return Some(format!(
-            "held: would remove {} of {} current records, more than {:.0}%; release or reject it",
+            "held: would remove {} of {} current records, more than {}%; release or reject it",
             plan.removed,
             plan.current_before,
-            fraction * 100.0
+            removed_fraction * 100.0
         ));
     }
     None
@@ -331,7 +357,7 @@ pub fn as_of_for_file(rule: &AsOfRule, path: &Path) -> Result<DateTime<Utc>> {
         AsOfRule::FileMtime => {
             let modified = std::fs::metadata(path)
                 .and_then(|m| m.modified())
-                .with_context(|| format!("reading the modification time of {}", path.display()))?;
+                .with_context(|| format!("reading the modification time of {}", escape_path(path)))?;
             Ok(DateTime::<Utc>::from(modified))
         }
         AsOfRule::NameDate(format) => {
@@ -381,9 +407,19 @@ mod tests {
     fn guard_holds_truncated_full_extracts() {
         let last = LastApplied { snapshot_id: 3, as_of: Utc::now(), rows_accepted: 1000 };
         let plan = |accepted, removed| Plan { accepted, removed, current_before: 1000, ..Plan::default() };
-        assert!(truncation_guard(&plan(800, 0), Some(&last), 0.2).is_none());
-        assert!(truncation_guard(&plan(799, 0), Some(&last), 0.2).unwrap().contains("drop of more than 20%"));
-        assert!(truncation_guard(&plan(1000, 201), Some(&last), 0.2).unwrap().contains("would remove 201"));
-        assert!(truncation_guard(&plan(10, 990), None, 0.2).is_none(), "first snapshot is never held");
+        let guard = |plan: &Plan, last| truncation_guard(plan, last, 0.2, 0.05);
+        assert!(guard(&plan(800, 0), Some(&last)).is_none());
+        assert!(guard(&plan(799, 0), Some(&last)).unwrap().contains("drop of more than 20%"));
+        assert!(guard(&plan(1000, 50), Some(&last)).is_none(), "5% removed is not more than 5%");
+        assert!(guard(&plan(1000, 51), Some(&last)).unwrap().contains("would remove 51"));
+        assert!(guard(&plan(10, 990), None).is_none(), "first snapshot is never held");
+        let small = Plan { accepted: 40, removed: 10, current_before: 50, ..Plan::default() };
+        let last_small = LastApplied { snapshot_id: 3, as_of: Utc::now(), rows_accepted: 45 };
+        assert!(guard(&small, Some(&last_small)).is_none(), "ten removals or fewer are never held");
+        // A writer that paused at 92% of a 3,000-record file: 241 removed, 8% of the records,
+        // under the row-count guard's 20% but over the removal guard's 5%.
+        let cut = Plan { accepted: 2759, removed: 241, current_before: 3000, ..Plan::default() };
+        let last_full = LastApplied { snapshot_id: 3, as_of: Utc::now(), rows_accepted: 3000 };
+        assert!(guard(&cut, Some(&last_full)).unwrap().contains("would remove 241 of 3000"));
     }
 }

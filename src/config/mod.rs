@@ -18,7 +18,9 @@ use std::time::Duration;
 pub use self::alerting::{AlertSettings, QualitySettings, Severity};
 pub use self::analysis::{AnalysisConfig, DelayEnd};
 use self::raw::RawConfig;
-pub use self::source::{AsOfRule, FolderSettings, Location, SourceConfig, UrlSettings, defaults};
+pub use self::source::{
+    AsOfRule, FolderSettings, HOLD_REMOVED_MIN, Location, SourceConfig, UrlSettings, defaults,
+};
 
 /// The example config that `tidemark init` writes, with comments.
 pub const EXAMPLE: &str = include_str!("../../config/example.toml");
@@ -48,13 +50,21 @@ pub struct Config {
     pub public_url: Option<String>,
 }
 
-/// How long requests and analysts' queries may run, and how many rows a query returns.
+/// How long requests and analysts' queries may run, how much a query may hold and return,
+/// and how many queries the API runs at once.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct ServeLimits {
     pub query: crate::store::SqlLimits,
     /// An API request that takes longer is answered 408 and dropped.
     pub request_timeout: Duration,
+    /// Analysts' queries the API runs at once; one more waits briefly, then gets 503.
+    pub query_concurrency: usize,
 }
+
+/// Default number of analysts' queries run at once: two per core of the machine this was
+/// sized on (two cores), so queries share the CPU with the ingest writer, and four queries
+/// at their memory limits stay well within the server's memory.
+pub const DEFAULT_QUERY_CONCURRENCY: usize = 4;
 
 /// Default API request timeout: longer than the SQL time limit, so a slow query ends with
 /// its own clear message rather than the generic timeout.
@@ -274,7 +284,46 @@ fn build_serve_limits(raw: &raw::RawServe, problems: &mut Vec<String>) -> ServeL
     if max_rows == 0 {
         problems.push("serve.query_max_rows: must be at least 1".into());
     }
-    ServeLimits { query: crate::store::SqlLimits { max_rows: max_rows.max(1), timeout }, request_timeout }
+    let query = crate::store::SqlLimits {
+        max_rows: max_rows.max(1),
+        timeout,
+        max_value_bytes: value_limit(raw.query_max_value_bytes, problems),
+        max_answer_bytes: at_least_one(
+            "query_max_answer_bytes",
+            raw.query_max_answer_bytes,
+            crate::store::sql::DEFAULT_MAX_ANSWER_BYTES,
+            problems,
+        ),
+        sqlite_heap_bytes: raw.sqlite_heap_bytes.unwrap_or(crate::store::sql::DEFAULT_SQLITE_HEAP_BYTES),
+    };
+    let query_concurrency =
+        at_least_one("query_concurrency", raw.query_concurrency, DEFAULT_QUERY_CONCURRENCY, problems);
+    ServeLimits { query, request_timeout, query_concurrency }
+}
+
+/// `serve.<key>`: a count or size that must be at least 1.
+fn at_least_one(key: &str, value: Option<usize>, default: usize, problems: &mut Vec<String>) -> usize {
+    match value {
+        None => default,
+        Some(0) => {
+            problems.push(format!("serve.{key}: must be at least 1"));
+            default
+        }
+        Some(n) => n,
+    }
+}
+
+/// `serve.query_max_value_bytes`: at least 1, at most SQLite's own maximum.
+fn value_limit(value: Option<usize>, problems: &mut Vec<String>) -> usize {
+    use crate::store::sql::{DEFAULT_MAX_VALUE_BYTES, MAX_VALUE_BYTES_CEILING};
+    let bytes = at_least_one("query_max_value_bytes", value, DEFAULT_MAX_VALUE_BYTES, problems);
+    if bytes > MAX_VALUE_BYTES_CEILING {
+        problems.push(format!(
+            "serve.query_max_value_bytes: at most {MAX_VALUE_BYTES_CEILING} (SQLite's maximum)"
+        ));
+        return DEFAULT_MAX_VALUE_BYTES;
+    }
+    bytes
 }
 
 fn build_alert_settings(raw: &raw::RawAlert, problems: &mut Vec<String>) -> AlertSettings {

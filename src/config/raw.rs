@@ -54,6 +54,9 @@ pub struct RawSource {
     #[serde(default)]
     pub ignore: Vec<String>,
     pub hold_fraction: Option<f64>,
+    pub hold_removed_fraction: Option<f64>,
+    pub as_of_tolerance: Option<String>,
+    pub limits: Option<RawLimits>,
     pub auth_header: Option<String>,
     pub auth_env: Option<String>,
     pub settle: Option<String>,
@@ -69,6 +72,18 @@ pub struct RawSource {
     pub fields: BTreeMap<String, String>,
     #[serde(default)]
     pub values: BTreeMap<String, BTreeMap<String, String>>,
+}
+
+/// `[source.limits]`: resource limits on each extract; every key is optional.
+#[derive(Debug, Deserialize, Serialize, Default)]
+#[serde(deny_unknown_fields)]
+pub struct RawLimits {
+    pub max_expansion: Option<u64>,
+    pub max_bytes: Option<u64>,
+    pub max_record_bytes: Option<u64>,
+    pub max_columns: Option<u64>,
+    pub max_json_depth: Option<u64>,
+    pub require_final_newline: Option<bool>,
 }
 
 #[derive(Debug, Deserialize, Default)]
@@ -114,6 +129,10 @@ pub struct RawServe {
     pub bind: Option<String>,
     pub query_max_rows: Option<usize>,
     pub query_timeout: Option<String>,
+    pub query_max_value_bytes: Option<usize>,
+    pub query_max_answer_bytes: Option<usize>,
+    pub query_concurrency: Option<usize>,
+    pub sqlite_heap_bytes: Option<usize>,
     pub request_timeout: Option<String>,
     /// The dashboard's address as people reach it, for links in alert messages.
     pub public_url: Option<String>,

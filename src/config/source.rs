@@ -13,7 +13,7 @@ use sha2::{Digest, Sha256};
 
 use super::raw::RawSource;
 use super::{env_state, parse_duration, redact_url};
-use crate::extract::{LegacyEncoding, Mapping};
+use crate::extract::{LegacyEncoding, Limits, Mapping};
 use crate::model::{ExtractKind, Field, Format};
 
 /// Default poll schedule: every 15 minutes, at second 0 (cron crate syntax, seconds first).
@@ -22,6 +22,20 @@ pub const DEFAULT_SCHEDULE: &str = "0 */15 * * * *";
 /// Default truncated-feed guard: hold a full extract that has more than this fraction fewer
 /// rows than the last applied one, or would remove more than this fraction of current records.
 pub const DEFAULT_HOLD_FRACTION: f64 = 0.2;
+
+/// Default for the stricter removal guard: hold a full extract that would remove more than
+/// this fraction of the current records (and more than `HOLD_REMOVED_MIN` of them). A daily
+/// full extract withdraws well under 1% of its records; a cut-off file removes its tail.
+pub const DEFAULT_HOLD_REMOVED_FRACTION: f64 = 0.05;
+
+/// Removals below this count are never held, whatever the fraction: on a small feed a few
+/// withdrawn records are a large share without being suspicious.
+pub const HOLD_REMOVED_MIN: u64 = 10;
+
+/// How far an extract's as-of time may lie after the server's clock: a file named for
+/// today means the end of today in UTC, which in a zone ahead of UTC can be up to two days
+/// ahead of the clock; anything later is a typo in a file name or a wrong clock.
+pub const DEFAULT_AS_OF_TOLERANCE: Duration = Duration::from_secs(48 * 3600);
 
 #[derive(Debug, Clone)]
 pub enum Location {
@@ -93,6 +107,10 @@ pub struct SourceConfig {
     pub as_of: AsOfRule,
     pub expect_every: Option<Duration>,
     pub hold_fraction: f64,
+    /// The removal guard's own, stricter threshold (see `DEFAULT_HOLD_REMOVED_FRACTION`).
+    pub hold_removed_fraction: f64,
+    /// How far an as-of time may lie after the server's clock before it is refused.
+    pub as_of_tolerance: Duration,
     pub mapping: Mapping,
     /// SHA-256 of the source's settings; stored so a changed mapping is visible.
     pub config_hash: String,
@@ -145,6 +163,23 @@ impl SourceConfig {
         if let Some(every) = self.expect_every {
             let _ = writeln!(out, "  expect_every: {}s", every.as_secs());
         }
+        let l = &self.mapping.limits;
+        let _ = writeln!(
+            out,
+            "  hold_removed_fraction: {} as_of_tolerance: {}s",
+            self.hold_removed_fraction,
+            self.as_of_tolerance.as_secs()
+        );
+        let _ = writeln!(
+            out,
+            "  limits: max_bytes={} max_expansion={} max_record_bytes={} max_columns={} max_json_depth={} require_final_newline={}",
+            l.max_bytes,
+            l.max_expansion,
+            l.max_record_bytes,
+            l.max_columns,
+            l.max_json_depth,
+            l.require_final_newline
+        );
         let _ = writeln!(out, "  key: {}", self.mapping.key_column);
         for (field, column) in &self.mapping.columns {
             let _ = writeln!(out, "  {field} <- {column}");
@@ -183,7 +218,19 @@ pub fn build(raw: RawSource, label: &str, base: &Path, problems: &mut Vec<String
     if !(hold_fraction > 0.0 && hold_fraction < 1.0) {
         push("hold_fraction", "must be between 0 and 1".into());
     }
-    let mapping = build_mapping(&raw, label, &mut push);
+    let hold_removed_fraction = raw.hold_removed_fraction.unwrap_or(DEFAULT_HOLD_REMOVED_FRACTION);
+    if !(hold_removed_fraction > 0.0 && hold_removed_fraction < 1.0) {
+        push("hold_removed_fraction", "must be between 0 and 1".into());
+    }
+    let as_of_tolerance = match raw.as_of_tolerance.as_deref() {
+        None => DEFAULT_AS_OF_TOLERANCE,
+        Some(text) => parse_duration(text).unwrap_or_else(|| {
+            push("as_of_tolerance", format!("\"{text}\" is not a duration such as 90s, 15m, 26h, 2d"));
+            DEFAULT_AS_OF_TOLERANCE
+        }),
+    };
+    let mut mapping = build_mapping(&raw, label, &mut push);
+    mapping.limits = build_limits(raw.limits.as_ref(), &mut push);
     let config_hash = hash_settings(&raw);
     let (location, schedule) = (location?, schedule?);
     (problems.len() == before).then_some(SourceConfig {
@@ -195,6 +242,8 @@ pub fn build(raw: RawSource, label: &str, base: &Path, problems: &mut Vec<String
         as_of,
         expect_every,
         hold_fraction,
+        hold_removed_fraction,
+        as_of_tolerance,
         mapping,
         config_hash,
     })
@@ -298,6 +347,23 @@ fn parse_as_of(text: &str, push: &mut impl FnMut(&str, String)) -> AsOfRule {
 
 fn valid_date_format(format: &str) -> bool {
     !format.is_empty() && !StrftimeItems::new(format).any(|item| matches!(item, Item::Error))
+}
+
+fn build_limits(raw: Option<&super::raw::RawLimits>, push: &mut impl FnMut(&str, String)) -> Limits {
+    let mut limits = Limits::default();
+    let Some(raw) = raw else { return limits };
+    let mut set = |key: &str, value: Option<u64>, slot: &mut u64| match value {
+        Some(0) => push(&format!("limits.{key}"), "must be at least 1".into()),
+        Some(n) => *slot = n,
+        None => {}
+    };
+    set("max_expansion", raw.max_expansion, &mut limits.max_expansion);
+    set("max_bytes", raw.max_bytes, &mut limits.max_bytes);
+    set("max_record_bytes", raw.max_record_bytes, &mut limits.max_record_bytes);
+    set("max_columns", raw.max_columns, &mut limits.max_columns);
+    set("max_json_depth", raw.max_json_depth, &mut limits.max_json_depth);
+    limits.require_final_newline = raw.require_final_newline.unwrap_or(false);
+    limits
 }
 
 fn build_mapping(raw: &RawSource, label: &str, push: &mut impl FnMut(&str, String)) -> Mapping {

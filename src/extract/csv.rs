@@ -1,12 +1,14 @@
 //! Delimited text extracts: BOM, detected or configured delimiter, quoted fields, legacy
-//! encodings per cell, ragged rows and unterminated quotes. Streams record by record.
+//! encodings per cell, ragged rows, unterminated quotes and quoted fields cut off at the end
+//! of the file. Streams record by record, within the source's limits.
 
-use std::collections::{BTreeMap, HashSet};
+use std::collections::{BTreeMap, HashMap};
 use std::io::{self, BufRead, Read};
 
 use chrono::NaiveDate;
 
 use super::encoding::decode_cell;
+use super::limits::CsvGuard;
 use super::mapping::{Mapped, Mapping, RawValue, map_row};
 use super::pipeline;
 use super::{ExtractError, MAX_FIELD_BYTES, MAX_RAW_BYTES, ParseError, Problem, ProblemKind, Row, raw_text};
@@ -21,11 +23,11 @@ pub(super) fn parse<E>(
     latest: NaiveDate,
     sink: &mut impl FnMut(Row) -> Result<(), E>,
 ) -> Result<(), ParseError<E>> {
-    let head = input.fill_buf().map_err(ExtractError::Read)?;
+    let head = input.fill_buf().map_err(ExtractError::from)?;
     if head.starts_with(&UTF8_BOM) {
         input.consume(UTF8_BOM.len());
     }
-    let head = input.fill_buf().map_err(ExtractError::Read)?;
+    let head = input.fill_buf().map_err(ExtractError::from)?;
     if head.iter().all(|b| b.is_ascii_whitespace()) {
         return Err(ExtractError::Empty.into());
     }
@@ -37,7 +39,7 @@ pub(super) fn parse<E>(
         .has_headers(false)
         .flexible(true)
         .delimiter(delimiter)
-        .from_reader(QuoteCounter { inner: input, quotes: 0 });
+        .from_reader(CsvGuard::new(input, delimiter, &mapping.limits));
     let mut record = csv::ByteRecord::new();
     if !read_record(&mut reader, &mut record)? {
         return Err(ExtractError::Empty.into());
@@ -66,11 +68,18 @@ pub(super) fn parse<E>(
             .collect()
     };
     pipeline::run(read, || (csv::ByteRecord::new(), 0), map, sink)?;
-    // An unterminated quote swallows the rest of the file into the last record: an odd
-    // number of quote bytes overall, and a last record whose cell runs over lines. (A stray
-    // quote inside an unquoted cell, such as an inch mark, is odd too, but harmless.)
-    if reader.into_inner().quotes % 2 == 1 && last_spans_lines {
-        return Err(ExtractError::UnterminatedQuote { line: last_line }.into());
+    // A quoted field still open at the end: either it swallowed the rest of the file (its
+    // cell runs over lines) or the file was cut inside it.
+    let guard = reader.into_inner();
+    if guard.quote_open() {
+        if last_spans_lines {
+            return Err(ExtractError::UnterminatedQuote { line: last_line }.into());
+        }
+        return Err(ExtractError::Truncated(format!(
+            "a quoted field on line {} is still open at the end of the file",
+            guard.line()
+        ))
+        .into());
     }
     Ok(())
 }
@@ -88,25 +97,9 @@ fn read_record<R: Read>(
     record: &mut csv::ByteRecord,
 ) -> Result<bool, ExtractError> {
     reader.read_byte_record(record).map_err(|err| match err.into_kind() {
-        csv::ErrorKind::Io(io) => ExtractError::Read(io),
+        csv::ErrorKind::Io(io) => ExtractError::from(io),
         other => ExtractError::Read(io::Error::other(format!("{other:?}"))),
     })
-}
-
-/// Counts quote bytes so that an unterminated quoted field (which swallows the rest of the
-/// file into one cell) can be told from a complete file. Doubled quotes inside a field keep
-/// the count even.
-struct QuoteCounter<R> {
-    inner: R,
-    quotes: u64,
-}
-
-impl<R: Read> Read for QuoteCounter<R> {
-    fn read(&mut self, buf: &mut [u8]) -> io::Result<usize> {
-        let n = self.inner.read(buf)?;
-        self.quotes += buf[..n].iter().filter(|&&b| b == b'"').count() as u64;
-        Ok(n)
-    }
 }
 
 /// Picks the candidate that occurs most often, outside quotes, in the first line.
@@ -137,14 +130,19 @@ struct Layout {
 impl Layout {
     fn from_header(header: &csv::ByteRecord, mapping: &Mapping) -> Result<Layout, ExtractError> {
         let mut names = Vec::with_capacity(header.len());
-        let mut seen = HashSet::new();
-        for cell in header {
+        let mut seen: HashMap<String, usize> = HashMap::new();
+        for (idx, cell) in header.iter().enumerate() {
             let name = decode_cell(cell, mapping.fallback_encoding)
                 .ok_or(ExtractError::BadHeader("not valid UTF-8"))?
                 .trim()
                 .to_string();
-            if !name.is_empty() && !seen.insert(name.clone()) {
-                return Err(ExtractError::DuplicateColumn(name));
+            // Positions, not names: in a file sent without its header the "names" are the
+            // first record's values.
+            if name.is_empty() {
+                return Err(ExtractError::UnnamedColumn { position: idx + 1 });
+            }
+            if let Some(first) = seen.insert(name.clone(), idx + 1) {
+                return Err(ExtractError::DuplicateColumn { first, second: idx + 1 });
             }
             names.push(name);
         }

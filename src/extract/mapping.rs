@@ -39,6 +39,8 @@ pub struct Mapping {
     /// CSV delimiter; detected from the header line when `None`.
     pub delimiter: Option<u8>,
     pub fallback_encoding: Option<LegacyEncoding>,
+    /// Resource limits on each extract of the source.
+    pub limits: super::Limits,
 }
 
 /// Missing tokens when the config names none (common practice in line lists).
@@ -67,6 +69,7 @@ impl Mapping {
             ignore: BTreeSet::new(),
             delimiter: None,
             fallback_encoding: None,
+            limits: super::Limits::default(),
         }
     }
 
@@ -221,15 +224,23 @@ fn set_field(
             record.hospitalised =
                 Some(normalize::parse_flag(text).map_err(|w| (ProblemKind::InvalidValue, w))?)
         }
-        Field::Symptoms => record.symptoms = Some(normalize::split_list(text, &mapping.list_separator)),
-        Field::Conditions => record.conditions = Some(normalize::split_list(text, &mapping.list_separator)),
+        Field::Symptoms => {
+            record.symptoms = Some(list(normalize::split_list(text, &mapping.list_separator))?)
+        }
+        Field::Conditions => {
+            record.conditions = Some(list(normalize::split_list(text, &mapping.list_separator))?)
+        }
         date_field => record.set_date(date_field, Some(parse_date(mapping, text, latest)?)),
     }
     Ok(())
 }
 
+fn list(items: Result<Vec<String>, Invalid>) -> Result<Vec<String>, FieldError> {
+    items.map_err(|why| (ProblemKind::InvalidValue, why))
+}
+
 fn set_list(record: &mut CaseRecord, field: Field, items: &[String]) -> Result<(), FieldError> {
-    let items = normalize::normalize_items(items.iter().map(String::as_str));
+    let items = list(normalize::normalize_items(items.iter().map(String::as_str)))?;
     match field {
         Field::Symptoms => record.symptoms = Some(items),
         Field::Conditions => record.conditions = Some(items),

@@ -33,10 +33,28 @@ pub fn parse_date(text: &str, formats: &[String]) -> Result<NaiveDate, Invalid> 
         if let Ok((date, rest)) = NaiveDate::parse_and_remainder(text, format)
             && (rest.starts_with('T') || rest.starts_with(' '))
         {
-            return Ok(date);
+            return if valid_time(&rest[1..]) { Ok(date) } else { Err(INVALID_TIME) };
         }
     }
     Err("not a valid date in the configured formats")
+}
+
+const INVALID_TIME: Invalid = "not a valid time of day after the date";
+
+/// Whether the text after a date's 'T' or space is a time of day (`08:30`, `08:30:00`,
+/// `08:30:00.250`, then nothing, `Z`, ` UTC` or an offset such as `+02:00`): a datetime
+/// with hour 25 is not a date with a harmless suffix.
+fn valid_time(text: &str) -> bool {
+    let rest = ["%H:%M:%S%.f", "%H:%M"]
+        .iter()
+        .find_map(|format| chrono::NaiveTime::parse_and_remainder(text, format).ok().map(|(_, rest)| rest));
+    let Some(rest) = rest else { return false };
+    let zone = rest.trim_start();
+    zone.is_empty()
+        || zone.eq_ignore_ascii_case("z")
+        || zone.eq_ignore_ascii_case("utc")
+        || chrono::DateTime::parse_from_str(&format!("2000-01-01T00:00:00{zone}"), "%Y-%m-%dT%H:%M:%S%#z")
+            .is_ok()
 }
 
 /// What the fast path of `parse_date` made of a text for one format.
@@ -91,9 +109,12 @@ fn quick_date(text: &str, format: &str) -> Quick {
         }
     }
     let [Some(year), Some(month), Some(day)] = parts else { return Quick::Unsure };
-    // Like `parse_date`'s remainder rule: a time may follow after 'T' or a space.
-    if !matches!(t.get(ti), None | Some(b'T') | Some(b' ')) {
-        return Quick::NoMatch;
+    // Like `parse_date`'s remainder rule: a valid time of day may follow after 'T' or a
+    // space (the text is ASCII up to `ti`, so slicing there is safe).
+    match t.get(ti) {
+        None => {}
+        Some(b'T') | Some(b' ') if valid_time(&text[ti + 1..]) => {}
+        _ => return Quick::NoMatch,
     }
     match NaiveDate::from_ymd_opt(year as i32, month, day) {
         Some(date) => Quick::Date(date),
@@ -174,13 +195,15 @@ pub fn parse_flag(text: &str) -> Result<bool, Invalid> {
 
 /// Splits a multi-valued cell, trims and lower-cases each item, turns temperature readings
 /// into `fever` (at or above 38.0 C) or drops them (below), and removes duplicates while
-/// keeping first-seen order. `none` alone means an explicitly empty list.
-pub fn split_list(text: &str, separator: &str) -> Vec<String> {
+/// keeping first-seen order. `none` alone means an explicitly empty list. A temperature
+/// outside the plausible human range makes the whole cell invalid: it is neither fever nor
+/// a symptom's name.
+pub fn split_list(text: &str, separator: &str) -> Result<Vec<String>, Invalid> {
     normalize_items(text.split(separator))
 }
 
 /// The same normalisation for items that arrive already split (JSON arrays).
-pub fn normalize_items<'a>(items: impl IntoIterator<Item = &'a str>) -> Vec<String> {
+pub fn normalize_items<'a>(items: impl IntoIterator<Item = &'a str>) -> Result<Vec<String>, Invalid> {
     let mut out: Vec<String> = Vec::new();
     for item in items {
         let item = item.trim().to_lowercase();
@@ -188,6 +211,9 @@ pub fn normalize_items<'a>(items: impl IntoIterator<Item = &'a str>) -> Vec<Stri
             continue;
         }
         let item = match temperature_celsius(&item) {
+            Some(celsius) if !PLAUSIBLE_CELSIUS.contains(&celsius) => {
+                return Err("temperature reading outside the plausible human range (25-45 C, 77-113 F)");
+            }
             Some(celsius) if celsius >= FEVER_CELSIUS => "fever".to_string(),
             Some(_) => continue,
             None => item,
@@ -196,15 +222,21 @@ pub fn normalize_items<'a>(items: impl IntoIterator<Item = &'a str>) -> Vec<Stri
             out.push(item);
         }
     }
-    out
+    Ok(out)
 }
 
+/// Body temperatures a living patient can have, in degrees Celsius (common practice for
+/// plausibility checks: 25-45 C, i.e. 77-113 F). A reading outside it is a typing or unit
+/// error (380 C, -40 F) and is not evidence of fever.
+pub const PLAUSIBLE_CELSIUS: std::ops::RangeInclusive<f64> = 25.0..=45.0;
+
 /// Reads a temperature such as `38.1 c`, `38.1°c`, `temp 39`, `fever 38.5` or `100.4 f`,
-/// returning degrees Celsius. A bare number between 34 and 43 is read as Celsius.
+/// returning degrees Celsius (NaN for `nan c`, negative for `-40 f`: readings all the same,
+/// for the caller's range check). A bare number between 34 and 43 is read as Celsius.
 pub fn temperature_celsius(item: &str) -> Option<f64> {
-    // Every reading starts with a number, so an item without a digit is not one (the quick
-    // answer for the usual "cough", without lower-casing it again).
-    if !item.bytes().any(|b| b.is_ascii_digit()) {
+    // Every reading starts with a number (or nan/inf), so an item without a digit is not
+    // one: the quick answer for the usual "cough", without lower-casing it again.
+    if !item.bytes().any(|b| b.is_ascii_digit()) && !starts_non_finite(item) {
         return None;
     }
     let item = item.trim().to_lowercase();
@@ -214,7 +246,7 @@ pub fn temperature_celsius(item: &str) -> Option<f64> {
         .unwrap_or(&item)
         .trim_start_matches([':', ' ', '='])
         .trim();
-    let (number, unit) = leading_number(item)?;
+    let (number, unit) = leading_number(item).or_else(|| non_finite(item))?;
     let unit = unit.trim().trim_start_matches('°').trim();
     match unit {
         "c" | "celsius" => Some(number),
@@ -224,13 +256,28 @@ pub fn temperature_celsius(item: &str) -> Option<f64> {
     }
 }
 
+fn starts_non_finite(item: &str) -> bool {
+    let head = item.trim_start().trim_start_matches(['-', '+']).as_bytes();
+    head.len() >= 3 && (head[..3].eq_ignore_ascii_case(b"nan") || head[..3].eq_ignore_ascii_case(b"inf"))
+}
+
+/// `nan` or `inf` where a reading's number belongs (what some exporters write for a
+/// missing or overflowing value).
+fn non_finite(text: &str) -> Option<(f64, &str)> {
+    ["nan", "-inf", "+inf", "inf"]
+        .iter()
+        .find_map(|word| text.strip_prefix(word).map(|rest| (f64::NAN, rest)))
+        .filter(|(_, rest)| !rest.trim().is_empty())
+}
+
 fn leading_number(text: &str) -> Option<(f64, &str)> {
-    let end = text
+    let sign = usize::from(text.starts_with(['-', '+']));
+    let end = text[sign..]
         .char_indices()
         .find(|(_, c)| !(c.is_ascii_digit() || *c == '.' || *c == ','))
-        .map(|(idx, _)| idx)
+        .map(|(idx, _)| idx + sign)
         .unwrap_or(text.len());
-    if end == 0 {
+    if end == sign || !text[sign..end].bytes().any(|b| b.is_ascii_digit()) {
         return None;
     }
     let number = text[..end].replace(',', ".").parse::<f64>().ok()?;
@@ -297,6 +344,9 @@ mod tests {
             (" 2026-03-01 ", &["%Y-%m-%d"], d(2026, 3, 1)),
             ("2026-03-01T08:30:00Z", &["%Y-%m-%d"], d(2026, 3, 1)),
             ("2026-03-01 08:30", &["%Y-%m-%d"], d(2026, 3, 1)),
+            ("2026-03-01T23:59:59.5+02:00", &["%Y-%m-%d"], d(2026, 3, 1)),
+            ("2026-03-01 08:30:00 UTC", &["%Y-%m-%d"], d(2026, 3, 1)),
+            ("2026-03-01T08:30:00-0500", &["%Y-%m-%d"], d(2026, 3, 1)),
             ("01/03/2026", &["%Y-%m-%d", "%d/%m/%Y"], d(2026, 3, 1)),
             ("2024-02-29", &["%Y-%m-%d"], d(2024, 2, 29)),
         ];
@@ -304,7 +354,18 @@ mod tests {
             let formats: Vec<String> = formats.iter().map(|f| f.to_string()).collect();
             assert_eq!(parse_date(text, &formats), *want, "{text}");
         }
-        for bad in ["2026-02-30", "2025-02-29", "2026-13-01", "yesterday", "2026-03-01x", "20260301"] {
+        for bad in [
+            "2026-02-30",
+            "2025-02-29",
+            "2026-13-01",
+            "yesterday",
+            "2026-03-01x",
+            "20260301",
+            "2020-01-01T25:00:00",
+            "2020-01-01T12:61",
+            "2020-01-01 noon",
+            "2020-01-01T",
+        ] {
             assert!(parse_date(bad, &iso()).is_err(), "{bad} should be invalid");
         }
     }
@@ -346,7 +407,9 @@ mod tests {
                 let chrono_answer = NaiveDate::parse_from_str(text, format).ok().or_else(|| {
                     NaiveDate::parse_and_remainder(text, format)
                         .ok()
-                        .filter(|(_, rest)| rest.starts_with('T') || rest.starts_with(' '))
+                        .filter(|(_, rest)| {
+                            (rest.starts_with('T') || rest.starts_with(' ')) && valid_time(&rest[1..])
+                        })
                         .map(|(date, _)| date)
                 });
                 match quick_date(text, format) {
@@ -416,8 +479,14 @@ mod tests {
             ("LOSS OF SMELL", ";", &["loss of smell"]),
         ];
         for (text, sep, want) in cases {
-            assert_eq!(split_list(text, sep), *want, "{text}");
+            assert_eq!(split_list(text, sep).unwrap(), *want, "{text}");
         }
+        // Outside 25-45 C (77-113 F), a reading is a typing or unit error: the cell is
+        // invalid, neither fever nor symptom text.
+        for bad in ["cough; 380 C", "-40 F", "NaN C", "inf f", "temp 12 c", "200 f"] {
+            assert!(split_list(bad, ";").is_err(), "{bad}");
+        }
+        assert_eq!(split_list("influenza; infection", ";").unwrap(), ["influenza", "infection"]);
     }
 
     #[test]
@@ -438,7 +507,9 @@ mod tests {
         }
         let f = temperature_celsius("100.4 F").unwrap();
         assert!((f - 38.0).abs() < 1e-9);
-        assert_eq!(normalize_items(["38.0 C"]), vec!["fever"]);
-        assert_eq!(normalize_items(["37.9 C"]), Vec::<String>::new());
+        assert_eq!(normalize_items(["38.0 C"]).unwrap(), vec!["fever"]);
+        assert_eq!(normalize_items(["37.9 C"]).unwrap(), Vec::<String>::new());
+        assert_eq!(temperature_celsius("-40 F"), Some(-40.0));
+        assert!(temperature_celsius("NaN C").unwrap().is_nan());
     }
 }

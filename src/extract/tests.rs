@@ -86,7 +86,87 @@ fn csv_whole_file_failures() {
     assert!(
         fails(b"id,onset,symptoms\n1,\"2026-03-01,x\n2,2026-03-01,x\n").contains("unterminated quoted field")
     );
-    assert!(fails(b"id,onset,onset,symptoms\n").contains("more than once"));
+    assert_eq!(
+        fails(b"id,onset,onset,symptoms\n"),
+        "header: columns 2 and 3 have the same name; every column needs its own"
+    );
+    assert_eq!(fails(b"id,onset,,symptoms\n"), "header: column 3 has no name; every column needs one");
+    // A file sent without its header: the first record is read as one, and its values are
+    // never quoted back.
+    let headerless = fails(b"1980-05-05,1980-05-05,cough\n");
+    assert!(headerless.contains("columns 1 and 2") && !headerless.contains("1980"), "{headerless}");
+}
+
+/// Extracts cut short fail whole, with the reason; none of their rows may be applied.
+#[test]
+fn truncated_extracts_fail_whole() {
+    let m = mapping();
+    let truncated = |format, bytes: &[u8]| match check(format, bytes, &m) {
+        Err(ExtractError::Truncated(why)) => why,
+        other => panic!("{}: {other:?}", String::from_utf8_lossy(bytes)),
+    };
+    let cases: &[(Format, &[u8], &str)] = &[
+        (Format::Csv, b"id,onset,symptoms\n1,2026-03-01,\"cough; fe", "quoted field on line 2"),
+        (Format::Csv, b"id,onset,symptoms\n1,2026-03-01,cough\n2,2026-03-0", "last line (3)"),
+        (Format::Csv, b"id,onset,symptoms\n1,2026-03-01,cough\n2,", "last line (3)"),
+        (Format::Ndjson, b"{\"id\":\"1\"}\n{\"id\":\"2\",\"ons", "last line (2)"),
+        (Format::Json, b"[{\"id\":\"1\"},{\"id\":\"2\"", "ends at line 1"),
+    ];
+    for (format, bytes, want) in cases {
+        let why = truncated(*format, bytes);
+        assert!(why.contains(want), "{why}");
+    }
+    // Complete files without a final newline are fine; a quoted cell that spans lines too.
+    assert_eq!(keys(Format::Csv, b"id,onset,symptoms\n1,2026-03-01,\"cough\nfever\""), ["1"]);
+    assert_eq!(keys(Format::Ndjson, b"{\"id\":\"1\"}"), ["1"]);
+    // A bad last line that does end with a newline is a rejected row, as any other.
+    let (_, rejects, _) = check(Format::Csv, b"id,onset,symptoms\n1,2026-03-01,x\n2,\n", &m).unwrap();
+    assert_eq!(rejects, [(3, ProblemKind::RaggedRow)]);
+    // A source that always ends with a newline can require it.
+    let mut strict = mapping();
+    strict.limits.require_final_newline = true;
+    assert!(matches!(
+        check(Format::Csv, b"id,onset,symptoms\n1,2026-03-01,cough", &strict),
+        Err(ExtractError::Truncated(_))
+    ));
+}
+
+/// Limits fail the whole extract with the limit's name, in bounded memory.
+#[test]
+fn limits_fail_the_extract() {
+    let mut m = mapping();
+    m.limits = Limits { max_record_bytes: 64, max_columns: 5, max_json_depth: 4, ..Limits::default() };
+    let limit = |format, bytes: &[u8]| match check(format, bytes, &m) {
+        Err(ExtractError::Limit(limit)) => limit.key,
+        other => panic!("{other:?}"),
+    };
+    let long = format!("id,onset,symptoms\n1,2026-03-01,{}\n", "x".repeat(100));
+    assert_eq!(limit(Format::Csv, long.as_bytes()), "max_record_bytes");
+    assert_eq!(limit(Format::Csv, b"id,onset,symptoms,a,b,c\n"), "max_columns");
+    assert_eq!(limit(Format::Csv, b"id,onset,symptoms\n1,,,,,,,,\n"), "max_columns");
+    assert_eq!(limit(Format::Json, b"[{\"id\":[[[[1]]]]}]"), "max_json_depth");
+    assert_eq!(limit(Format::Ndjson, b"{\"id\":[[[[1]]]]}\n"), "max_json_depth");
+    let long = format!("{{\"id\":\"{}\"}}\n", "x".repeat(100));
+    assert_eq!(limit(Format::Ndjson, long.as_bytes()), "max_record_bytes");
+    // A gzip bomb: far more output than max_expansion allows for its size.
+    let mut gz = flate2::write::GzEncoder::new(Vec::new(), flate2::Compression::best());
+    gz.write_all(b"id,onset,symptoms\n").unwrap();
+    for _ in 0..64 {
+        gz.write_all(&[b'\n'; 1 << 20]).unwrap();
+    }
+    let bomb = gz.finish().unwrap();
+    assert_eq!(limit(Format::Csv, &bomb), "max_expansion");
+}
+
+/// A key repeated in one JSON record is a problem, never silently the last value.
+#[test]
+fn json_repeated_keys_are_problems() {
+    let m = mapping();
+    let bytes = b"{\"id\":\"1\",\"onset\":\"2026-03-01\",\"onset\":\"2026-03-02\",\"note\":1,\"note\":2}\n{\"id\":\"2\",\"id\":\"3\"}\n";
+    let (keys, rejects, problems) = check(Format::Ndjson, bytes, &m).unwrap();
+    assert_eq!(keys, ["1"]);
+    assert_eq!(rejects, [(2, ProblemKind::RepeatedField)]);
+    assert_eq!(problems, [(1, "onset_date".to_string()), (1, "note".to_string())]);
 }
 
 #[test]
@@ -142,7 +222,7 @@ fn json_array_streams_records() {
     assert_eq!(rejects, [(2, ProblemKind::WrongType)]);
     let m = mapping();
     assert!(matches!(check(Format::Json, b"{\"id\":1}", &m), Err(ExtractError::Json(_))));
-    assert!(matches!(check(Format::Json, b"[{\"id\":1},", &m), Err(ExtractError::Json(_))));
+    assert!(matches!(check(Format::Json, b"[{\"id\":1},", &m), Err(ExtractError::Truncated(_))));
     assert!(matches!(check(Format::Json, b"", &m), Err(ExtractError::Empty)));
     assert!(matches!(check(Format::Json, b"[] x", &m), Err(ExtractError::Json(_))));
 }

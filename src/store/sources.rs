@@ -107,6 +107,22 @@ impl Store {
         }
         Ok(())
     }
+
+    /// Remembers the HTTP validators of a body that was taken, without touching the poll's
+    /// health (the poll's outcome is recorded once, by `record_poll`).
+    pub fn remember_validators(
+        &mut self,
+        source_id: i64,
+        etag: Option<&str>,
+        last_modified: Option<&str>,
+    ) -> Result<(), StoreError> {
+        self.conn.execute("INSERT OR IGNORE INTO source_health (source_id) VALUES (?1)", [source_id])?;
+        self.conn.execute(
+            "UPDATE source_health SET etag = ?2, last_modified = ?3 WHERE source_id = ?1",
+            params![source_id, etag, last_modified],
+        )?;
+        Ok(())
+    }
 }
 
 impl Reader {

@@ -650,3 +650,37 @@ fn ingest_removes_temporary_archive_files_of_killed_writers() -> TestResult {
     assert_eq!(archived.count(), 1, "the new extract is archived");
     Ok(())
 }
+
+/// `tidemark ingest` of A (30 records), B (the first 29), A again: the third is a new
+/// observation and is applied, as the daemon does; the same bytes as the latest applied
+/// snapshot add nothing (a `duplicate` snapshot), and an as-of time days after the clock is
+/// refused with the reason.
+#[test]
+fn ingest_applies_an_older_extract_seen_again_and_refuses_a_far_future_as_of() {
+    let (dir, config) = setup();
+    let rows: Vec<String> =
+        (1..=30).map(|n| format!("C-{n:04},Amberlee,2026-03-01,2026-03-02,34,F,")).collect();
+    let a = dir.path().join("a.csv");
+    let b = dir.path().join("b.csv");
+    std::fs::write(&a, csv(&rows.iter().map(String::as_str).collect::<Vec<_>>())).unwrap();
+    std::fs::write(&b, csv(&rows[..29].iter().map(String::as_str).collect::<Vec<_>>())).unwrap();
+    let store = dir.path().join("store/tidemark.db");
+    let current = || count(&open_ro(&store), "SELECT count(*) FROM case_version WHERE valid_to IS NULL");
+    for (file, as_of, want) in [(&a, "2026-03-02", 30), (&b, "2026-03-03", 29), (&a, "2026-03-04", 30)] {
+        let (code, stdout, stderr) =
+            tm(&config, &["ingest", file.to_str().unwrap(), "--source", "full", "--as-of", as_of]);
+        assert_eq!(code, 0, "{stdout}{stderr}");
+        assert!(stdout.contains("applied"), "{stdout}");
+        assert_eq!(current(), want, "after {as_of}");
+    }
+    let (code, stdout, _) =
+        tm(&config, &["ingest", a.to_str().unwrap(), "--source", "full", "--as-of", "2026-03-05"]);
+    assert_eq!(code, 0);
+    assert!(stdout.contains("duplicate"), "{stdout}");
+    let far = (chrono::Utc::now() + chrono::Duration::days(400)).format("%Y-%m-%d").to_string();
+    let (code, stdout, stderr) =
+        tm(&config, &["ingest", b.to_str().unwrap(), "--source", "full", "--as-of", &far]);
+    assert_eq!(code, 1, "{stdout}{stderr}");
+    assert!(format!("{stdout}{stderr}").contains("after the server's clock"), "{stdout}{stderr}");
+    assert_eq!(current(), 30);
+}

@@ -191,3 +191,80 @@ async fn many_files_at_once_are_taken_in_as_of_order_and_a_restart_takes_only_ne
     assert_eq!(daemon.snapshots().len(), 10);
     daemon.stop().await;
 }
+
+fn current_records(dir: &Path) -> i64 {
+    let db = crate::support::open_ro(&dir.join("data/t.db"));
+    crate::support::count(&db, "SELECT count(*) FROM case_version WHERE valid_to IS NULL")
+}
+
+/// A (3,000 records), B (the first 2,900), A again under a new name: the line list follows
+/// the latest file, so the third is applied although its bytes were seen before.
+#[tokio::test(flavor = "multi_thread")]
+async fn an_older_extract_seen_again_is_applied_a_b_a() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut daemon = start(dir.path(), "");
+    let a = extract(3000);
+    let b: String = a.lines().take(2901).map(|l| format!("{l}\n")).collect();
+    for (day, text) in [(1, &a), (2, &b), (3, &a)] {
+        fs::write(daemon.inbox.join(format!("county-2026-03-{day:02}.csv")), text).unwrap();
+        let event = daemon.poll().await;
+        assert!(
+            matches!(event.snapshots[..], [(_, tidemark::model::SnapshotStatus::Applied)]),
+            "day {day}: {event:?}"
+        );
+    }
+    assert_eq!(current_records(dir.path()), 3000);
+    // The latest file copied under another name adds nothing.
+    fs::write(daemon.inbox.join("county-2026-03-04.csv"), &a).unwrap();
+    let event = daemon.poll().await;
+    assert!(event.snapshots.is_empty() && event.error.is_none(), "{event:?}");
+    daemon.stop().await;
+}
+
+/// An exporter that writes 92% of the file, pauses 3.5 s (longer than the settle time, so
+/// the file looks complete) and then writes the rest. Cut mid-row, the partial file fails as
+/// truncated; cut at a row boundary it is held by the removal guard (8% removed). Either
+/// way no record is removed, and the complete file is then applied.
+#[tokio::test(flavor = "multi_thread")]
+async fn a_writer_that_pauses_never_removes_records() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut daemon = start(dir.path(), "");
+    let full = extract(3000);
+    fs::write(daemon.inbox.join("county-2026-03-01.csv"), &full).unwrap();
+    assert_eq!(daemon.poll().await.snapshots.len(), 1);
+    let row_boundary = full.match_indices('\n').nth(2760).unwrap().0 + 1;
+    // About 92% of the file, cut inside a row's key (so the row has too few fields) or
+    // exactly at a row's end. (A cut inside a row's last field leaves a row that parses: only
+    // the removal guard can tell, and it holds the file, as at a row's end.)
+    for (day, cut, want) in [(2, row_boundary - 15, "failed"), (3, row_boundary, "held")] {
+        let path = daemon.inbox.join(format!("county-2026-03-{day:02}.csv"));
+        let bytes = full.clone().into_bytes();
+        let writer = std::thread::spawn(move || {
+            let mut file = fs::File::create(&path).unwrap();
+            file.write_all(&bytes[..cut]).unwrap();
+            file.flush().unwrap();
+            std::thread::sleep(Duration::from_millis(3500));
+            file.write_all(&bytes[cut..]).unwrap();
+        });
+        std::thread::sleep(Duration::from_millis(400));
+        let during = daemon.poll().await;
+        let statuses: Vec<&str> = during.snapshots.iter().map(|(_, status)| status.name()).collect();
+        assert_eq!(statuses, [want], "day {day}: {during:?}");
+        assert_eq!(current_records(dir.path()), 3000, "day {day}: nothing removed");
+        writer.join().unwrap();
+        // The completed file has a new size and mtime: it is taken, and equals the
+        // current line list, so it adds nothing or is applied without removing anything.
+        let after = daemon.poll().await;
+        assert!(after.error.is_none(), "day {day}: {after:?}");
+        assert_eq!(current_records(dir.path()), 3000, "day {day}");
+    }
+    let db = crate::support::open_ro(&dir.path().join("data/t.db"));
+    assert_eq!(
+        crate::support::count(
+            &db,
+            "SELECT coalesce(sum(rows_removed), 0) FROM snapshot WHERE status = 'applied'"
+        ),
+        0
+    );
+    daemon.stop().await;
+}

@@ -876,3 +876,95 @@ async fn daemon_wrong_auth_takes_nothing() {
     assert!(requests >= 2 && requests <= polls, "{requests} requests in {polls} polls");
     assert!(log.all().iter().all(|s| s.header(header::AUTHORIZATION).as_deref() == Some(TOKEN_WRONG_VALUE)));
 }
+
+/// The feed sends A (30 records), then B (the first 29: one withdrawn), then A again:
+/// the current line list must follow the latest body, so the third body is a new
+/// observation and is applied even though its bytes were seen before. Only a body equal to
+/// the *latest* applied one adds nothing.
+#[tokio::test(flavor = "multi_thread")]
+async fn daemon_applies_an_older_body_seen_again_a_b_a() {
+    let lines: Vec<String> = (1..=30)
+        .map(|n| format!("{{\"case_id\":\"L-{n:04}\",\"district\":\"Amberlee\",\"onset\":\"2026-03-01\"}}\n"))
+        .collect();
+    let body_a: &'static str = Box::leak(lines.concat().into_boxed_str());
+    let body_b: &'static str = Box::leak(lines[..29].concat().into_boxed_str());
+    let current = Arc::new(Mutex::new(body_a));
+    let offered = current.clone();
+    let (url, _log) =
+        axum_server(move |_: &Seen| (StatusCode::OK, *offered.lock().unwrap()).into_response()).await;
+    let dir = tempfile::tempdir().unwrap();
+    let mut daemon = Daemon::start(dir.path(), &url, &[]);
+    let current_records = |daemon: &Daemon| {
+        let db = support::open_ro(&daemon.store());
+        support::count(&db, "SELECT count(*) FROM case_version WHERE valid_to IS NULL")
+    };
+    let first = daemon.next_poll().await;
+    assert_eq!(first.snapshots.len(), 1, "{first:?}");
+    assert_eq!(current_records(&daemon), 30);
+    *current.lock().unwrap() = body_b;
+    let second = daemon.poll_now().await;
+    assert_eq!(second.snapshots.len(), 1, "{second:?}");
+    assert_eq!(current_records(&daemon), 29);
+    *current.lock().unwrap() = body_a;
+    let third = daemon.poll_now().await;
+    assert!(
+        matches!(third.snapshots[..], [(_, SnapshotStatus::Applied)]),
+        "A seen again is applied: {third:?}"
+    );
+    assert_eq!(current_records(&daemon), 30, "the line list is the latest body's");
+    let fourth = daemon.poll_now().await;
+    assert_eq!(
+        (fourth.snapshots.len(), fourth.error.as_deref()),
+        (0, None),
+        "the latest body again: {fourth:?}"
+    );
+    assert_eq!(daemon.snapshots().len(), 3);
+    daemon.stop().await;
+}
+
+/// A body that fails (here cut off: its last line has no newline and does not parse) is a
+/// failed poll, and so is every later poll that fetches the same bytes, without parsing
+/// them again; the failing-polls count keeps growing until a good body arrives.
+#[tokio::test(flavor = "multi_thread")]
+async fn daemon_counts_a_failing_body_as_failed_polls_until_it_is_fixed() {
+    let cut: &'static str = concat!(
+        r#"{"case_id":"L-0001","district":"Amberlee","onset":"2026-03-01"}"#,
+        "\n",
+        r#"{"case_id":"L-00"#
+    );
+    let current = Arc::new(Mutex::new(EXTRACT));
+    let offered = current.clone();
+    let (url, _log) =
+        axum_server(move |_: &Seen| (StatusCode::OK, *offered.lock().unwrap()).into_response()).await;
+    let dir = tempfile::tempdir().unwrap();
+    let mut daemon = Daemon::start(dir.path(), &url, &[]);
+    let first = daemon.next_poll().await;
+    assert_eq!((first.snapshots.len(), first.error.as_deref()), (1, None));
+    let success = daemon.health().last_success.clone();
+
+    *current.lock().unwrap() = cut;
+    let second = daemon.poll_now().await;
+    assert!(matches!(second.snapshots[..], [(_, SnapshotStatus::Failed)]), "{second:?}");
+    let error = second.error.clone().unwrap_or_default();
+    assert!(error.contains("truncated"), "{error}");
+    for _ in 0..2 {
+        let again = daemon.poll_now().await;
+        assert!(again.snapshots.is_empty(), "the same failing bytes are not parsed again: {again:?}");
+        assert!(
+            again.error.as_deref().unwrap_or_default().contains("same bytes as failed snapshot"),
+            "{again:?}"
+        );
+    }
+    let health = daemon.health();
+    assert_eq!(health.consecutive_failures, 3, "{health:?}");
+    assert_eq!(health.last_success, success, "a failing body is never a success");
+    assert_eq!(daemon.snapshots().len(), 2, "one failed snapshot, not one per poll");
+    let db = support::open_ro(&daemon.store());
+    assert_eq!(support::count(&db, "SELECT count(*) FROM case_version WHERE valid_to IS NULL"), 2);
+
+    *current.lock().unwrap() = EXTRACT_DAY2;
+    let fixed = daemon.poll_now().await;
+    assert!(matches!(fixed.snapshots[..], [(_, SnapshotStatus::Applied)]), "{fixed:?}");
+    assert_eq!(daemon.health().consecutive_failures, 0);
+    daemon.stop().await;
+}
