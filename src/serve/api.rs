@@ -2,7 +2,10 @@
 //! delays, quality, alerts), read-only SQL, and its OpenAPI document. JSON (arrays of
 //! objects with snake_case keys, as the CLI's `--format json`) or CSV. Every request but the
 //! document needs a bearer token; every read runs on a read-only connection on a blocking
-//! thread, never on the async executor. Nothing here writes to the store.
+//! thread, never on the async executor. Nothing here writes to the store. At most
+//! `serve.query_concurrency` analysts' queries run at once (one more waits briefly, then
+//! gets 503), and every error answer, the body limit's and the timeout's included, is
+//! `{"error": "..."}`; a query parameter given twice is refused.
 //!
 //! The listings themselves come through the `Listings` trait, which `app` implements with the
 //! CLI's own functions, so the API and the CLI always give the same answer.
@@ -10,13 +13,16 @@
 use std::collections::BTreeMap;
 use std::path::PathBuf;
 use std::sync::Arc;
+use std::time::Duration;
 
 use axum::Router;
 use axum::body::Bytes;
+use axum::extract::rejection::QueryRejection;
 use axum::extract::{Query, State};
 use axum::http::{HeaderMap, StatusCode, header};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post};
+use tokio::sync::{OwnedSemaphorePermit, Semaphore};
 use tower_http::limit::RequestBodyLimitLayer;
 use tower_http::timeout::TimeoutLayer;
 
@@ -29,6 +35,17 @@ use crate::table::Table;
 
 /// Largest request body: a SQL statement is a few KiB; nothing else takes a body.
 pub const MAX_BODY_BYTES: usize = 64 * 1024;
+
+/// The error message of a 405.
+pub(crate) const WRONG_METHOD: &str = "this path does not take that method";
+
+/// How long an analysts' query waits for a free slot (`serve.query_concurrency`) before it
+/// is answered 503: long enough for a burst of short queries to pass in turn, short enough
+/// that the client of a busy server hears so at once.
+pub const QUERY_SLOT_WAIT: Duration = Duration::from_secs(1);
+
+/// The `Retry-After` of a 503 for want of a query slot, in seconds.
+const RETRY_AFTER_SECS: u64 = 1;
 
 /// Answers the API's listings. `app` implements it with the CLI's functions.
 pub trait Listings: Send + Sync + std::fmt::Debug + 'static {
@@ -82,11 +99,14 @@ pub struct ApiState {
     pub listings: Arc<dyn Listings>,
     pub pool: Arc<ReaderPool>,
     pub limits: ServeLimits,
+    /// One permit per analysts' query that may run at once.
+    pub query_slots: Arc<Semaphore>,
 }
 
 impl ApiState {
     pub fn new(store: PathBuf, listings: Arc<dyn Listings>, limits: ServeLimits) -> ApiState {
-        ApiState { listings, pool: Arc::new(ReaderPool::new(store)), limits }
+        let query_slots = Arc::new(Semaphore::new(limits.query_concurrency.max(1)));
+        ApiState { listings, pool: Arc::new(ReaderPool::new(store)), limits, query_slots }
     }
 }
 
@@ -99,30 +119,79 @@ pub fn router(state: ApiState) -> Router {
         router = match (route.method, handler) {
             (Method::Get, Handler::Listing(endpoint)) => router.route(
                 route.path,
-                get(
-                    move |State(s): State<ApiState>,
-                          Query(q): Query<BTreeMap<String, String>>,
-                          h: HeaderMap| { listing(s, endpoint, needed, q, h) },
-                ),
+                get(move |State(s): State<ApiState>, q: QueryPairs, h: HeaderMap| {
+                    listing(s, endpoint, needed, q, h)
+                }),
             ),
             (Method::Get, Handler::OpenApi) => router.route(route.path, get(openapi)),
             (Method::Post, Handler::Query) => router.route(
                 route.path,
-                post(
-                    move |State(s): State<ApiState>,
-                          Query(q): Query<BTreeMap<String, String>>,
-                          h: HeaderMap,
-                          body: Bytes| { query(s, needed, q, h, body) },
-                ),
+                post(move |State(s): State<ApiState>, q: QueryPairs, h: HeaderMap, body: Bytes| {
+                    query(s, needed, q, h, body)
+                }),
             ),
             _ => router,
         };
     }
+    // SQLite's process-wide memory cap holds from the start, not from the first query.
+    crate::store::sql::limit_sqlite_heap(state.limits.query.sqlite_heap_bytes);
     let timeout = state.limits.request_timeout;
     router
         .layer(RequestBodyLimitLayer::new(MAX_BODY_BYTES))
         .layer(TimeoutLayer::with_status_code(StatusCode::REQUEST_TIMEOUT, timeout))
+        .layer(axum::middleware::map_response(move |response| json_errors(response, timeout)))
         .with_state(state)
+}
+
+/// A request's query string as name-value pairs, repeated names kept.
+type QueryPairs = Result<Query<Vec<(String, String)>>, QueryRejection>;
+
+/// The query parameters by name; a name given twice is refused rather than one value
+/// silently winning.
+fn unique_params(pairs: QueryPairs) -> Result<BTreeMap<String, String>, ApiError> {
+    let Query(pairs) = pairs.map_err(|err| ApiError::new(StatusCode::BAD_REQUEST, err.body_text()))?;
+    let mut params = BTreeMap::new();
+    for (name, value) in pairs {
+        if params.contains_key(&name) {
+            return Err(ApiError::new(
+                StatusCode::BAD_REQUEST,
+                format!("query parameter {name:?} is given more than once; give it once"),
+            ));
+        }
+        params.insert(name, value);
+    }
+    Ok(params)
+}
+
+/// Error answers made outside the handlers (the body limit's 413, the timeout's 408, a
+/// method the route does not take) in the same JSON shape as the handlers' own.
+async fn json_errors(response: Response, timeout: Duration) -> Response {
+    let status = response.status();
+    let is_json = response
+        .headers()
+        .get(header::CONTENT_TYPE)
+        .is_some_and(|v| v.as_bytes().starts_with(b"application/json"));
+    if is_json || !(status.is_client_error() || status.is_server_error()) {
+        return response;
+    }
+    let message = match status {
+        StatusCode::PAYLOAD_TOO_LARGE => {
+            format!("the request body is larger than the limit of {MAX_BODY_BYTES} bytes")
+        }
+        StatusCode::REQUEST_TIMEOUT => format!(
+            "the request took longer than the limit of {} s (serve.request_timeout)",
+            timeout.as_secs_f64()
+        ),
+        StatusCode::METHOD_NOT_ALLOWED => WRONG_METHOD.to_string(),
+        other => other.canonical_reason().unwrap_or("error").to_ascii_lowercase(),
+    };
+    // Keep the headers that say more (`Allow` on a 405); the body and its type are new.
+    let (mut parts, _body) = response.into_parts();
+    parts.headers.remove(header::CONTENT_TYPE);
+    parts.headers.remove(header::CONTENT_LENGTH);
+    let json = ApiError::new(status, message).into_response();
+    parts.headers.extend(json.headers().clone());
+    Response::from_parts(parts, json.into_body())
 }
 
 /// An error answer: a status and a short message, as `{"error": "..."}`.
@@ -130,11 +199,13 @@ pub fn router(state: ApiState) -> Router {
 pub struct ApiError {
     status: StatusCode,
     message: String,
+    /// Seconds for a `Retry-After` header (503 for want of a query slot).
+    retry_after: Option<u64>,
 }
 
 impl ApiError {
-    fn new(status: StatusCode, message: impl Into<String>) -> ApiError {
-        ApiError { status, message: message.into() }
+    pub(crate) fn new(status: StatusCode, message: impl Into<String>) -> ApiError {
+        ApiError { status, message: message.into(), retry_after: None }
     }
 }
 
@@ -146,6 +217,9 @@ impl IntoResponse for ApiError {
             response
                 .headers_mut()
                 .insert(header::WWW_AUTHENTICATE, header::HeaderValue::from_static("Bearer"));
+        }
+        if let Some(secs) = self.retry_after {
+            response.headers_mut().insert(header::RETRY_AFTER, header::HeaderValue::from(secs));
         }
         response
     }
@@ -286,9 +360,10 @@ async fn listing(
     state: ApiState,
     endpoint: Endpoint,
     needed: Option<TokenScope>,
-    mut query: BTreeMap<String, String>,
+    pairs: QueryPairs,
     headers: HeaderMap,
 ) -> Result<Response, ApiError> {
+    let mut query = unique_params(pairs)?;
     let format = format_of(&mut query, &headers)?;
     check_params(&params_of(endpoint), &query)?;
     let params = Params::new(query);
@@ -310,10 +385,11 @@ struct QueryBody {
 async fn query(
     state: ApiState,
     needed: Option<TokenScope>,
-    mut params: BTreeMap<String, String>,
+    pairs: QueryPairs,
     headers: HeaderMap,
     body: Bytes,
 ) -> Result<Response, ApiError> {
+    let mut params = unique_params(pairs)?;
     let format = format_of(&mut params, &headers)?;
     check_params(&["format"], &params)?;
     // The token is checked before the body is even parsed.
@@ -321,8 +397,14 @@ async fn query(
     let body: QueryBody = serde_json::from_slice(&body).map_err(|err| {
         ApiError::new(StatusCode::BAD_REQUEST, format!("the body must be JSON {{\"sql\": \"...\"}}: {err}"))
     })?;
+    let slot = query_slot(&state).await?;
     let (path, limits) = (state.pool.path().to_path_buf(), state.limits.query);
-    let answer = tokio::task::spawn_blocking(move || crate::store::run_sql(&path, &body.sql, &limits)).await;
+    let answer = tokio::task::spawn_blocking(move || {
+        // Held until the query ends, even if the request has timed out meanwhile.
+        let _slot = slot;
+        crate::store::run_sql(&path, &body.sql, &limits)
+    })
+    .await;
     match answer {
         Ok(Ok(table)) => Ok(rows_response(&table, format)),
         Ok(Err(crate::store::StoreError::Refused(message))) => {
@@ -330,6 +412,24 @@ async fn query(
         }
         Ok(Err(err)) => Err(store_failed(&err)),
         Err(_) => Err(ApiError::new(StatusCode::INTERNAL_SERVER_ERROR, "internal error; see the server log")),
+    }
+}
+
+/// A permit to run one analysts' query, waiting at most `QUERY_SLOT_WAIT` for one.
+async fn query_slot(state: &ApiState) -> Result<OwnedSemaphorePermit, ApiError> {
+    let slots = state.query_slots.clone();
+    match tokio::time::timeout(QUERY_SLOT_WAIT, slots.acquire_owned()).await {
+        Ok(Ok(permit)) => Ok(permit),
+        // The semaphore is never closed; treat it like a full one all the same.
+        Ok(Err(_)) | Err(_) => {
+            let message = format!(
+                "too many SQL queries are running (the limit is {} at once); try again shortly",
+                state.limits.query_concurrency
+            );
+            let mut err = ApiError::new(StatusCode::SERVICE_UNAVAILABLE, message);
+            err.retry_after = Some(RETRY_AFTER_SECS);
+            Err(err)
+        }
     }
 }
 

@@ -1,5 +1,6 @@
-//! The operators' endpoints: `/healthz` (200 when the scheduler runs and the store opens and
-//! answers, 503 otherwise) and `/metrics` (Prometheus text). Bound to localhost by default.
+//! The operators' endpoints: `/healthz` (200 `ok` when the scheduler runs and the store opens
+//! and answers, 503 with a JSON error saying which not) and `/metrics` (Prometheus text).
+//! Bound to localhost by default.
 
 use std::path::PathBuf;
 use std::sync::Arc;
@@ -9,9 +10,10 @@ use std::time::Instant;
 use axum::Router;
 use axum::extract::State;
 use axum::http::{StatusCode, header};
-use axum::response::IntoResponse;
+use axum::response::{IntoResponse, Response};
 use axum::routing::get;
 
+use super::api::ApiError;
 use crate::metrics::Metrics;
 use crate::store::Reader;
 
@@ -27,19 +29,20 @@ pub fn router(state: OpsState) -> Router {
     Router::new().route("/healthz", get(healthz)).route("/metrics", get(metrics)).with_state(state)
 }
 
-async fn healthz(State(state): State<OpsState>) -> impl IntoResponse {
+async fn healthz(State(state): State<OpsState>) -> Response {
+    let unhealthy = |why: &str| ApiError::new(StatusCode::SERVICE_UNAVAILABLE, why).into_response();
     if !state.scheduler_running.load(Ordering::SeqCst) {
-        return (StatusCode::SERVICE_UNAVAILABLE, "scheduler not running\n");
+        return unhealthy("scheduler not running");
     }
     let store = state.store.clone();
     let answers = tokio::task::spawn_blocking(move || Reader::open(&store).and_then(|r| r.ping())).await;
     match answers {
-        Ok(Ok(())) => (StatusCode::OK, "ok\n"),
+        Ok(Ok(())) => (StatusCode::OK, "ok\n").into_response(),
         Ok(Err(err)) => {
             tracing::warn!(error = %err, "healthz: store does not answer");
-            (StatusCode::SERVICE_UNAVAILABLE, "store unavailable\n")
+            unhealthy("store unavailable")
         }
-        Err(_) => (StatusCode::SERVICE_UNAVAILABLE, "store check failed\n"),
+        Err(_) => unhealthy("store check failed"),
     }
 }
 
@@ -70,7 +73,11 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         let store = dir.path().join("t.db");
         assert_eq!(status(state(true, store.clone()), "/healthz").await.0, StatusCode::OK);
-        assert_eq!(status(state(false, store), "/healthz").await.0, StatusCode::SERVICE_UNAVAILABLE);
+        let (code, body) = status(state(false, store), "/healthz").await;
+        assert_eq!(
+            (code, body.as_str()),
+            (StatusCode::SERVICE_UNAVAILABLE, r#"{"error":"scheduler not running"}"#)
+        );
         let unreachable = PathBuf::from("/proc/tidemark-no-such-dir/t.db");
         assert_eq!(status(state(true, unreachable), "/healthz").await.0, StatusCode::SERVICE_UNAVAILABLE);
     }

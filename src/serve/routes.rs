@@ -165,7 +165,7 @@ pub const ROUTES: &[Route] = &[
         path: "/query",
         handler: Handler::Query,
         scope: Some(TokenScope::Sql),
-        summary: "One read-only SQL statement; body {\"sql\": \"SELECT ...\"}; refused if it would write; row and time limits",
+        summary: "One read-only SQL statement; body {\"sql\": \"SELECT ...\"}; refused if it would write; row, time, value-size and answer-size limits, a few at once",
         params: &[FORMAT],
     },
     Route {
@@ -244,7 +244,12 @@ fn operation(route: &Route) -> Value {
     }
     if route.handler == Handler::Query {
         op["requestBody"] = json!({"required": true, "content": {"application/json": {"schema": {"$ref": "#/components/schemas/Query"}}}});
+        op["responses"]["400"] =
+            error("bad parameter, refused query, or a query over its row, time, value or answer limit");
         op["responses"]["413"] = error("body larger than the limit");
+        op["responses"]["503"] = error(
+            "serve.query_concurrency queries already running (see Retry-After), or the store is unavailable",
+        );
     }
     op
 }

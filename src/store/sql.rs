@@ -3,7 +3,14 @@
 //! and `query_only` (from `open_reader`), and an authorizer that refuses at prepare time
 //! anything but reading: writes, schema changes, ATTACH/DETACH, transactions, PRAGMAs other
 //! than a short list of schema-describing ones, and the `load_extension` function. A row
-//! limit and a time limit (a progress handler) stop runaway queries. Errors say what was
+//! limit and a time limit (a progress handler) stop runaway queries. Memory is bounded per
+//! query, on the connection: SQLite refuses any string or blob longer than the value limit
+//! (`SQLITE_LIMIT_LENGTH`), the page cache (which also bounds the sorter before it spills to
+//! a temporary file) is small, and the answer stops growing at the answer limit, counted as
+//! rows are collected. There is deliberately no process-wide heap limit
+//! (`sqlite3_hard_heap_limit64`): it would also fail the ingest writer that shares the
+//! process in `tidemark run`, and the per-connection limits (with the API's cap on
+//! concurrent queries) already bound what analysts' SQL can take. Errors say what was
 //! refused and why, never a cell value.
 
 use std::path::Path;
@@ -11,11 +18,13 @@ use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::{Duration, Instant};
 
+use rusqlite::ErrorCode;
 use rusqlite::hooks::{AuthAction, AuthContext, Authorization};
+use rusqlite::limits::Limit;
 
 use super::read::cell;
 use super::{StoreError, open_reader};
-use crate::table::Table;
+use crate::table::{Cell, Table};
 
 /// Default row limit: enough for any listing a person reads or a spreadsheet holds, small
 /// enough that a forgotten WHERE does not stream the whole line list into memory.
@@ -25,6 +34,38 @@ pub const DEFAULT_MAX_ROWS: usize = 10_000;
 /// so ten seconds only stops queries that would run for much longer (runaway recursion,
 /// cross joins).
 pub const DEFAULT_TIMEOUT: Duration = Duration::from_secs(10);
+
+/// Default largest value (string or blob) a query may build: far above any real cell of a
+/// line list (free-text notes are kilobytes), far below what hurts the server. SQLite's own
+/// default is 1,000,000,000 bytes, so `zeroblob(1e9)` would take a gigabyte.
+pub const DEFAULT_MAX_VALUE_BYTES: usize = 16 * 1024 * 1024;
+
+/// Default largest answer, counted as rows are collected (see `cell_bytes`): a 10,000-row
+/// listing of the line list is a few megabytes, and the JSON answer is about this size, so a
+/// few of them at once stay well within the server's memory.
+pub const DEFAULT_MAX_ANSWER_BYTES: usize = 32 * 1024 * 1024;
+
+/// Default cap on the memory SQLite allocates in the whole process (every connection: the
+/// ingest writer's 64 MiB cache and its statements, the pooled readers, analysts' queries).
+/// Ordinary work stays far below it (measured: 89 MiB at most while ingesting a
+/// 1,000,000-row extract twice, the second time held); it exists for statements that hold many values at the
+/// value limit at once (each distinct constant expression keeps its own copy), which the
+/// per-connection limits cannot see, so that such a query fails instead of the machine
+/// running out of memory.
+pub const DEFAULT_SQLITE_HEAP_BYTES: usize = 512 * 1024 * 1024;
+
+/// The largest value limit accepted: SQLite's compile-time maximum (`SQLITE_MAX_LENGTH`).
+pub const MAX_VALUE_BYTES_CEILING: usize = 1_000_000_000;
+
+/// The analysts' connection's page cache, in KiB (negative `cache_size`: kibibytes). It also
+/// bounds the sorter's memory before it spills to a temporary file; 2 MiB is SQLite's own
+/// default, set here explicitly so a change to the readers' defaults does not reach analysts.
+const CACHE_KIB: i64 = 2 * 1024;
+
+/// What one cell costs in an answer beyond its text: the cell itself, its JSON value and the
+/// object entry it sits in (measured order of magnitude, not exact), so that a million tiny
+/// cells count as the memory they take.
+const CELL_OVERHEAD_BYTES: usize = 64;
 
 /// How many SQLite virtual-machine steps pass between checks of the clock: cheap enough to
 /// be invisible, frequent enough to stop within milliseconds of the limit.
@@ -55,18 +96,32 @@ const REFUSED_FUNCTIONS: &[&str] = &["load_extension", "fts3_tokenizer"];
 pub struct SqlLimits {
     pub max_rows: usize,
     pub timeout: Duration,
+    /// The longest string or blob the query may build (`SQLITE_LIMIT_LENGTH`).
+    pub max_value_bytes: usize,
+    /// The largest answer (see `cell_bytes`).
+    pub max_answer_bytes: usize,
+    /// The cap on SQLite's memory in the whole process (see `limit_sqlite_heap`); 0: none.
+    pub sqlite_heap_bytes: usize,
 }
 
 impl Default for SqlLimits {
     fn default() -> SqlLimits {
-        SqlLimits { max_rows: DEFAULT_MAX_ROWS, timeout: DEFAULT_TIMEOUT }
+        SqlLimits {
+            max_rows: DEFAULT_MAX_ROWS,
+            timeout: DEFAULT_TIMEOUT,
+            max_value_bytes: DEFAULT_MAX_VALUE_BYTES,
+            max_answer_bytes: DEFAULT_MAX_ANSWER_BYTES,
+            sqlite_heap_bytes: DEFAULT_SQLITE_HEAP_BYTES,
+        }
     }
 }
 
 /// Runs one statement that only reads on a fresh read-only connection to the store at
 /// `path`, within `limits`.
 pub fn run_sql(path: &Path, sql: &str, limits: &SqlLimits) -> Result<Table, StoreError> {
+    limit_sqlite_heap(limits.sqlite_heap_bytes);
     let mut conn = open_reader(path)?;
+    bound_memory(&conn, limits)?;
     let refusal: Arc<std::sync::Mutex<Option<String>>> = Arc::default();
     let seen = refusal.clone();
     conn.authorizer(Some(move |ctx: AuthContext<'_>| {
@@ -101,9 +156,12 @@ pub fn run_sql(path: &Path, sql: &str, limits: &SqlLimits) -> Result<Table, Stor
                 limits.timeout.as_secs_f64()
             ));
         }
+        if let Some(why) = memory_refusal(&err, limits) {
+            return StoreError::Refused(why);
+        }
         StoreError::Refused(format!("query failed: {err}"))
     };
-    let table = collect(&conn, sql, limits.max_rows).map_err(|err| match err {
+    let table = collect(&conn, sql, limits).map_err(|err| match err {
         Collect::Sql(err) => explain(err),
         Collect::Other(err) => err,
     });
@@ -112,6 +170,56 @@ pub fn run_sql(path: &Path, sql: &str, limits: &SqlLimits) -> Result<Table, Stor
     let _ = conn.progress_handler(0, None::<fn() -> bool>);
     let _ = conn.authorizer(None::<fn(AuthContext<'_>) -> Authorization>);
     table
+}
+
+/// Caps the memory SQLite may allocate in this whole process (`sqlite3_hard_heap_limit64`;
+/// 0 lifts the cap). Over the cap an allocation fails and its statement ends with "out of
+/// memory": an analyst's query, or, if it comes to that, an ingest, which then rolls back
+/// whole and is tried again at the next poll. The API sets it when it starts (so it holds
+/// from the first request in `tidemark run`), and every analysts' query sets it again.
+#[allow(unsafe_code)]
+pub fn limit_sqlite_heap(bytes: usize) {
+    let bytes = i64::try_from(bytes).unwrap_or(i64::MAX);
+    // SAFETY: the function takes a plain integer and only updates SQLite's global memory
+    // accounting under SQLite's own mutex (the bundled build is thread-safe); SQLite
+    // documents it as callable at any time, from any thread, with connections open.
+    unsafe {
+        rusqlite::ffi::sqlite3_hard_heap_limit64(bytes);
+    }
+}
+
+/// Sets the analysts' connection's own memory limits: the longest value and a small cache.
+fn bound_memory(conn: &rusqlite::Connection, limits: &SqlLimits) -> Result<(), StoreError> {
+    let longest = limits.max_value_bytes.clamp(1, MAX_VALUE_BYTES_CEILING);
+    conn.set_limit(Limit::SQLITE_LIMIT_LENGTH, i32::try_from(longest).unwrap_or(i32::MAX))?;
+    conn.pragma_update(None, "cache_size", -CACHE_KIB)?;
+    Ok(())
+}
+
+/// The message for a query SQLite stopped for lack of memory, if it was that.
+fn memory_refusal(err: &rusqlite::Error, limits: &SqlLimits) -> Option<String> {
+    match err.sqlite_error_code()? {
+        ErrorCode::TooBig => Some(format!(
+            "query stopped: it would build a value larger than the value limit of {}",
+            size_text(limits.max_value_bytes)
+        )),
+        ErrorCode::OutOfMemory => {
+            Some("query stopped: SQLite reached its memory limit; select less at once".into())
+        }
+        _ => None,
+    }
+}
+
+/// A byte count as people read it: whole MiB or KiB when it is one, else bytes.
+fn size_text(bytes: usize) -> String {
+    const KIB: usize = 1024;
+    const MIB: usize = 1024 * 1024;
+    match bytes {
+        0 => "0 bytes".into(),
+        b if b % MIB == 0 => format!("{} MiB", b / MIB),
+        b if b % KIB == 0 => format!("{} KiB", b / KIB),
+        b => format!("{b} bytes"),
+    }
 }
 
 enum Collect {
@@ -125,7 +233,7 @@ impl From<rusqlite::Error> for Collect {
     }
 }
 
-fn collect(conn: &rusqlite::Connection, sql: &str, max_rows: usize) -> Result<Table, Collect> {
+fn collect(conn: &rusqlite::Connection, sql: &str, limits: &SqlLimits) -> Result<Table, Collect> {
     if sql.trim().is_empty() {
         return Err(Collect::Other(StoreError::Refused("query: the SQL is empty".into())));
     }
@@ -140,17 +248,68 @@ fn collect(conn: &rusqlite::Connection, sql: &str, max_rows: usize) -> Result<Ta
     }
     let columns: Vec<String> = stmt.column_names().map(|c| c.to_string()).collect();
     let width = columns.len();
-    let mut table = Table { columns, rows: Vec::new() };
+    let mut answer = Answer { used: 0, limit: limits.max_answer_bytes };
+    let mut rows_out = Vec::new();
     let mut rows = stmt.query([])?;
     while let Some(row) = rows.next()? {
-        if table.rows.len() >= max_rows {
+        if rows_out.len() >= limits.max_rows {
             return Err(Collect::Other(StoreError::Refused(format!(
-                "query stopped: it returns more than the row limit of {max_rows}; add a LIMIT or aggregate"
+                "query stopped: it returns more than the row limit of {}; add a LIMIT or aggregate",
+                limits.max_rows
             ))));
         }
-        table.rows.push((0..width).map(|idx| cell(row.get_ref(idx))).collect::<Result<_, _>>()?);
+        let mut cells = Vec::with_capacity(width);
+        for (idx, column) in columns.iter().enumerate() {
+            let value = cell(row.get_ref(idx))?;
+            answer.spend(column, &value)?;
+            cells.push(value);
+        }
+        rows_out.push(cells);
     }
-    Ok(table)
+    Ok(Table { columns, rows: rows_out })
+}
+
+/// The size of the answer so far, against its limit.
+struct Answer {
+    used: usize,
+    limit: usize,
+}
+
+impl Answer {
+    /// Adds one cell; past the limit the query stops (before the rest is even read).
+    fn spend(&mut self, column: &str, value: &Cell) -> Result<(), Collect> {
+        self.used = self.used.saturating_add(cell_bytes(column, value));
+        if self.used <= self.limit {
+            return Ok(());
+        }
+        Err(Collect::Other(StoreError::Refused(format!(
+            "query stopped: its answer is larger than the answer limit of {}; select fewer or shorter columns, add a LIMIT or aggregate",
+            size_text(self.limit)
+        ))))
+    }
+}
+
+/// What one cell adds to an answer: its text as JSON writes it (escapes included), its
+/// column's name (a JSON answer repeats it in every row) and a fixed cost for the cell.
+fn cell_bytes(column: &str, value: &Cell) -> usize {
+    let text = match value {
+        Cell::Text(text) => json_len(text),
+        // The longest integer or real as text, or `null`.
+        _ => 24,
+    };
+    text + json_len(column) + CELL_OVERHEAD_BYTES
+}
+
+/// The length of `text` as a JSON string's contents: quotes and backslashes take two bytes,
+/// control characters up to six (`\u0001`).
+fn json_len(text: &str) -> usize {
+    text.bytes()
+        .map(|b| match b {
+            b'"' | b'\\' => 2,
+            0..=0x1f => 6,
+            _ => 1,
+        })
+        .sum()
 }
 
 /// Whether an action may run in an analyst's query; the error says why not.
@@ -257,7 +416,7 @@ mod tests {
         }
         let table = run_sql(&path, "SELECT 1 + 1 AS two", &SqlLimits::default()).unwrap();
         assert_eq!(table.columns, ["two"]);
-        assert_eq!(table.rows, [[crate::table::Cell::Int(2)]]);
+        assert_eq!(table.rows, [[Cell::Int(2)]]);
     }
 
     #[test]
@@ -300,7 +459,7 @@ mod tests {
         let (_dir, path) = store();
         let forever =
             "WITH RECURSIVE c(x) AS (SELECT 1 UNION ALL SELECT x + 1 FROM c) SELECT count(*) FROM c";
-        let limits = SqlLimits { max_rows: 100, timeout: Duration::from_millis(300) };
+        let limits = SqlLimits { max_rows: 100, timeout: Duration::from_millis(300), ..SqlLimits::default() };
         let started = Instant::now();
         let err = run_sql(&path, forever, &limits).unwrap_err().to_string();
         assert!(err.contains("time limit of 0.3 s"), "{err}");
@@ -308,6 +467,65 @@ mod tests {
         let many = "WITH RECURSIVE c(x) AS (SELECT 1 UNION ALL SELECT x + 1 FROM c) SELECT x FROM c";
         let err = run_sql(&path, many, &limits).unwrap_err().to_string();
         assert!(err.contains("row limit of 100"), "{err}");
+    }
+
+    #[test]
+    fn huge_values_are_refused_at_the_value_limit() {
+        let (_dir, path) = store();
+        for sql in [
+            "SELECT zeroblob(1000000000) AS b",
+            "SELECT length(zeroblob(1000000000)) AS n",
+            "SELECT printf('%.*c', 200000000, 'x') AS s",
+            "WITH RECURSIVE c(x) AS (SELECT 1 UNION ALL SELECT x + 1 FROM c LIMIT 20)
+             SELECT length(group_concat(printf('%.*c', 1000000, 'x'))) FROM c",
+        ] {
+            let message = refused(&path, sql);
+            assert!(message.contains("value limit of 16 MiB"), "{sql}: {message}");
+        }
+        let small = SqlLimits { max_value_bytes: 1000, ..SqlLimits::default() };
+        let message = run_sql(&path, "SELECT printf('%.*c', 1001, 'x')", &small).unwrap_err().to_string();
+        assert_eq!(
+            message,
+            "query stopped: it would build a value larger than the value limit of 1000 bytes"
+        );
+        let fits = run_sql(&path, "SELECT length(printf('%.*c', 1000, 'x')) AS n", &small).unwrap();
+        assert_eq!(fits.rows, [[Cell::Int(1000)]]);
+    }
+
+    #[test]
+    fn answers_stop_at_the_answer_limit() {
+        let (_dir, path) = store();
+        let limits = SqlLimits { max_answer_bytes: 16 * 1024, ..SqlLimits::default() };
+        let many = "WITH RECURSIVE c(x) AS (SELECT 1 UNION ALL SELECT x + 1 FROM c LIMIT 1000)
+                    SELECT printf('%.*c', 100, 'x') AS s FROM c";
+        let message = run_sql(&path, many, &limits).unwrap_err().to_string();
+        assert!(
+            message.starts_with("query stopped: its answer is larger than the answer limit of 16 KiB"),
+            "{message}"
+        );
+        // A wide row of tiny cells counts as the memory it takes, not as its few bytes of text.
+        let wide: Vec<String> = (0..300).map(|i| format!("{i} AS c{i}")).collect();
+        let message =
+            run_sql(&path, &format!("SELECT {}", wide.join(", ")), &limits).unwrap_err().to_string();
+        assert!(message.contains("answer limit"), "{message}");
+        let fine = run_sql(&path, &many.replace("LIMIT 1000", "LIMIT 50"), &limits).unwrap();
+        assert_eq!(fine.rows.len(), 50);
+    }
+
+    #[test]
+    fn cells_cost_their_json_text_their_column_and_a_fixed_overhead() {
+        let check = |column: &str, value: Cell, expected: usize| {
+            assert_eq!(cell_bytes(column, &value), expected + CELL_OVERHEAD_BYTES, "{column} {value:?}");
+        };
+        check("n", Cell::Int(7), 24 + 1);
+        check("n", Cell::Null, 24 + 1);
+        check("name", Cell::Text("Amberlee".into()), 8 + 4);
+        check("q", Cell::Text("say \"hi\"\\".into()), 12 + 1);
+        check("c", Cell::Text("\u{1}\n".into()), 12 + 1);
+        check("é", Cell::Text("ü".into()), 2 + 2);
+        assert_eq!(size_text(16 * 1024 * 1024), "16 MiB");
+        assert_eq!(size_text(64 * 1024), "64 KiB");
+        assert_eq!(size_text(1000), "1000 bytes");
     }
 
     #[test]

@@ -11,6 +11,7 @@ mod dashboard_browser;
 mod delays;
 mod exports;
 mod folder_source;
+mod hardening;
 mod history_props;
 mod quality;
 mod run_process;
