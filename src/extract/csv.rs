@@ -194,7 +194,9 @@ impl Layout {
                     line,
                     field: Some(name.clone()),
                     kind,
-                    message: format!("column \"{name}\": {why}; the cell was dropped"),
+                    // The position, not the header name: in a file sent without its
+                    // header the "names" are a record's values.
+                    message: format!("column {} (unmapped): {why}; the cell was dropped", idx + 1),
                     raw: None,
                 }),
                 _ => {}

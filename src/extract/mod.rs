@@ -9,6 +9,7 @@
 
 mod csv;
 mod encoding;
+pub mod fuzz;
 mod json;
 pub mod limits;
 pub mod mapping;

@@ -13,6 +13,7 @@ mod exports;
 mod folder_source;
 mod hardening;
 mod history_props;
+mod limits;
 mod quality;
 mod run_process;
 mod support;
