@@ -303,8 +303,8 @@ fn finish(
 }
 
 /// Why a full extract looks truncated, if it does: far fewer rows than the last applied
-/// snapshot (`fraction`), or removing a share of the current records above the stricter
-/// `removed_fraction` (and more than `HOLD_REMOVED_MIN` records).
+/// snapshot (`fraction`), or removing more than `fraction` of the current records, or more
+/// than the stricter `removed_fraction` of them when that is over `HOLD_REMOVED_MIN` records.
 pub fn truncation_guard(
     plan: &Plan,
     last: Option<&LastApplied>,
@@ -322,13 +322,16 @@ pub fn truncation_guard(
             fraction * 100.0
         ));
     }
-    let removed_floor = removed_fraction * plan.current_before as f64;
-    if plan.current_before > 0 && plan.removed > HOLD_REMOVED_MIN && plan.removed as f64 > removed_floor {
+    let removed = plan.removed as f64;
+    let share = |f: f64| f * plan.current_before as f64;
+    let suspicious =
+        removed > share(fraction) || (plan.removed > HOLD_REMOVED_MIN && removed > share(removed_fraction));
+    if plan.current_before > 0 && suspicious {
         return Some(format!(
-            "held: would remove {} of {} current records, more than {}%; release or reject it",
+            "held: would remove {} of {} current records, more than {:.0}%; release or reject it",
             plan.removed,
             plan.current_before,
-            removed_fraction * 100.0
+            if removed > share(fraction) { fraction } else { removed_fraction } * 100.0
         ));
     }
     None
@@ -415,7 +418,14 @@ mod tests {
         assert!(guard(&plan(10, 990), None).is_none(), "first snapshot is never held");
         let small = Plan { accepted: 40, removed: 10, current_before: 50, ..Plan::default() };
         let last_small = LastApplied { snapshot_id: 3, as_of: Utc::now(), rows_accepted: 45 };
-        assert!(guard(&small, Some(&last_small)).is_none(), "ten removals or fewer are never held");
+        assert!(guard(&small, Some(&last_small)).is_none(), "ten removals (20%) are under both guards");
+        let small_cut = Plan { accepted: 7, removed: 3, current_before: 10, ..Plan::default() };
+        let last_ten = LastApplied { snapshot_id: 3, as_of: Utc::now(), rows_accepted: 7 };
+        assert!(
+            guard(&small_cut, Some(&last_ten))
+                .unwrap()
+                .contains("would remove 3 of 10 current records, more than 20%")
+        );
         // A writer that paused at 92% of a 3,000-record file: 241 removed, 8% of the records,
         // under the row-count guard's 20% but over the removal guard's 5%.
         let cut = Plan { accepted: 2759, removed: 241, current_before: 3000, ..Plan::default() };
