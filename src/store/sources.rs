@@ -44,16 +44,6 @@ pub struct SourceStatus {
 }
 
 impl Store {
-    /// Whether bytes with this SHA-256 were already taken for the source, under any name.
-    pub fn sha_known(&self, source_id: i64, sha256: &str) -> Result<bool, StoreError> {
-        Ok(self.conn.query_row(
-            "SELECT EXISTS (SELECT 1 FROM source_file WHERE source_id = ?1 AND sha256 = ?2)
-                 OR EXISTS (SELECT 1 FROM snapshot WHERE source_id = ?1 AND sha256 = ?2)",
-            (source_id, sha256),
-            |r| r.get(0),
-        )?)
-    }
-
     pub fn record_file(&mut self, source_id: i64, file: &FileRecord) -> Result<(), StoreError> {
         self.conn.execute(
             "INSERT OR IGNORE INTO source_file (source_id, path, size, mtime_ns, sha256, snapshot_id, seen_at)
