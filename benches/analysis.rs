@@ -1,4 +1,4 @@
-//! Analysis benchmark (issue 4's performance targets): the hazard nowcast of 10 strata of
+//! Analysis benchmark (the performance targets): the hazard nowcast of 10 strata of
 //! 120 reference days with maximum delay 60 and 2,000 draws; the smooth nowcast of one such
 //! triangle; and delay fits with daily censoring and right truncation on 100,000 records,
 //! per family. Simulated data with fixed seeds; wall times on this machine, best of 3.

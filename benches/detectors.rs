@@ -1,4 +1,4 @@
-//! Detector evaluation (issue 5): simulated daily series with injected shifts (outbreak spikes
+//! Detector evaluation: simulated daily series with injected shifts (outbreak spikes
 //! of several sizes in counts, level shifts in reporting lag, step changes in missingness,
 //! drops in new records), each detector run every day as the daemon would, and per detector
 //! the detection rate, false alarms per 100 in-control days and median days to detection,

@@ -1,4 +1,4 @@
-//! Ingest benchmark (issue 2, "Performance"): generates a realistic full line-list extract
+//! Ingest benchmark: generates a realistic full line-list extract
 //! (1,000,000 rows, 16 columns, mixed date and age formats, sex codes, symptom lists with
 //! temperature readings, an ignored and an unmapped column, a few bad dates and duplicate
 //! keys), ingests it into a fresh store through `tidemark::app::ingest::ingest_file`, then
@@ -55,7 +55,7 @@ const BAD_DATE_EVERY: u64 = 10_000;
 /// the other rejected): exercises the duplicate path at a realistic rate.
 const DUPLICATE_EVERY: u64 = 20_000;
 
-/// Targets from issue 2 for this 2-core machine.
+/// Targets for this 2-core machine.
 const TARGET_FIRST_SECS: f64 = 20.0;
 const TARGET_REINGEST_SECS: f64 = 8.0;
 const TARGET_REINGEST_RSS_MB: f64 = 400.0;
@@ -286,10 +286,7 @@ fn run_bench(args: &Args) -> Result<()> {
         mb(n2_bytes)
     );
     let scale = args.rows as f64 / DEFAULT_ROWS as f64;
-    println!(
-        "targets (issue 2, for {DEFAULT_ROWS} rows{}):",
-        if scale < 1.0 { "; this run is smaller" } else { "" }
-    );
+    println!("targets (for {DEFAULT_ROWS} rows{}):", if scale < 1.0 { "; this run is smaller" } else { "" });
     // The targets are for the full size; a smaller run only shows that everything works
     // (its store growth is dominated by the fixed per-snapshot triangle and nowcast rows).
     let full = args.rows >= DEFAULT_ROWS;

@@ -1352,7 +1352,7 @@ mod tests {
     fn constant_delay_point_estimates_and_coverage() {
         // Check: simulation with known truth (analysis::simulate). A rising-and-falling
         // epidemic, gamma delay with mean 4 days; 30 seeds, horizons 0..7 (240 intervals):
-        // 90% coverage between 80% and 98% (issue 4 acceptance band) and the mean relative
+        // 90% coverage between 80% and 98% (the acceptance band) and the mean relative
         // error of the median within 8% (a tolerance for 30 noisy seeds, chosen here).
         let incidence = epidemic_curve(70, 10.0, 120.0, 50.0, 15.0, 20.0);
         let scenario = Scenario::constant_delay(incidence, 20, discretised_gamma(4.0, 0.6, 20));
@@ -1371,7 +1371,7 @@ mod tests {
         assert!(mean_wis < 0.5 * naive, "WIS {mean_wis} vs naive {naive}");
     }
 
-    /// The delay-shift simulation of issue 4: mean delay 3 days before the shift and 7 after,
+    /// The delay-shift simulation: mean delay 3 days before the shift and 7 after,
     /// the shift 20 days before the last reference date.
     fn shift_scenario() -> Scenario {
         let incidence = epidemic_curve(100, 10.0, 150.0, 70.0, 18.0, 25.0);
@@ -1402,9 +1402,9 @@ mod tests {
 
     #[test]
     fn beats_hazard_when_the_delay_lengthens() {
-        // Check: simulation with known truth (analysis::simulate), issue 4 item 2: after a
+        // Check: simulation with known truth (analysis::simulate): after a
         // delay shift (mean 3 -> 7 days, 20 days before the end) the mean WIS of `smooth`
-        // over horizons 0..7 is lower than that of `hazard`, and (issue 4 item 3) at most
+        // over horizons 0..7 is lower than that of `hazard`, and at most
         // half that of the naive "observed so far" count. 8 seeds keep the test quick; the
         // ignored `measure_delay_shift` runs 30.
         let (smooth, hazard) = compare_after_shift(8, 300);
@@ -1421,7 +1421,7 @@ mod tests {
     #[ignore = "30 seeds with 1000 draws: run with --release -- --ignored"]
     fn measure_delay_shift() {
         // Check: simulation with known truth, as `beats_hazard_when_the_delay_lengthens`, with
-        // 30 seeds; also the issue 4 acceptance band for the 90% coverage of the best method.
+        // 30 seeds; also the acceptance band for the 90% coverage of the best method.
         let (smooth, hazard) = compare_after_shift(30, 1000);
         let (s_cov, s_wis, naive, s_bias) = smooth.summary();
         let (h_cov, h_wis, _, h_bias) = hazard.summary();
@@ -1444,7 +1444,7 @@ mod tests {
     #[test]
     #[ignore = "timing: run with --release -- --ignored --nocapture"]
     fn timing_120_days_60_delays_2000_draws() {
-        // Issue 4 performance target (set for `hazard`): 120 reference days, maximum delay
+        // Performance target (set for `hazard`): 120 reference days, maximum delay
         // 60, 2,000 draws.
         let incidence = epidemic_curve(120, 20.0, 400.0, 80.0, 20.0, 30.0);
         let s = Scenario::delay_shift(

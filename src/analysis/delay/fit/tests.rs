@@ -1,5 +1,5 @@
 //! Fit tests: recovery of known parameters, the truncation correction during exponential growth
-//! (issue 4 acceptance), identifiability under strong truncation, and bookkeeping.
+//! (the acceptance check), identifiability under strong truncation, and bookkeeping.
 
 use rand_distr::{Gamma, LogNormal};
 
@@ -47,7 +47,7 @@ fn growth_cases() -> Vec<GrowthCase> {
     ]
 }
 
-/// Issue 4 acceptance: during growth at r = 0.1/day the naive mean is biased low (for the
+/// Acceptance: during growth at r = 0.1/day the naive mean is biased low (for the
 /// gamma, REFERENCE-CHECKS.md derives an observed mean of 13.08 d against 17.8 d), while the
 /// truncation-corrected fit is within 10% of the truth.
 #[test]
@@ -154,7 +154,7 @@ fn negative_delays_are_excluded_and_empty_data_is_reported() {
     assert!(empty.aic.is_nan() && !empty.identifiable && empty.mean_interval.is_none());
 }
 
-/// Performance target (issue 4): 100,000 records, censoring and truncation, at most 2 s per
+/// Performance target: 100,000 records, censoring and truncation, at most 2 s per
 /// family in release. Run with `cargo test --release --lib analysis::delay -- --ignored`.
 #[test]
 #[ignore]
