@@ -398,9 +398,7 @@ enum Taken {
 
 /// A file's size and modification time now, as the folder listing records them.
 fn stat(path: &Path) -> Option<(u64, i64)> {
-    let meta = std::fs::metadata(path).ok()?;
-    let mtime = meta.modified().ok()?.duration_since(std::time::UNIX_EPOCH).ok()?.as_nanos() as i64;
-    Some((meta.len(), mtime))
+    std::fs::metadata(path).ok().map(|meta| folder::size_and_mtime(&meta))
 }
 
 /// Archives one file and ingests it unless its bytes are those of the source's latest

@@ -162,7 +162,7 @@ where
             self.count += 1;
             let row = match parsed {
                 Parsed::Object(object, repeated) => {
-                    let raw = raw_text(Value::Object(object.clone()).to_string().as_bytes());
+                    let raw = raw_text(serde_json::to_string(&object).unwrap_or_default().as_bytes());
                     object_row(&object, &repeated, self.count, self.mapping, self.latest, raw)
                 }
                 Parsed::Other(value) => {

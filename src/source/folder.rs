@@ -83,13 +83,20 @@ fn inspect(root: &Path, name: &str) -> Result<Option<SeenFile>, String> {
         return Ok(None);
     }
     File::open(&real).map_err(|err| format!("{name}: cannot be read ({err})"))?;
+    let (size, mtime_ns) = size_and_mtime(&meta);
+    Ok(Some(SeenFile { path: real, name: name.to_string(), size, mtime_ns }))
+}
+
+/// A file's size and modification time (nanoseconds since the epoch; 0 if unknown), as a
+/// listing records them and as they are checked again around a read.
+pub fn size_and_mtime(meta: &fs::Metadata) -> (u64, i64) {
     let mtime_ns = meta
         .modified()
         .ok()
         .and_then(|t| t.duration_since(UNIX_EPOCH).ok())
         .map(|d| d.as_nanos() as i64)
         .unwrap_or_default();
-    Ok(Some(SeenFile { path: real, name: name.to_string(), size: meta.len(), mtime_ns }))
+    (meta.len(), mtime_ns)
 }
 
 /// Shell-style matching of a file name: `*` any run of characters, `?` one character.

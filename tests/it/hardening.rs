@@ -4,8 +4,7 @@
 //! same limits, and the HTTP listener's header-read timeout, connection limit and JSON error
 //! answers. Loopback only; every loop is bounded in count and time.
 
-use std::io::{Read, Write};
-use std::net::{TcpListener, TcpStream};
+use std::net::TcpListener;
 use std::path::Path;
 use std::process::{Child, Command, Stdio};
 use std::sync::Arc;
@@ -17,7 +16,7 @@ use tidemark::serve::HttpLimits;
 use tokio::io::{AsyncReadExt, AsyncWriteExt};
 
 use crate::api::{extract, token};
-use crate::support::{Env, day, run, source_toml, tidemark};
+use crate::support::{Env, day, get, proc_status_kib, run, source_toml, tidemark};
 
 /// The peak memory the served store may reach while four hostile queries run at once.
 /// Before the limits, four such queries took the server to 4.6 GB.
@@ -67,22 +66,8 @@ impl Server {
 
     /// A line of `/proc/<pid>/status` in KiB, e.g. `VmHWM` (the peak resident set).
     fn status_kib(&self, key: &str) -> u64 {
-        let status = std::fs::read_to_string(format!("/proc/{}/status", self.child.id())).unwrap();
-        let line = status.lines().find(|l| l.starts_with(&format!("{key}:"))).unwrap();
-        line.split_whitespace().nth(1).unwrap().parse().unwrap()
+        proc_status_kib(self.child.id(), key).unwrap()
     }
-}
-
-/// A plain HTTP/1.1 GET on loopback: (status, body).
-fn get(port: u16, path: &str) -> Option<(u16, String)> {
-    let mut stream = TcpStream::connect(("127.0.0.1", port)).ok()?;
-    stream.set_read_timeout(Some(Duration::from_secs(5))).ok()?;
-    write!(stream, "GET {path} HTTP/1.1\r\nHost: localhost\r\nConnection: close\r\n\r\n").ok()?;
-    let mut response = String::new();
-    stream.read_to_string(&mut response).ok()?;
-    let status = response.split(' ').nth(1)?.parse().ok()?;
-    let body = response.split_once("\r\n\r\n").map(|(_, b)| b.to_string()).unwrap_or_default();
-    Some((status, body))
 }
 
 /// A store with a few cases, served on a free port with `serve_toml` in its `[serve]` table.

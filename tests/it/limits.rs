@@ -9,18 +9,11 @@ use std::path::Path;
 use std::process::{Command, Stdio};
 use std::time::{Duration, Instant};
 
-use crate::support::{config_toml, count, open_ro, source_toml};
+use crate::support::{config_toml, count, open_ro, proc_status_kib, source_toml};
 
 /// The bound the limits keep every hostile file under (the debug build used by the tests,
 /// which allocates more freely than the release build).
 const PEAK_RSS_BOUND_KB: u64 = 300 * 1024;
-
-/// Peak resident memory of a process so far, in KiB, while it is alive.
-fn peak_kb(pid: u32) -> Option<u64> {
-    let status = std::fs::read_to_string(format!("/proc/{pid}/status")).ok()?;
-    let line = status.lines().find(|l| l.starts_with("VmHWM:"))?;
-    line.split_whitespace().nth(1)?.parse().ok()
-}
 
 /// Runs `tidemark ingest FILE` and returns (exit code, output, peak RSS in KiB).
 fn ingest_measured(config: &Path, file: &Path, source: &str) -> (i32, String, u64) {
@@ -36,7 +29,7 @@ fn ingest_measured(config: &Path, file: &Path, source: &str) -> (i32, String, u6
         .unwrap();
     let (mut peak, started) = (0, Instant::now());
     let status = loop {
-        if let Some(kb) = peak_kb(child.id()) {
+        if let Some(kb) = proc_status_kib(child.id(), "VmHWM") {
             peak = peak.max(kb);
         }
         if let Some(status) = child.try_wait().unwrap() {

@@ -4,13 +4,14 @@
 //! an unreadable file (tried as an unprivileged user) is reported without stopping the poll.
 
 use std::fs;
-use std::io::{Read, Write};
-use std::net::{TcpListener, TcpStream};
+use std::net::TcpListener;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::{Duration, Instant};
 
 use rusqlite::Connection;
+
+use crate::support::get;
 
 fn free_port() -> u16 {
     TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port()
@@ -51,18 +52,6 @@ fn extract(rows: usize) -> String {
         text.push_str(&format!("C-{idx:06},2026-02-{:02},Amberlee\n", 1 + idx % 28));
     }
     text
-}
-
-/// A plain HTTP/1.1 GET on loopback: (status, body).
-fn get(port: u16, path: &str) -> Option<(u16, String)> {
-    let mut stream = TcpStream::connect(("127.0.0.1", port)).ok()?;
-    stream.set_read_timeout(Some(Duration::from_secs(5))).ok()?;
-    write!(stream, "GET {path} HTTP/1.1\r\nHost: localhost\r\nConnection: close\r\n\r\n").ok()?;
-    let mut response = String::new();
-    stream.read_to_string(&mut response).ok()?;
-    let status = response.split(' ').nth(1)?.parse().ok()?;
-    let body = response.split_once("\r\n\r\n").map(|(_, b)| b.to_string()).unwrap_or_default();
-    Some((status, body))
 }
 
 fn wait_for(what: &str, timeout: Duration, mut ready: impl FnMut() -> bool) {

@@ -217,3 +217,24 @@ pub fn mode(path: &Path) -> u32 {
     std::fs::metadata(path).unwrap_or_else(|err| panic!("{}: {err}", path.display())).permissions().mode()
         & 0o777
 }
+
+/// A plain HTTP/1.1 GET on loopback: (status, body).
+pub fn get(port: u16, path: &str) -> Option<(u16, String)> {
+    use std::io::{Read, Write};
+    let mut stream = std::net::TcpStream::connect(("127.0.0.1", port)).ok()?;
+    stream.set_read_timeout(Some(std::time::Duration::from_secs(5))).ok()?;
+    write!(stream, "GET {path} HTTP/1.1\r\nHost: localhost\r\nConnection: close\r\n\r\n").ok()?;
+    let mut response = String::new();
+    stream.read_to_string(&mut response).ok()?;
+    let status = response.split(' ').nth(1)?.parse().ok()?;
+    let body = response.split_once("\r\n\r\n").map(|(_, b)| b.to_string()).unwrap_or_default();
+    Some((status, body))
+}
+
+/// A line of `/proc/PID/status` in KiB (e.g. `VmHWM`, the peak resident set), while the
+/// process is alive.
+pub fn proc_status_kib(pid: u32, key: &str) -> Option<u64> {
+    let status = std::fs::read_to_string(format!("/proc/{pid}/status")).ok()?;
+    let line = status.lines().find(|l| l.strip_prefix(key).is_some_and(|rest| rest.starts_with(':')))?;
+    line.split_whitespace().nth(1)?.parse().ok()
+}
