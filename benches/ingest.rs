@@ -316,10 +316,82 @@ fn run_bench(args: &Args) -> Result<()> {
         "  re-ingest store growth <= {TARGET_GROWTH_PERCENT}%: {growth_pct:.2}% {}",
         verdict(growth_pct <= TARGET_GROWTH_PERCENT)
     );
+    duplicate_cost(&dir, args)?;
     if !args.keep {
         fs::remove_dir_all(&dir).with_context(|| format!("removing {}", dir.display()))?;
     }
     Ok(())
+}
+
+/// Rows per part of the duplicate-key measurement: a tenth of the main run, at least 50,000.
+const DUPLICATE_PART_DIVISOR: u64 = 10;
+
+/// Target: a row rejected for a duplicate key costs at most this many normal rows.
+const TARGET_DUPLICATE_RATIO: f64 = 2.0;
+
+/// What a row rejected as a duplicate key costs against a normal row, each in a fresh store:
+/// `n` distinct rows; `2n` distinct rows; and `n` rows followed by the same `n` keys again
+/// with changed content, so that every duplicate arrives long after its first row was
+/// written (the costly case: that write must be undone). A normal row costs
+/// `(t(2n) - t(n)) / n`, a duplicate `(t(n + n duplicates) - t(n)) / n`, both to commit.
+fn duplicate_cost(dir: &Path, args: &Args) -> Result<()> {
+    let n = (args.rows / DUPLICATE_PART_DIVISOR).max(50_000);
+    let day = first_day();
+    let mut commit = Vec::new();
+    for (name, rows, duplicated) in [("base", n, false), ("distinct", 2 * n, false), ("duplicated", n, true)]
+    {
+        let part = dir.join(format!("duplicates-{name}"));
+        fs::create_dir_all(part.join("incoming"))?;
+        fs::write(part.join("tidemark.toml"), CONFIG)?;
+        let file = part.join("incoming").join(format!("{SOURCE}-{day}.csv"));
+        let generated = if duplicated {
+            write_repeated_extract(&file, args.seed, rows)?
+        } else {
+            write_extract(&file, args.seed, rows, 0, day)?
+        };
+        let result = child(&part, "tidemark", &file)?;
+        if result.status != "applied" || result.rejected != generated.duplicates {
+            bail!("duplicate-key part {name}: {} with {} rejected", result.status, result.rejected);
+        }
+        commit.push(result.commit_secs.unwrap_or(result.secs));
+    }
+    let per_row = |secs: f64| 1e6 * secs / n as f64;
+    let normal = per_row(commit[1] - commit[0]);
+    let duplicate = per_row(commit[2] - commit[0]);
+    let ratio = duplicate / normal.max(1e-9);
+    println!(
+        "duplicate keys ({n} rows, then {n} distinct rows or the same {n} keys again): to commit {:.2} s, \
+         {:.2} s, {:.2} s; a normal row {normal:.1} us, a duplicate-key reject {duplicate:.1} us",
+        commit[0], commit[1], commit[2]
+    );
+    let verdict = if ratio <= TARGET_DUPLICATE_RATIO { "ok" } else { "MISSED" };
+    println!("  duplicate-key reject <= {TARGET_DUPLICATE_RATIO}x a normal row: {ratio:.2}x {verdict}");
+    Ok(())
+}
+
+/// Writes `n` cases, then the same `n` keys again with changed content (each second row
+/// wins; each first row is rejected as a duplicate key).
+fn write_repeated_extract(path: &Path, seed: u64, n: u64) -> Result<Generated> {
+    let day = first_day();
+    let mut out = BufWriter::with_capacity(1 << 20, fs::File::create(path)?);
+    let exported_at = format!("{day}T06:00:00Z");
+    let mut generated = Generated { cases: n, duplicates: n, rows: 2 * n, ..Generated::default() };
+    let mut row = Vec::with_capacity(512);
+    writeln!(out, "{HEADER}")?;
+    for pass in 0..2 {
+        for index in 0..n {
+            let mut case = Case::generate(seed, index, day);
+            if pass == 1 {
+                case.change(seed, index, day);
+            }
+            row.clear();
+            case.write(&mut row, &exported_at);
+            generated.bytes += row.len() as u64;
+            out.write_all(&row)?;
+        }
+    }
+    out.into_inner().map_err(|err| err.into_error())?.sync_all()?;
+    Ok(generated)
 }
 
 /// The numbers tidemark reports must be the ones the generator built in.

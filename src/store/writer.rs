@@ -107,12 +107,30 @@ const CLOSE_VERSION: &str = "UPDATE case_version SET valid_to = ?1 WHERE version
 
 const REOPEN_VERSION: &str = "UPDATE case_version SET valid_to = NULL WHERE version_id = ?1";
 
-/// Deletes, attributes first, the version this extract wrote for a key.
-const DELETE_WRITTEN: [&str; 2] = [
-    "DELETE FROM case_attr WHERE version_id IN (SELECT version_id FROM case_version
-         WHERE source_id = ?1 AND case_key = ?2 AND valid_from = ?3)",
-    "DELETE FROM case_version WHERE source_id = ?1 AND case_key = ?2 AND valid_from = ?3",
-];
+/// The version this extract wrote for a key (there is at most one: a later row with the same
+/// key takes it over or deletes it).
+const WRITTEN_VERSION: &str =
+    "SELECT version_id FROM case_version WHERE source_id = ?1 AND case_key = ?2 AND valid_from = ?3";
+
+/// Rewrites the content of a version this extract wrote, in place, for a later row with the
+/// same key: the parameters are `VERSION_INSERT`'s and the version's id as ?22 (source,
+/// snapshot and key, ?1, ?2 and ?4, are bound but unused: the version already has them). In place, because no
+/// indexed column changes, so none of the four indexes of `case_version` is touched: a
+/// duplicate key then costs about one more normal row (the rejected row's text) instead of
+/// a delete from every index and a second insert.
+const REWRITE_VERSION: &str = "UPDATE case_version SET line = ?3, row_hash = ?5, jurisdiction = ?6, \
+     onset_date = ?7, specimen_date = ?8, result_date = ?9, report_date = ?10, admit_date = ?11, \
+     death_date = ?12, outcome = ?13, age_lo = ?14, age_hi = ?15, sex = ?16, hospitalised = ?17, \
+     symptoms = ?18, conditions = ?19, invalid = ?20, extra_json = ?21 \
+     WHERE version_id = ?22";
+
+/// Deletes a version's attributes, by the version's id (not by an `IN (SELECT ..)`, which
+/// builds a temporary B-tree per statement whose page cache SQLite allocates and frees every
+/// time: that made a duplicate key cost several normal rows).
+const DELETE_ATTRS: &str = "DELETE FROM case_attr WHERE version_id = ?1";
+
+/// Deletes one version by id (its attributes go first, with `DELETE_ATTRS`).
+const DELETE_VERSION: &str = "DELETE FROM case_version WHERE version_id = ?1";
 
 impl Store {
     /// Opens (creating and migrating if needed) the store at `path` for writing.
@@ -475,23 +493,31 @@ fn execute(
     }
     let mut insert_version = tx.prepare_cached(VERSION_INSERT)?;
     let mut insert_attr = tx.prepare_cached(ATTR_INSERT)?;
-    let delete_written = |key: &str| -> Result<(), StoreError> {
-        for sql in DELETE_WRITTEN {
-            tx.prepare_cached(sql)?.execute(params![source_id, key, snapshot_id])?;
-        }
-        Ok(())
+    let written = |key: &str| -> Result<Option<i64>, StoreError> {
+        Ok(tx
+            .prepare_cached(WRITTEN_VERSION)?
+            .query_row(params![source_id, key, snapshot_id], |row| row.get(0))
+            .optional()?)
     };
     for action in actions {
         match action {
             Action::Write { line, record, hash, replace, close } => {
-                if *replace {
-                    delete_written(&record.case_key)?;
-                }
+                let replacing = if *replace { written(&record.case_key)? } else { None };
                 if let Some(prev) = close {
                     tx.prepare_cached(CLOSE_VERSION)?.execute((snapshot_id, prev))?;
                 }
                 let version = VersionRow { source_id, snapshot_id, line: *line, record, hash: *hash };
-                let version_id = version.insert(&mut insert_version, scratch, tx)?;
+                let version_id = match replacing {
+                    Some(id) => {
+                        tx.prepare_cached(DELETE_ATTRS)?.execute([id])?;
+                        version.write(&mut tx.prepare_cached(REWRITE_VERSION)?, scratch, Some(id))?;
+                        id
+                    }
+                    None => {
+                        version.write(&mut insert_version, scratch, None)?;
+                        tx.last_insert_rowid()
+                    }
+                };
                 for (items, kind) in [(&record.symptoms, "symptom"), (&record.conditions, "condition")] {
                     for item in items.iter().flatten() {
                         insert_attr.execute(params![version_id, kind, item])?;
@@ -499,8 +525,9 @@ fn execute(
                 }
             }
             Action::Restore { key, replace, reopen } => {
-                if *replace {
-                    delete_written(key)?;
+                if *replace && let Some(id) = written(key)? {
+                    tx.prepare_cached(DELETE_ATTRS)?.execute([id])?;
+                    tx.prepare_cached(DELETE_VERSION)?.execute([id])?;
                 }
                 if let Some(prev) = reopen {
                     tx.prepare_cached(REOPEN_VERSION)?.execute([prev])?;
@@ -521,12 +548,14 @@ struct VersionRow<'r> {
 }
 
 impl VersionRow<'_> {
-    fn insert(
+    /// Inserts the version with `VERSION_INSERT`, or rewrites version `replacing` in place
+    /// with `REWRITE_VERSION`.
+    fn write(
         &self,
         stmt: &mut CachedStatement<'_>,
         scratch: &mut Scratch,
-        tx: &Transaction<'_>,
-    ) -> Result<i64, StoreError> {
+        replacing: Option<i64>,
+    ) -> Result<(), StoreError> {
         let record = self.record;
         let dates = record.dates.map(|date| date.map(IsoDate::new));
         let date = |field: Field| field.date_index().and_then(|idx| dates[idx].as_ref()).map(IsoDate::as_str);
@@ -535,7 +564,7 @@ impl VersionRow<'_> {
         let extra = json_text(&mut scratch.extra, Some(&record.extra).filter(|e| !e.is_empty()));
         let invalid = (!record.invalid.is_empty())
             .then(|| record.invalid.iter().map(|f| f.name()).collect::<Vec<_>>().join(","));
-        stmt.execute(params![
+        let values = params![
             self.source_id,
             self.snapshot_id,
             self.line as i64,
@@ -557,8 +586,12 @@ impl VersionRow<'_> {
             conditions,
             invalid,
             extra,
-        ])?;
-        Ok(tx.last_insert_rowid())
+        ];
+        match replacing {
+            Some(id) => stmt.execute(&*[values, &[&id as &dyn rusqlite::ToSql]].concat())?,
+            None => stmt.execute(values)?,
+        };
+        Ok(())
     }
 }
 

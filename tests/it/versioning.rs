@@ -250,6 +250,113 @@ fn duplicate_keys_in_one_extract_keep_the_last_row_and_reject_the_others_with_th
     Ok(())
 }
 
+/// `n` records K-00000.. with onsets in February and the symptom `cough`.
+fn many_rows(n: usize) -> Vec<String> {
+    (0..n).map(|i| format!("K-{i:05},Amberlee,2026-02-{:02},,30,F,cough", 1 + i % 28)).collect()
+}
+
+#[test]
+fn duplicate_keys_far_apart_rewrite_or_undo_the_earlier_version_exactly() -> TestResult {
+    // Far apart: more rows between a key's two rows than the writer decides at a time, so the
+    // first row's version is already written when the second arrives (the path that rewrites
+    // it in place, or deletes it when the last row matches the current version).
+    const N: usize = 3000;
+    let mut env = Env::new();
+    let first = env.ingest("full", &csv_of(&many_rows(N)), day(3));
+    assert_eq!((first.status, first.counts.new), (SnapshotStatus::Applied, N as u64));
+
+    let mut rows = many_rows(N);
+    rows[0] = "K-00000,Amberlee,2026-02-01,,30,F,fever".into(); // changed, then changed again
+    rows[2] = "K-00002,Amberlee,2026-02-03,,30,F,fever".into(); // changed, then back as it was
+    rows.push("K-09999,Brackwater,2026-02-10,,41,M,".into()); // new, then new again
+    rows.extend(many_rows(1500).into_iter().map(|row| row.replace("K-", "L-")));
+    let lines = rows.len() + 1;
+    rows.push("K-00000,Brackwater,2026-02-01,2026-03-04,30,F,\"headache; cough\"".into());
+    rows.push("K-00001,Amberlee,2026-02-02,2026-03-04,30,F,cough".into()); // unchanged, then changed
+    rows.push(many_rows(3)[2].clone());
+    rows.push("K-09999,Brackwater,2026-02-10,2026-03-04,41,M,fever".into());
+    let second = env.ingest("full", &csv_of(&rows), day(4));
+    assert_eq!(second.status, SnapshotStatus::Applied);
+    let c = second.counts;
+    assert_eq!((c.rejected, c.new, c.changed, c.removed), (4, 1501, 2, 0), "{c:?}");
+
+    let db = env.db();
+    let sid = second.snapshot_id;
+    let current = |key: &str| {
+        db.query_row(
+            "SELECT version_id, valid_from, line, jurisdiction, symptoms, row_hash FROM case_version
+             WHERE case_key = ?1 AND valid_to IS NULL",
+            [key],
+            |r| {
+                Ok((
+                    r.get::<_, i64>(0)?,
+                    r.get::<_, i64>(1)?,
+                    r.get::<_, i64>(2)?,
+                    r.get::<_, String>(3)?,
+                    r.get::<_, String>(4)?,
+                    r.get::<_, i64>(5)?,
+                ))
+            },
+        )
+        .unwrap()
+    };
+    let versions =
+        |key: &str| count(&db, &format!("SELECT count(*) FROM case_version WHERE case_key = '{key}'"));
+    let attrs = |version: i64| -> Vec<String> {
+        let mut stmt =
+            db.prepare("SELECT value FROM case_attr WHERE version_id = ?1 ORDER BY value").unwrap();
+        stmt.query_map([version], |r| r.get(0)).unwrap().collect::<Result<_, _>>().unwrap()
+    };
+    // Changed twice: one new version, with the last row's content, line and attributes.
+    let k0 = current("K-00000");
+    assert_eq!(
+        (k0.1, k0.2, k0.3.as_str(), k0.4.as_str()),
+        (sid, lines as i64 + 1, "Brackwater", r#"["headache","cough"]"#)
+    );
+    assert_eq!(attrs(k0.0), ["cough", "headache"]);
+    assert_eq!(versions("K-00000"), 2);
+    // Changed, then back as it was: the earlier version stands, reopened, nothing written.
+    let k2 = current("K-00002");
+    assert_eq!((k2.1, k2.2), (first.snapshot_id, 4));
+    assert_eq!(versions("K-00002"), 1);
+    // New twice: one version, the last row's.
+    let new = current("K-09999");
+    assert_eq!((new.1, new.2, new.4.as_str()), (sid, lines as i64 + 4, r#"["fever"]"#));
+    assert_eq!(versions("K-09999"), 1);
+    assert_eq!(attrs(new.0), ["fever"]);
+    assert_eq!(
+        count(
+            &db,
+            "SELECT count(*) FROM case_attr WHERE version_id NOT IN (SELECT version_id FROM case_version)"
+        ),
+        0
+    );
+    assert_eq!(integrity_check(&env.store_path()), "ok");
+
+    // The rewritten versions carry their rows' hashes: the same records again, each once and
+    // in another order, change nothing.
+    let mut again: Vec<String> = rows[lines - 1..].to_vec();
+    again.extend(
+        rows[..lines - 1]
+            .iter()
+            .filter(|row| {
+                !row.starts_with("K-00000,")
+                    && !row.starts_with("K-00001,")
+                    && !row.starts_with("K-00002,")
+                    && !row.starts_with("K-09999,")
+            })
+            .cloned(),
+    );
+    let third = env.ingest("full", &csv_of(&again), day(5));
+    let c = third.counts;
+    assert_eq!(
+        (third.status, c.rejected, c.new, c.changed, c.removed),
+        (SnapshotStatus::Applied, 0, 0, 0, 0),
+        "{c:?}"
+    );
+    Ok(())
+}
+
 #[test]
 fn a_full_extract_with_far_fewer_rows_is_held_and_applies_nothing() -> TestResult {
     let mut env = Env::new();

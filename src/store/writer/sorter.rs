@@ -30,9 +30,9 @@ pub(super) struct Accepted {
 /// (the usual case on a re-ingest) produce no action at all.
 #[derive(Debug)]
 pub(super) enum Action {
-    /// Write a version of this row. Before that, delete the version an earlier row with the
-    /// same key wrote in this extract (`replace`) and close the record's current version
-    /// (`close`).
+    /// Write a version of this row: in place of the version an earlier row with the same
+    /// key wrote in this extract (`replace`), or as a new one; and close the record's
+    /// current version (`close`).
     Write { line: u64, record: CaseRecord, hash: i64, replace: bool, close: Option<i64> },
     /// The row matches the record's current version, but an earlier row with the same key
     /// changed it in this extract: delete that row's version (`replace`) and reopen the
