@@ -65,7 +65,7 @@ fn ingest_day(store: &mut Store, config: &Config, dir: &std::path::Path, d: i64)
     let path = dir.join(format!("county-{d}.csv"));
     std::fs::write(&path, extract(d, BASE_ROWS + STEP_ROWS * d as usize)).unwrap();
     let source = config.source("county").unwrap();
-    ingest::ingest_file(store, config, source, &path, Some(as_of(d))).unwrap();
+    tidemark::app::pipeline::ingest_file(store, config, source, &path, Some(as_of(d))).unwrap();
 }
 
 fn percentile(sorted: &[Duration], p: f64) -> Duration {

@@ -1,6 +1,6 @@
 //! The `tidemark` command: parses the command line, loads the config, sets up logging,
 //! dispatches to `app::commands`, and turns the outcome into an exit code (0 ok, 1 error,
-//! 2 bad usage or config). Errors print one clear line first, details after.
+//! 2 bad usage or config, 3 from `ingest`: committed, but the analysis failed). Errors print one clear line first, details after.
 
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
@@ -66,6 +66,10 @@ enum Command {
         /// As-of time of the extract (RFC 3339 or YYYY-MM-DD = end of that day, UTC).
         #[arg(long, value_name = "TIME")]
         as_of: Option<String>,
+        /// Commit only: leave the post-snapshot analysis (nowcasts, delay fits, quality
+        /// measures, alert rules) owed, for the next ingest or the daemon.
+        #[arg(long)]
+        no_analysis: bool,
     },
     /// List snapshots, or release or reject a held one.
     #[command(args_conflicts_with_subcommands = true)]
@@ -372,18 +376,23 @@ fn run(cli: Cli) -> Result<u8> {
     let text = match cli.command {
         Command::Init { dir } => commands::init(&dir)?,
         Command::CheckConfig => commands::check_config(&load(flag)?),
-        Command::Ingest { file, source, as_of } => {
+        Command::Ingest { file, source, as_of, no_analysis } => {
             let config = load(flag)?;
             // The file name is outside text: escaped, so it cannot forge a log line or drive
             // the terminal.
             let name = tidemark::text::escape_path(&file);
             tracing::info!(target: "tidemark::progress", source = %source, file = %name, "ingesting");
-            let outcome = commands::ingest(&config, &file, &source, as_of.as_deref())?;
-            println!("{}", outcome.summary(&source));
-            for line in commands::problem_lines(&config, outcome.snapshot_id, 20)? {
+            let report = commands::ingest(&config, &file, &source, as_of.as_deref(), !no_analysis)?;
+            println!("{}", report.outcome.summary(&source));
+            for line in commands::problem_lines(&config, report.outcome.snapshot_id, 20)? {
                 println!("  {line}");
             }
-            return Ok(commands::ingest_exit_code(&outcome) as u8);
+            if let Some(failure) = &report.analysis_failure {
+                eprintln!(
+                    "error: the snapshot is committed, but its analysis failed and stays owed: {failure}"
+                );
+            }
+            return Ok(commands::ingest_exit_code(&report) as u8);
         }
         Command::Snapshots { action, source, listing } => {
             let config = load(flag)?;

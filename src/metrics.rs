@@ -18,6 +18,16 @@ pub struct SourceCounters {
     pub polls: u64,
     pub poll_seconds_sum: f64,
     pub last_success: Option<Instant>,
+    /// Post-snapshot steps by step name.
+    pub steps: BTreeMap<&'static str, StepCounters>,
+}
+
+/// Counters of one post-snapshot step of one source.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct StepCounters {
+    pub ok: u64,
+    pub failed: u64,
+    pub seconds_sum: f64,
 }
 
 /// All the daemon's counters. A std `Mutex` is right here: critical sections are a few
@@ -42,6 +52,19 @@ impl Metrics {
                 c.last_success = Some(Instant::now());
             } else {
                 c.poll_failures += 1;
+            }
+        });
+    }
+
+    /// Records the end of one post-snapshot step.
+    pub fn step_finished(&self, source: &str, step: &'static str, took: Duration, ok: bool) {
+        self.update(source, |c| {
+            let counters = c.steps.entry(step).or_default();
+            counters.seconds_sum += took.as_secs_f64();
+            if ok {
+                counters.ok += 1;
+            } else {
+                counters.failed += 1;
             }
         });
     }
@@ -92,6 +115,32 @@ impl Metrics {
             "Total time spent polling.",
             per_source(&|c| format!("{:.6}", c.poll_seconds_sum)),
         );
+        let per_step = |f: &dyn Fn(&StepCounters) -> Vec<(&'static str, String)>| -> Vec<(String, String)> {
+            sources
+                .iter()
+                .flat_map(|(name, c)| {
+                    c.steps.iter().flat_map(move |(step, counters)| {
+                        f(counters).into_iter().map(move |(extra, value)| {
+                            (format!("source=\"{}\",step=\"{step}\"{extra}", escape(name)), value)
+                        })
+                    })
+                })
+                .collect()
+        };
+        family(
+            "tidemark_analysis_steps_total",
+            "counter",
+            "Post-snapshot steps run (nowcasts, delay_fits, quality, alert_rules), by outcome.",
+            per_step(&|c| {
+                vec![(",outcome=\"ok\"", c.ok.to_string()), (",outcome=\"failed\"", c.failed.to_string())]
+            }),
+        );
+        family(
+            "tidemark_analysis_step_seconds_sum",
+            "counter",
+            "Total time spent in each post-snapshot step.",
+            per_step(&|c| vec![("", format!("{:.6}", c.seconds_sum))]),
+        );
         family(
             "tidemark_seconds_since_last_success",
             "gauge",
@@ -121,7 +170,20 @@ mod tests {
             c.rows += 10;
         });
         metrics.poll_finished("county", Duration::from_millis(250), true);
+        metrics.step_finished("county", "nowcasts", Duration::from_millis(500), true);
+        metrics.step_finished("county", "nowcasts", Duration::from_millis(250), false);
         let text = metrics.render(Instant::now());
+        assert!(
+            text.contains(
+                "tidemark_analysis_steps_total{source=\"county\",step=\"nowcasts\",outcome=\"ok\"} 1"
+            )
+        );
+        assert!(text.contains(
+            "tidemark_analysis_steps_total{source=\"county\",step=\"nowcasts\",outcome=\"failed\"} 1"
+        ));
+        assert!(
+            text.contains("tidemark_analysis_step_seconds_sum{source=\"county\",step=\"nowcasts\"} 0.750000")
+        );
         assert!(text.contains("# TYPE tidemark_ingests_total counter"));
         assert!(text.contains("tidemark_ingests_total{source=\"county\",status=\"applied\"} 2"));
         assert!(text.contains("tidemark_rows_total{source=\"county\"} 10"));

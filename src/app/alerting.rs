@@ -1,5 +1,5 @@
-//! Alert evaluation and delivery glue. After each applied or held snapshot, and after each
-//! poll in the daemon, the inputs of the pure rules (`alert::rules`) are read from the store,
+//! Alert evaluation and delivery glue. After each applied or held snapshot (a step of the
+//! post-snapshot pipeline), and after each poll in the daemon, the inputs of the pure rules (`alert::rules`) are read from the store,
 //! the rules run, and their findings go to `Store::apply_findings`, which opens, updates,
 //! re-sends and resolves alerts and writes their outbox rows in one transaction. The
 //! delivery loop takes due outbox rows, sends them by email or webhook, and records the
@@ -13,7 +13,6 @@ use std::time::Duration;
 use anyhow::{Context, Result};
 use chrono::{DateTime, Days, NaiveDate, Utc};
 
-use super::ingest::IngestOutcome;
 use super::writer::Writer;
 use crate::alert::outbox::{RetryPolicy, next_try};
 use crate::alert::rules::{
@@ -23,7 +22,7 @@ use crate::alert::{self, DeliveryError, Outcome, Rule, Severity, Signal, email, 
 use crate::config::{Config, SourceConfig};
 use crate::model::SnapshotStatus;
 use crate::store::alerts::{Delivery, EvalOutcome, Finding, Lifecycle, MessageFacts, OutboxItem};
-use crate::store::{Reader, Store};
+use crate::store::{OwedAnalysis, Reader, Store};
 use crate::table::{OutputFormat, Table};
 
 /// How often the daemon's delivery task looks for due outbox rows.
@@ -33,7 +32,7 @@ const DELIVERY_BATCH: usize = 20;
 
 /// What the rules concluded in one pass: signals, and fingerprints found clear.
 #[derive(Debug, Default)]
-struct Pass {
+pub struct Pass {
     findings: Vec<Finding>,
     clear: Vec<String>,
 }
@@ -85,7 +84,12 @@ pub fn channels_for(config: &Config, severity: Severity) -> Vec<&'static str> {
 }
 
 /// Writes a pass through the lifecycle.
-fn apply(store: &mut Store, config: &Config, pass: &Pass, now: DateTime<Utc>) -> Result<EvalOutcome> {
+pub fn apply_pass(
+    store: &mut Store,
+    config: &Config,
+    pass: &Pass,
+    now: DateTime<Utc>,
+) -> Result<EvalOutcome> {
     let life = Lifecycle {
         now,
         resend_after: config.alerting.resend_after,
@@ -98,15 +102,9 @@ fn apply(store: &mut Store, config: &Config, pass: &Pass, now: DateTime<Utc>) ->
     Ok(store.apply_findings(&pass.clear, &pass.findings, &life, &delivery)?)
 }
 
-/// Evaluates the snapshot rules after an ingest that applied or held a snapshot. Logged,
-/// not returned, by the caller: the snapshot is safe whatever happens here.
-pub fn after_snapshot(
-    store: &mut Store,
-    config: &Config,
-    source: &SourceConfig,
-    outcome: &IngestOutcome,
-    now: DateTime<Utc>,
-) -> Result<EvalOutcome> {
+/// The snapshot rules' findings for an applied or held snapshot, read on a read-only
+/// connection; `apply_pass` stores them (the one short write).
+pub fn snapshot_pass(config: &Config, source: &SourceConfig, outcome: &OwedAnalysis) -> Result<Pass> {
     let reader = Reader::open(&config.store.path)?;
     let source_id = reader.source_id(&source.name)?.context("source not registered")?;
     let params = &config.alerting.rules;
@@ -119,7 +117,7 @@ pub fn after_snapshot(
         let input = HeldInput {
             source: source.name.clone(),
             held: outcome.status == SnapshotStatus::Held,
-            rows: outcome.counts.accepted,
+            rows: outcome.rows_accepted,
             previous_rows: applied.last().map(|v| v.rows_accepted as u64),
         };
         pass.add(Rule::HeldSnapshot, &source.name, "", rules::held_snapshot(&input), Some(snapshot_id));
@@ -129,7 +127,7 @@ pub fn after_snapshot(
             let input = VolumeInput {
                 source: source.name.clone(),
                 subject: String::new(),
-                latest_new: outcome.counts.new,
+                latest_new: outcome.rows_new,
                 baseline_new: applied.iter().map(|v| v.rows_new as u64).collect(),
             };
             pass.add(
@@ -151,7 +149,7 @@ pub fn after_snapshot(
             counts(&reader, source_id, snapshot_id, &source.name, day, config, &mut pass)?;
         }
     }
-    apply(store, config, &pass, now)
+    Ok(pass)
 }
 
 fn missingness(
@@ -280,7 +278,7 @@ pub fn after_poll(
     if params.enabled("failing_polls") {
         pass.add(Rule::FailingPolls, &source.name, "", rules::failing_polls(&input, &params.staleness), None);
     }
-    apply(store, config, &pass, now)
+    apply_pass(store, config, &pass, now)
 }
 
 /// The retry policy of the config.

@@ -7,11 +7,11 @@ use chrono::{Days, NaiveDate};
 
 use crate::analysis::backtest::{self, BacktestCell, NAIVE};
 use crate::analysis::delay::{self, DelayFit, DelayObs, DelaySummary, FitOptions};
-use crate::analysis::nowcast::{Nowcast, hazard, smooth};
+use crate::analysis::nowcast::{Nowcast, NowcastRow, hazard, smooth};
 use crate::analysis::triangle::{self, Triangle};
 use crate::config::{AnalysisConfig, Config, DelayEnd, SourceConfig};
 use crate::model::Field;
-use crate::store::{DelayRow, Reader, Store};
+use crate::store::{DelayRow, NowcastKey, Reader, Store};
 
 /// Horizons over which `auto` compares methods (the acceptance range).
 pub const AUTO_HORIZONS: usize = 7;
@@ -117,60 +117,17 @@ pub fn seed_for(snapshot_id: i64, key: &TriangleKey, method: &str) -> u64 {
     text.bytes().fold(0xcbf2_9ce4_8422_2325u64, |h, b| (h ^ b as u64).wrapping_mul(0x0100_0000_01b3))
 }
 
-/// After an applied snapshot: the nowcasts and the delay fits of that snapshot, stored with
-/// it, and `alongside` (the caller's other post-snapshot work, e.g. the quality measures) on
-/// this thread while the delay observations are read and fitted on others: the two are the
-/// longest steps and use different connections. Returns how many nowcasts and delay fits
-/// were written; `alongside` runs even when the analyses fail.
-pub fn analyse_snapshot(
-    store: &mut Store,
-    config: &Config,
-    source: &SourceConfig,
-    snapshot_id: i64,
-    alongside: impl FnOnce(&mut Store),
-) -> Result<(usize, usize)> {
-    let opened =
-        Reader::open(&config.store.path).and_then(|reader| Ok((reader.source_id(&source.name)?, reader)));
-    let (source_id, reader) = match opened {
-        Ok((Some(source_id), reader)) => (source_id, reader),
-        Ok((None, _)) => {
-            alongside(store);
-            return Ok((0, 0));
-        }
-        Err(err) => {
-            alongside(store);
-            return Err(err.into());
-        }
-    };
-    std::thread::scope(|scope| {
-        let fitting = scope.spawn(|| {
-            let reader = Reader::open(&config.store.path)?;
-            delay_fits(&reader, config, source_id, snapshot_id)
-        });
-        let started = std::time::Instant::now();
-        let nowcasts = nowcast_snapshot(store, &reader, config, source_id, snapshot_id);
-        tracing::debug!(snapshot_id, ms = started.elapsed().as_millis() as u64, "nowcasts stored");
-        alongside(store);
-        let fits = fitting.join().unwrap_or_else(|panic| std::panic::resume_unwind(panic))?;
-        let nowcasts = nowcasts?;
-        let mut written = 0;
-        for ((from, to), fits) in fits {
-            store.write_delay_fits(snapshot_id, source_id, (from.name(), to.name(), "all", ""), &fits)?;
-            written += 1;
-        }
-        Ok((nowcasts, written))
-    })
-}
+/// The nowcasts of every maintained triangle, as of a snapshot, for `Store::write_nowcasts`.
+pub type SnapshotNowcasts = Vec<(NowcastKey, Vec<NowcastRow>)>;
 
-/// Nowcasts every maintained triangle. The whole source gets every configured method;
-/// strata get `hazard` (cheap enough for many).
-fn nowcast_snapshot(
-    store: &mut Store,
+/// Nowcasts every maintained triangle as of `snapshot_id`, on a read-only connection. The
+/// whole source gets every configured method; strata get `hazard` (cheap enough for many).
+pub fn nowcast_snapshot(
     reader: &Reader,
     config: &Config,
     source_id: i64,
     snapshot_id: i64,
-) -> Result<usize> {
+) -> Result<SnapshotNowcasts> {
     let analysis = &config.analysis;
     let mut results = Vec::new();
     for &field in &analysis.reference_fields {
@@ -192,8 +149,21 @@ fn nowcast_snapshot(
             }
         }
     }
-    store.write_nowcasts(snapshot_id, source_id, &results)?;
-    Ok(results.len())
+    Ok(results)
+}
+
+/// Stores a snapshot's delay fits, one row set per (start field, end) pair; returns how
+/// many pairs were written.
+pub fn write_delay_fits(
+    store: &mut Store,
+    source_id: i64,
+    snapshot_id: i64,
+    fits: &PairFits,
+) -> Result<usize> {
+    for ((from, to), fits) in fits {
+        store.write_delay_fits(snapshot_id, source_id, (from.name(), to.name(), "all", ""), fits)?;
+    }
+    Ok(fits.len())
 }
 
 /// What a backtest was asked to do.
@@ -306,13 +276,13 @@ pub fn fit_delays(obs: &[DelayObs], bootstrap: usize, seed: u64) -> (DelaySummar
 }
 
 /// Delay fits per configured (start field, end) pair.
-type PairFits = Vec<((Field, DelayEnd), Vec<DelayFit>)>;
+pub type PairFits = Vec<((Field, DelayEnd), Vec<DelayFit>)>;
 
 /// The configured delay distributions (whole source) fitted as of a snapshot, from one scan
 /// of the records for all pairs, in configuration order; pairs without observations are
 /// left out. The pairs are fitted on up to two threads (each fit is pure and seeded, so the
 /// results do not depend on the order).
-fn delay_fits(reader: &Reader, config: &Config, source_id: i64, snapshot_id: i64) -> Result<PairFits> {
+pub fn delay_fits(reader: &Reader, config: &Config, source_id: i64, snapshot_id: i64) -> Result<PairFits> {
     let pairs: Vec<(Field, Option<Field>)> =
         config.analysis.delays.iter().map(|&(from, to)| (from, to.field())).collect();
     let day = snapshot_day(reader, snapshot_id)?;

@@ -11,6 +11,7 @@ use anyhow::{Context, Result, bail};
 use chrono::{DateTime, NaiveDate, Utc};
 
 use super::ingest::{self, IngestOutcome, end_of_day};
+use super::pipeline;
 use crate::config::{self, Config, SourceConfig};
 use crate::model::{Field, SnapshotStatus};
 use crate::store::{Reader, Store};
@@ -112,13 +113,41 @@ pub fn check_config(config: &Config) -> String {
     format!("{}config ok\n", config.describe())
 }
 
-/// `tidemark ingest FILE --source NAME [--as-of TIME]`; the outcome decides the exit code.
-pub fn ingest(config: &Config, file: &Path, source_name: &str, as_of: Option<&str>) -> Result<IngestOutcome> {
+/// What `tidemark ingest` did: the commit, then (unless `--no-analysis`) the post-snapshot
+/// pipeline over everything the source owes.
+#[derive(Debug)]
+pub struct IngestReport {
+    pub outcome: IngestOutcome,
+    /// Why the analysis failed or did not run; `None` when it succeeded or was not asked for.
+    pub analysis_failure: Option<String>,
+}
+
+/// `tidemark ingest FILE --source NAME [--as-of TIME] [--no-analysis]`; the report decides
+/// the exit code (`ingest_exit_code`).
+pub fn ingest(
+    config: &Config,
+    file: &Path,
+    source_name: &str,
+    as_of: Option<&str>,
+    analyse: bool,
+) -> Result<IngestReport> {
     let source = source(config, source_name)?;
     let as_of = as_of.map(parse_time_arg).transpose()?;
     let mut store = Store::open(&config.store.path)?;
     remove_archive_orphans(config);
-    ingest::ingest_file(&mut store, config, source, file, as_of)
+    let outcome = ingest::commit_file(&mut store, config, source, file, as_of)?;
+    let analysis_failure = if analyse { analyse_owed(&mut store, config, source) } else { None };
+    Ok(IngestReport { outcome, analysis_failure })
+}
+
+/// Runs the pipeline over what `source` owes; why it failed, if it did.
+fn analyse_owed(store: &mut Store, config: &Config, source: &SourceConfig) -> Option<String> {
+    match pipeline::run_owed(store, config, source, &pipeline::unobserved, &|| false) {
+        Ok(analysed) => {
+            analysed.iter().find_map(|a| a.failure().map(|f| format!("snapshot {}: {f}", a.snapshot_id)))
+        }
+        Err(err) => Some(format!("{err:#}")),
+    }
 }
 
 /// Removes the temporary archive files that an ingest killed mid-copy left behind (logged,
@@ -214,7 +243,11 @@ pub fn release(config: &Config, snapshot_id: i64) -> Result<String> {
     let mut store = Store::open(&config.store.path)?;
     let outcome = ingest::release(&mut store, config, snapshot_id)?;
     let (name, _, _) = store.snapshot_origin(snapshot_id)?;
-    Ok(format!("{}\n", outcome.summary(&name)))
+    let mut text = format!("{}\n", outcome.summary(&name));
+    if let Some(failure) = config.source(&name).and_then(|source| analyse_owed(&mut store, config, source)) {
+        text.push_str(&format!("the analysis of snapshot {snapshot_id} failed and stays owed: {failure}\n"));
+    }
+    Ok(text)
 }
 
 /// `tidemark snapshots reject ID`
@@ -350,9 +383,17 @@ pub fn config_path(flag: Option<&Path>) -> Result<PathBuf> {
 }
 
 /// The exit code an ingest outcome deserves: a failed extract is an error.
-pub fn ingest_exit_code(outcome: &IngestOutcome) -> i32 {
-    if outcome.status == SnapshotStatus::Failed { 1 } else { 0 }
+pub fn ingest_exit_code(report: &IngestReport) -> i32 {
+    match (report.outcome.status, &report.analysis_failure) {
+        (SnapshotStatus::Failed, _) => 1,
+        (_, Some(_)) => EXIT_ANALYSIS_FAILED,
+        _ => 0,
+    }
 }
+
+/// `tidemark ingest`'s exit code when the snapshot committed but its analysis failed: the
+/// data is safe and the analysis stays owed (the next ingest or the daemon's start runs it).
+pub const EXIT_ANALYSIS_FAILED: i32 = 3;
 
 /// `tidemark run`: the daemon, until SIGTERM or SIGINT.
 pub fn run_daemon(config: Config, serve_ops: bool) -> Result<()> {

@@ -1,6 +1,10 @@
 //! `tidemark run`: the unattended daemon. One task per source polls on the source's cron
 //! schedule (once at start, never overlapping itself, never waiting for another source),
-//! hands new extracts to the one writer thread, and records health and metrics; the same
+//! hands new extracts to the one writer thread, and records health and metrics. A second
+//! task per source runs the post-snapshot pipeline on a blocking thread of its own: at
+//! start for whatever the store owes, then after every commit, coalescing (snapshots that
+//! commit while it runs are analysed once, as the latest), so one source's analysis never
+//! holds up another source's commits; only its short writes go through the writer. The same
 //! listener serves the API (`/api/v1`), `/healthz` and `/metrics`. Shutdown is a `CancellationToken`: polls stop,
 //! an ingest in progress rolls back, and `run` returns once every task has ended.
 
@@ -17,7 +21,8 @@ use tokio::sync::{Notify, mpsc};
 use tokio_util::sync::CancellationToken;
 use tokio_util::task::TaskTracker;
 
-use super::ingest::{IngestOutcome, as_of_for_file, date_in_name, end_of_day, ingest_archived};
+use super::ingest::{IngestOutcome, as_of_for_file, commit_archived, date_in_name, end_of_day};
+use super::pipeline::{self, Analysed};
 use super::writer::{self, Writer};
 use crate::config::{AsOfRule, Config, FolderSettings, Location, SourceConfig, UrlSettings};
 use crate::metrics::Metrics;
@@ -47,6 +52,22 @@ pub struct Hooks {
     pub events: Option<mpsc::UnboundedSender<PollEvent>>,
     /// Per source name: notify to poll now instead of waiting for the schedule.
     pub nudges: HashMap<String, Arc<Notify>>,
+    /// Receives every finished post-snapshot analysis.
+    pub analysed: Option<mpsc::UnboundedSender<Analysed>>,
+    /// Called on a source's analysis thread before each run of its pipeline.
+    pub analysis_gate: Option<AnalysisGate>,
+}
+
+/// A function the analysis thread calls, with the source's name, before it runs the
+/// source's pipeline; it may block (tests hold one source's analysis to show that the other
+/// sources' commits go on).
+#[derive(Clone)]
+pub struct AnalysisGate(pub Arc<dyn Fn(&str) + Send + Sync>);
+
+impl std::fmt::Debug for AnalysisGate {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str("AnalysisGate")
+    }
 }
 
 /// Everything the source tasks share.
@@ -58,6 +79,8 @@ struct Shared {
     /// Set on shutdown so an ingest in progress rolls back instead of finishing.
     cancel_ingest: Arc<AtomicBool>,
     events: Option<mpsc::UnboundedSender<PollEvent>>,
+    analysed: Option<mpsc::UnboundedSender<Analysed>>,
+    analysis_gate: Option<AnalysisGate>,
     /// When this daemon started watching (the staleness rule's origin without snapshots).
     started: DateTime<Utc>,
 }
@@ -83,6 +106,8 @@ pub async fn run(
         shutdown: shutdown.clone(),
         cancel_ingest: Arc::new(AtomicBool::new(false)),
         events: hooks.events,
+        analysed: hooks.analysed,
+        analysis_gate: hooks.analysis_gate,
         started: Utc::now(),
     });
     let tracker = TaskTracker::new();
@@ -99,7 +124,9 @@ pub async fn run(
     }
     for (source, source_id) in config.sources.iter().zip(source_ids) {
         let nudge = hooks.nudges.get(&source.name).cloned().unwrap_or_default();
-        tracker.spawn(source_loop(shared.clone(), source.clone(), source_id, nudge));
+        let committed = Arc::new(Notify::new());
+        tracker.spawn(analysis_loop(shared.clone(), source.clone(), committed.clone()));
+        tracker.spawn(source_loop(shared.clone(), source.clone(), source_id, nudge, committed));
     }
     tracker.spawn(heartbeat(shared.clone()));
     tracker.spawn(deliver_outbox(shared.clone()));
@@ -173,7 +200,60 @@ enum PollState {
     Url { client: reqwest::Client, validators: Validators, failed: Option<FailedBody> },
 }
 
-async fn source_loop(shared: Arc<Shared>, source: SourceConfig, source_id: i64, nudge: Arc<Notify>) {
+/// The post-snapshot pipeline of one source: what the store owes at start, then after every
+/// commit (`committed`). A commit while an analysis runs leaves one wake-up behind, so the
+/// next run takes everything committed meanwhile at once.
+async fn analysis_loop(shared: Arc<Shared>, source: SourceConfig, committed: Arc<Notify>) {
+    loop {
+        if shared.shutdown.is_cancelled() {
+            return;
+        }
+        let (job_shared, job_source) = (shared.clone(), source.clone());
+        let run = tokio::task::spawn_blocking(move || analyse_owed(&job_shared, &job_source)).await;
+        if let Err(err) = run {
+            tracing::error!(source = %source.name, error = %err, "the analysis task stopped; it runs again after the next commit");
+        }
+        tokio::select! {
+            () = committed.notified() => {}
+            () = shared.shutdown.cancelled() => return,
+        }
+    }
+}
+
+/// Runs the pipeline over what `source` owes, on this blocking thread; each step is counted
+/// in `/metrics`, and each analysis sent to the hooks.
+fn analyse_owed(shared: &Shared, source: &SourceConfig) {
+    if let Some(AnalysisGate(gate)) = &shared.analysis_gate {
+        gate(&source.name);
+    }
+    let metrics = shared.metrics.clone();
+    let observe = move |name: &str, report: &pipeline::StepReport| {
+        metrics.step_finished(name, report.step.name(), report.took, report.error.is_none());
+    };
+    let cancel = shared.cancel_ingest.clone();
+    let mut writer = shared.writer.clone();
+    match pipeline::run_owed(&mut writer, &shared.config, source, &observe, &|| cancel.load(Ordering::SeqCst))
+    {
+        Ok(analysed) => {
+            for analysis in analysed {
+                if let Some(events) = &shared.analysed {
+                    let _ = events.send(analysis);
+                }
+            }
+        }
+        Err(err) => {
+            tracing::warn!(source = %source.name, error = %format!("{err:#}"), "owed analyses not run; retried after the next commit")
+        }
+    }
+}
+
+async fn source_loop(
+    shared: Arc<Shared>,
+    source: SourceConfig,
+    source_id: i64,
+    nudge: Arc<Notify>,
+    committed: Arc<Notify>,
+) {
     let mut state = match initial_state(&shared.config, &source, source_id).await {
         Ok(state) => state,
         Err(err) => {
@@ -184,6 +264,9 @@ async fn source_loop(shared: Arc<Shared>, source: SourceConfig, source_id: i64, 
     loop {
         let started = Instant::now();
         let (snapshots, error) = poll(&shared, &source, source_id, &mut state).await;
+        if snapshots.iter().any(|o| matches!(o.status, SnapshotStatus::Applied | SnapshotStatus::Held)) {
+            committed.notify_one();
+        }
         finish_poll(&shared, &source, source_id, started, snapshots, error).await;
         let wait = until_next(&source);
         tokio::select! {
@@ -452,7 +535,7 @@ async fn take_file(
                 store.record_file(source_id, &record)?;
                 return Ok(Taken::Unchanged);
             }
-            let outcome = ingest_archived(store, &config, &source, &meta, &|| cancel.load(Ordering::SeqCst))?;
+            let outcome = commit_archived(store, &config, &source, &meta, &|| cancel.load(Ordering::SeqCst))?;
             record.snapshot_id = Some(outcome.snapshot_id);
             store.record_file(source_id, &record)?;
             Ok(Taken::Ingested(outcome))
@@ -510,7 +593,7 @@ async fn poll_url(
             if store.duplicate_of(source_id, &meta.sha256)?.is_some() {
                 return Ok(None);
             }
-            Ok(Some(ingest_archived(store, &config, &job_source, &meta, &|| cancel.load(Ordering::SeqCst))?))
+            Ok(Some(commit_archived(store, &config, &job_source, &meta, &|| cancel.load(Ordering::SeqCst))?))
         })
         .await??;
     match outcome.as_ref().filter(|o| o.status == SnapshotStatus::Failed) {

@@ -19,10 +19,11 @@ use super::analyse::{self, BacktestRequest, TriangleKey};
 use super::commands;
 use super::daemon::{self, Hooks, PollEvent};
 use super::ingest::end_of_day;
+use super::pipeline::Analysed;
 use crate::analysis::nowcast::NowcastRow;
 use crate::config::Config;
 use crate::demo::{self, COUNTY_SOURCE, LAB_SOURCE, Scenario};
-use crate::model::Field;
+use crate::model::{Field, SnapshotStatus};
 use crate::serve::feed::{self, Feed};
 use crate::serve::{self};
 use crate::store::{Reader, Store};
@@ -135,9 +136,15 @@ async fn drive(
         files.county_inbox.display()
     ));
     let (events_tx, mut events) = mpsc::unbounded_channel();
+    let (analysed_tx, mut analysed) = mpsc::unbounded_channel::<Analysed>();
     let nudges: HashMap<String, Arc<Notify>> =
         [COUNTY_SOURCE, LAB_SOURCE].iter().map(|s| (s.to_string(), Arc::new(Notify::new()))).collect();
-    let mut hooks = Some(Hooks { events: Some(events_tx), nudges: nudges.clone() });
+    let mut hooks = Some(Hooks {
+        events: Some(events_tx),
+        nudges: nudges.clone(),
+        analysed: Some(analysed_tx),
+        analysis_gate: None,
+    });
     let started = Instant::now();
     let mut daemon = None;
     for (idx, (day, county, lab_file)) in files.extracts.iter().enumerate() {
@@ -151,7 +158,12 @@ async fn drive(
             }
             None => nudges.values().for_each(|n| n.notify_one()),
         }
-        let outcomes = match wait_for_polls(&mut events, mark).await {
+        let waited = async {
+            let (outcomes, owed) = wait_for_polls(&mut events, mark).await?;
+            wait_for_analyses(&mut analysed, owed).await?;
+            Ok::<_, anyhow::Error>(outcomes)
+        };
+        let outcomes = match waited.await {
             Ok(outcomes) => outcomes,
             Err(err) => match daemon.take() {
                 Some(handle) if handle.is_finished() => {
@@ -182,11 +194,32 @@ fn drop_file(from: &Path, inbox: &Path) -> Result<()> {
     Ok(())
 }
 
-/// Waits until both feeds have been polled since `mark`; returns what each poll did.
+/// Waits until the daemon's pipeline has analysed (or superseded) every snapshot in `owed`,
+/// so that each day's alerts are decided before the next day's extracts arrive.
+async fn wait_for_analyses(
+    analysed: &mut mpsc::UnboundedReceiver<Analysed>,
+    mut owed: Vec<i64>,
+) -> Result<()> {
+    while !owed.is_empty() {
+        let analysis = tokio::time::timeout(POLL_WAIT, analysed.recv())
+            .await
+            .context("the daemon did not analyse the day's snapshots in time")?
+            .context("the daemon stopped")?;
+        if let Some(failure) = analysis.failure() {
+            anyhow::bail!("the analysis of snapshot {} failed: {failure}", analysis.snapshot_id);
+        }
+        owed.retain(|id| *id != analysis.snapshot_id && !analysis.superseded.contains(id));
+    }
+    Ok(())
+}
+
+/// Waits until both feeds have been polled since `mark`; returns what each poll did and the
+/// snapshots whose analysis the polls owe (applied or held).
 async fn wait_for_polls(
     events: &mut mpsc::UnboundedReceiver<PollEvent>,
     mark: Instant,
-) -> Result<Vec<String>> {
+) -> Result<(Vec<String>, Vec<i64>)> {
+    let mut owed = Vec::new();
     let mut done: BTreeMap<String, String> = BTreeMap::new();
     while done.len() < 2 {
         let event = tokio::time::timeout(POLL_WAIT, events.recv())
@@ -196,6 +229,13 @@ async fn wait_for_polls(
         if event.started < mark {
             continue;
         }
+        owed.extend(
+            event
+                .snapshots
+                .iter()
+                .filter(|(_, status)| matches!(status, SnapshotStatus::Applied | SnapshotStatus::Held))
+                .map(|(id, _)| *id),
+        );
         let what = match (&event.error, event.snapshots.last()) {
             (Some(err), _) => format!("poll failed ({err})"),
             (None, Some((id, status))) => format!("snapshot {id} {}", status.name()),
@@ -203,7 +243,7 @@ async fn wait_for_polls(
         };
         done.insert(event.source.clone(), format!("{} {what}", event.source));
     }
-    Ok(done.into_values().collect())
+    Ok((done.into_values().collect(), owed))
 }
 
 fn summarise(config: &Config, scenario: &Scenario, dir: PathBuf) -> Result<DemoReport> {

@@ -1,7 +1,8 @@
-//! One extract through the whole path, the same for `tidemark ingest`, the demo and (later)
-//! the daemon: archive the bytes, detect duplicates, parse from the archive, stage, apply the
-//! truncated-feed guard, and apply or hold in one transaction. Log lines carry counts, ids
-//! and file names only, never row contents.
+//! One extract committed, the same for `tidemark ingest`, the demo and the daemon: archive
+//! the bytes, detect duplicates, parse from the archive, stage, apply the truncated-feed
+//! guard, and apply or hold in one transaction, which also enters the snapshot's analysis
+//! as owed. Committing ends at the commit: what runs after it is `app::pipeline`. Log lines
+//! carry counts, ids and file names only, never row contents.
 
 use std::fs::File;
 use std::io::BufReader;
@@ -50,8 +51,8 @@ impl IngestOutcome {
     }
 }
 
-/// Ingests the file at `path` for `source`. `as_of` overrides the source's as-of rule.
-pub fn ingest_file(
+/// Commits the file at `path` for `source`. `as_of` overrides the source's as-of rule.
+pub fn commit_file(
     store: &mut Store,
     config: &Config,
     source: &SourceConfig,
@@ -73,12 +74,12 @@ pub fn ingest_file(
         bytes: archived.bytes,
         kind: source.extract,
     };
-    ingest_archived(store, config, source, &meta, &|| false)
+    commit_archived(store, config, source, &meta, &|| false)
 }
 
-/// Ingests bytes already in the archive (named by `meta.sha256`). `cancelled` is asked now
+/// Commits bytes already in the archive (named by `meta.sha256`). `cancelled` is asked now
 /// and then while rows stream in; when it says yes the transaction rolls back.
-pub fn ingest_archived(
+pub fn commit_archived(
     store: &mut Store,
     config: &Config,
     source: &SourceConfig,
@@ -116,14 +117,7 @@ pub fn ingest_archived(
         }
         Err(ParseError::Sink(err)) => return Err(err.into()),
     };
-    let outcome = finish(ingest, config, source, last.as_ref(), &summary)?;
-    if outcome.status == SnapshotStatus::Applied {
-        analyse_applied(store, config, source, outcome.snapshot_id, cancelled);
-    }
-    if !skipped_for_shutdown(cancelled, source, outcome.snapshot_id, "alert rules") {
-        evaluate_alerts(store, config, source, &outcome);
-    }
-    Ok(outcome)
+    finish(ingest, config, source, last.as_ref(), &summary)
 }
 
 /// Why an as-of time is refused for lying too far after the server's clock, if it does: a
@@ -141,82 +135,8 @@ fn as_of_in_future(as_of: DateTime<Utc>, now: DateTime<Utc>, source: &SourceConf
     })
 }
 
-/// True (with a debug line) when shutdown has been asked, so a post-snapshot step is
-/// skipped: the snapshot is applied and safe, and the next one recomputes the step.
-fn skipped_for_shutdown(
-    cancelled: &dyn Fn() -> bool,
-    source: &SourceConfig,
-    snapshot_id: i64,
-    step: &str,
-) -> bool {
-    let skip = cancelled();
-    if skip {
-        tracing::debug!(source = %source.name, snapshot_id, step, "shutdown asked; skipped until the next snapshot");
-    }
-    skip
-}
-
-/// Recomputes the nowcasts, delay fits and quality measures after an applied snapshot (the
-/// quality measures while the delays are fitted). A failure here is logged, not returned:
-/// the snapshot itself is applied and safe, and the next one recomputes. Each step is
-/// skipped once `cancelled` says shutdown has been asked.
-fn analyse_applied(
-    store: &mut Store,
-    config: &Config,
-    source: &SourceConfig,
-    snapshot_id: i64,
-    cancelled: &dyn Fn() -> bool,
-) {
-    if skipped_for_shutdown(cancelled, source, snapshot_id, "analyses") {
-        return;
-    }
-    let started = std::time::Instant::now();
-    let quality = |store: &mut Store| {
-        if !skipped_for_shutdown(cancelled, source, snapshot_id, "quality measures") {
-            measure_applied(store, config, source, snapshot_id);
-        }
-    };
-    match super::analyse::analyse_snapshot(store, config, source, snapshot_id, quality) {
-        Ok((nowcasts, delay_fits)) => tracing::debug!(
-            source = %source.name, snapshot_id, nowcasts, delay_fits,
-            ms = started.elapsed().as_millis() as u64, "analyses and quality measures stored"
-        ),
-        Err(err) => {
-            tracing::warn!(source = %source.name, snapshot_id, error = %format!("{err:#}"), "analyses not computed")
-        }
-    }
-}
-
-/// Runs the snapshot alert rules after an applied or held snapshot; logged, not returned.
-fn evaluate_alerts(store: &mut Store, config: &Config, source: &SourceConfig, outcome: &IngestOutcome) {
-    if !matches!(outcome.status, SnapshotStatus::Applied | SnapshotStatus::Held) {
-        return;
-    }
-    match super::alerting::after_snapshot(store, config, source, outcome, Utc::now()) {
-        Ok(done) => {
-            tracing::debug!(source = %source.name, snapshot_id = outcome.snapshot_id, ?done, "alert rules evaluated")
-        }
-        Err(err) => tracing::warn!(
-            source = %source.name, snapshot_id = outcome.snapshot_id, error = %format!("{err:#}"), "alert rules not evaluated"
-        ),
-    }
-}
-
-/// Stores the quality measures of an applied snapshot; logged, not returned, like the
-/// analyses.
-fn measure_applied(store: &mut Store, config: &Config, source: &SourceConfig, snapshot_id: i64) {
-    let started = std::time::Instant::now();
-    match super::quality::measure_snapshot(store, config, source, snapshot_id) {
-        Ok(rows) => tracing::debug!(
-            source = %source.name, snapshot_id, rows, ms = started.elapsed().as_millis() as u64, "quality stored"
-        ),
-        Err(err) => {
-            tracing::warn!(source = %source.name, snapshot_id, error = %format!("{err:#}"), "quality not measured")
-        }
-    }
-}
-
-/// Parses a held snapshot again from the archive and applies it, without the guard.
+/// Parses a held snapshot again from the archive and applies it, without the guard (its
+/// analysis is owed again, as an applied snapshot).
 pub fn release(store: &mut Store, config: &Config, snapshot_id: i64) -> Result<IngestOutcome> {
     let (name, sha256, as_of) = store.snapshot_origin(snapshot_id)?;
     let Some(source) = config.source(&name) else {
@@ -233,17 +153,13 @@ pub fn release(store: &mut Store, config: &Config, snapshot_id: i64) -> Result<I
     let plan = ingest.plan()?;
     let spec = config.triangle_spec();
     let counts = ingest.apply(&plan, summary.rows_total, Some("released by operator"), Some(&spec))?;
-    let source = source.clone();
-    analyse_applied(store, config, &source, snapshot_id, &|| false);
-    let outcome = IngestOutcome {
+    Ok(IngestOutcome {
         snapshot_id,
         status: SnapshotStatus::Applied,
         counts,
         field_problems: summary.field_problems,
         note: Some("released by operator".into()),
-    };
-    evaluate_alerts(store, config, &source, &outcome);
-    Ok(outcome)
+    })
 }
 
 fn stage(

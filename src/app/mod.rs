@@ -1,5 +1,6 @@
-//! Application wiring: the command bodies, the ingest pipeline that joins `extract` and
-//! `store`, the writer thread and the daemon's tasks. The only library module that uses
+//! Application wiring: the command bodies, the commit of an extract (`ingest`, joining
+//! `extract` and `store`), the post-snapshot pipeline after it, the writer thread and the
+//! daemon's tasks. The only library module that uses
 //! `anyhow`; nothing else depends on it.
 
 pub mod access;
@@ -10,5 +11,6 @@ pub mod daemon;
 pub mod demo;
 pub mod export;
 pub mod ingest;
+pub mod pipeline;
 pub mod quality;
 pub mod writer;

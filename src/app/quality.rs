@@ -6,9 +6,9 @@
 use anyhow::{Context, Result};
 
 use crate::config::{Config, SourceConfig};
-use crate::model::Field;
+use crate::model::{Field, SnapshotStatus};
 use crate::store::quality::{LagRow, QualityRow, QualitySpec, VolumeRow};
-use crate::store::{Reader, Store};
+use crate::store::{OwedAnalysis, OwedState, Reader, Store};
 use crate::table::{Cell, OutputFormat, Table};
 
 /// What is measured for a source: its mapped fields, and the configured lag reference.
@@ -33,6 +33,45 @@ pub fn measure_snapshot(
     Ok(store.write_quality(source_id, snapshot_id, &spec_for(config, source))?)
 }
 
+/// Why a snapshot has no quality measures, from where its analysis stands.
+fn unmeasured(reader: &Reader, snapshot_id: i64) -> Result<String> {
+    let why = match reader.analysis_of(snapshot_id)? {
+        Some(OwedAnalysis { state: OwedState::Superseded, superseded_by: Some(by), .. }) => {
+            format!("its analysis was superseded by snapshot {by}, analysed in its place")
+        }
+        Some(owed @ OwedAnalysis { state: OwedState::Pending | OwedState::Failed, .. }) => owed_text(&owed),
+        Some(OwedAnalysis { status: SnapshotStatus::Held | SnapshotStatus::Rejected, .. }) => {
+            "it is not applied (only applied snapshots are measured)".into()
+        }
+        _ => "only applied snapshots are measured".into(),
+    };
+    Ok(format!("snapshot {snapshot_id} has no quality measures: {why}"))
+}
+
+/// "; the analysis of snapshot N is owed ..." when the source's latest owed analysis has not
+/// run, else nothing.
+fn owed_note(reader: &Reader, source_id: i64) -> Result<String> {
+    Ok(match reader.owed_analyses(source_id)?.last() {
+        Some(owed) => format!(
+            "; the analysis of snapshot {} {}",
+            owed.snapshot_id,
+            owed_text(owed).trim_start_matches("its analysis ")
+        ),
+        None => String::new(),
+    })
+}
+
+fn owed_text(owed: &OwedAnalysis) -> String {
+    match &owed.error {
+        Some(error) => format!(
+            "its analysis is owed: it failed ({error}); it runs again at the next ingest or daemon start"
+        ),
+        None => {
+            "its analysis is owed; it runs at the next ingest (without --no-analysis) or daemon start".into()
+        }
+    }
+}
+
 /// `tidemark quality --source NAME [--snapshot ID]`: one listing with a `section` column
 /// (`volume`, `lag`, `field`), so that CSV and JSON carry everything the table shows.
 pub fn quality(
@@ -47,11 +86,14 @@ pub fn quality(
         .with_context(|| format!("source {source_name:?} has no snapshots yet"))?;
     let snapshot_id = match snapshot {
         Some(id) => id,
-        None => reader.latest_quality_snapshot(source_id)?.context("no quality measures stored yet")?,
+        None => match reader.latest_quality_snapshot(source_id)? {
+            Some(id) => id,
+            None => anyhow::bail!("no quality measures stored yet{}", owed_note(&reader, source_id)?),
+        },
     };
     let rows = reader.quality_rows(snapshot_id)?;
     if rows.is_empty() {
-        anyhow::bail!("snapshot {snapshot_id} has no quality measures (only applied snapshots are measured)");
+        anyhow::bail!("{}", unmeasured(&reader, snapshot_id)?);
     }
     let volume = reader.volumes(source_id, snapshot_id)?.into_iter().find(|v| v.snapshot_id == snapshot_id);
     let lag = reader.lag_rows(source_id, snapshot_id, false)?;

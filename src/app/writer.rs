@@ -13,8 +13,8 @@ use crate::store::Store;
 
 type Job = Box<dyn FnOnce(&mut Store) + Send>;
 
-/// A handle to the writer thread; cheap to share behind an `Arc`.
-#[derive(Debug)]
+/// A handle to the writer thread; cheap to clone.
+#[derive(Debug, Clone)]
 pub struct Writer {
     jobs: mpsc::Sender<Job>,
 }
@@ -53,5 +53,20 @@ impl Writer {
             }))
             .map_err(|_| anyhow!("the writer thread has stopped"))?;
         answer.await.map_err(|_| anyhow!("the writer thread stopped during a job"))
+    }
+
+    /// Runs `job` on the writer thread and blocks this (non-async) thread for its result:
+    /// for the post-snapshot pipeline, which runs on a blocking thread of its own.
+    pub fn run_blocking<T: Send + 'static>(
+        &self,
+        job: impl FnOnce(&mut Store) -> T + Send + 'static,
+    ) -> Result<T> {
+        let (reply, answer) = mpsc::sync_channel(1);
+        self.jobs
+            .send(Box::new(move |store: &mut Store| {
+                let _ = reply.send(job(store));
+            }))
+            .map_err(|_| anyhow!("the writer thread has stopped"))?;
+        answer.recv().map_err(|_| anyhow!("the writer thread stopped during a job"))
     }
 }

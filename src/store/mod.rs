@@ -9,6 +9,7 @@ pub mod backup;
 mod dashboard;
 mod export;
 pub mod lock;
+mod owed;
 pub mod quality;
 mod read;
 mod results;
@@ -29,11 +30,12 @@ pub use self::dashboard::{
     FirstSeenLag, MISSINGNESS_FIELDS, SnapshotMissing, SourceOverview, StoredDelayFit,
 };
 pub use self::export::{ColumnKind, ExportTable};
+pub use self::owed::{OwedAnalysis, OwedState};
 pub use self::read::{AGE_BAND_EDGES, CurveRow, Reader, SnapshotRow, VersionRow};
 pub use self::sources::{FileRecord, PollRecord, SourceStatus};
 pub use self::sql::{SqlLimits, run_sql};
 pub use self::tokens::{TokenRow, TokenScope, create_token, revoke_token};
-pub use self::triangle::{DelayRow, MISSING_STRATUM, TriangleSpec};
+pub use self::triangle::{DelayRow, MISSING_STRATUM, NowcastKey, TriangleSpec};
 pub use self::writer::{Ingest, LastApplied, Plan, Store};
 
 /// Migrations, applied in order; the number is the schema version after applying it.
@@ -44,6 +46,7 @@ const MIGRATIONS: &[(i64, &str)] = &[
     (4, include_str!("../../migrations/0004_quality_alerts.sql")),
     (5, include_str!("../../migrations/0005_access.sql")),
     (6, include_str!("../../migrations/0006_ingest_speed.sql")),
+    (7, include_str!("../../migrations/0007_analysis_owed.sql")),
 ];
 
 /// The schema version this build writes and understands.

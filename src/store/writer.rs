@@ -422,6 +422,9 @@ impl<'s> Ingest<'s> {
                 applied_at,
             ],
         )?;
+        if matches!(status, SnapshotStatus::Applied | SnapshotStatus::Held) {
+            super::owed::mark_pending(&self.tx, self.source_id, self.snapshot_id)?;
+        }
         self.tx.commit()?;
         Ok(())
     }

@@ -497,8 +497,14 @@ async fn load_while_ingesting_sees_only_whole_snapshots() {
         for d in 2..6 {
             let path = dir.path().join(format!("full-{d}.csv"));
             std::fs::write(&path, extract(d + 2, 2000 + 300 * d as usize)).unwrap();
-            tidemark::app::ingest::ingest_file(&mut store, &ingest_config, &source, &path, Some(day(d + 2)))
-                .unwrap();
+            tidemark::app::pipeline::ingest_file(
+                &mut store,
+                &ingest_config,
+                &source,
+                &path,
+                Some(day(d + 2)),
+            )
+            .unwrap();
         }
     });
     let client = reqwest::Client::new();

@@ -3,7 +3,8 @@
 
 use std::path::Path;
 
-use tidemark::app::ingest::{end_of_day, ingest_file};
+use tidemark::app::ingest::end_of_day;
+use tidemark::app::pipeline::ingest_file;
 use tidemark::config::Config;
 use tidemark::store::{Reader, Store, backup};
 

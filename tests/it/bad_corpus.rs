@@ -569,7 +569,7 @@ fn run_library(cases: &[Case]) -> Vec<String> {
         let source = config.source(&source_name(case.file)).unwrap();
         let path = fixture(case.file, dir.path());
         let mut store = open_store(&config.store.path);
-        let outcome = match tidemark::app::ingest::ingest_file(
+        let outcome = match tidemark::app::pipeline::ingest_file(
             &mut store,
             &config,
             source,

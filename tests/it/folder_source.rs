@@ -44,7 +44,12 @@ fn start(dir: &Path, extra: &str) -> Running {
     fs::create_dir_all(&inbox).unwrap();
     let (tx, events) = mpsc::unbounded_channel();
     let nudge = Arc::new(Notify::new());
-    let hooks = Hooks { events: Some(tx), nudges: HashMap::from([(SOURCE.to_string(), nudge.clone())]) };
+    let hooks = Hooks {
+        events: Some(tx),
+        nudges: HashMap::from([(SOURCE.to_string(), nudge.clone())]),
+        analysed: None,
+        analysis_gate: None,
+    };
     let shutdown = CancellationToken::new();
     let task = tokio::spawn(daemon::run(config(dir, extra), shutdown.clone(), hooks, None));
     Running { dir: dir.to_path_buf(), inbox, events, nudge, shutdown, task }

@@ -7,7 +7,8 @@ use std::path::Path;
 
 use chrono::{Days, NaiveDate};
 use proptest::prelude::*;
-use tidemark::app::ingest::{end_of_day, ingest_file};
+use tidemark::app::ingest::end_of_day;
+use tidemark::app::pipeline::ingest_file;
 use tidemark::config::Config;
 use tidemark::model::{Field, SnapshotStatus};
 use tidemark::store::{Reader, Store};

@@ -14,6 +14,7 @@ mod folder_source;
 mod hardening;
 mod history_props;
 mod limits;
+mod pipeline;
 mod quality;
 mod run_process;
 mod support;

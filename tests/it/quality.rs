@@ -126,7 +126,7 @@ fn a_source_that_maps_only_its_key_is_measured_without_error() {
     std::fs::write(&path, "id,other\nK-1,x\nK-2,y\n").unwrap();
     let mut store = tidemark::store::Store::open(&config.store.path).unwrap();
     let outcome =
-        tidemark::app::ingest::ingest_file(&mut store, &config, source, &path, Some(day(1))).unwrap();
+        tidemark::app::pipeline::ingest_file(&mut store, &config, source, &path, Some(day(1))).unwrap();
     assert_eq!(outcome.counts.accepted, 2);
     let spec = tidemark::app::quality::spec_for(&config, source);
     assert!(spec.fields.is_empty() && spec.lag_from.is_empty(), "{spec:?}");

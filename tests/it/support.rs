@@ -10,7 +10,8 @@ use std::path::{Path, PathBuf};
 use chrono::{DateTime, NaiveDate, Utc};
 use rusqlite::{Connection, OpenFlags};
 
-use tidemark::app::ingest::{IngestOutcome, end_of_day, ingest_file};
+use tidemark::app::ingest::{IngestOutcome, end_of_day};
+use tidemark::app::pipeline::ingest_file;
 use tidemark::config::Config;
 use tidemark::store::{Store, StoreError};
 

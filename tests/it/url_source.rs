@@ -605,8 +605,12 @@ impl Daemon {
         let config = Arc::new(config);
         let (events_tx, events) = mpsc::unbounded_channel();
         let nudge = Arc::new(Notify::new());
-        let hooks =
-            Hooks { events: Some(events_tx), nudges: HashMap::from([(SOURCE.to_string(), nudge.clone())]) };
+        let hooks = Hooks {
+            events: Some(events_tx),
+            nudges: HashMap::from([(SOURCE.to_string(), nudge.clone())]),
+            analysed: None,
+            analysis_gate: None,
+        };
         let shutdown = CancellationToken::new();
         let (run_config, token) = (config.clone(), shutdown.clone());
         let handle = tokio::spawn(async move {
