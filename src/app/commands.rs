@@ -395,6 +395,16 @@ pub fn ingest_exit_code(report: &IngestReport) -> i32 {
 /// data is safe and the analysis stays owed (the next ingest or the daemon's start runs it).
 pub const EXIT_ANALYSIS_FAILED: i32 = 3;
 
+/// "" when no analysis is owed; else the snapshots owed, and whether the last try failed.
+fn owed_summary(owed: &[crate::store::OwedAnalysis]) -> String {
+    let ids: Vec<String> = owed.iter().map(|o| o.snapshot_id.to_string()).collect();
+    match owed.last() {
+        None => String::new(),
+        Some(last) if last.error.is_some() => format!("{} (failed {}x)", ids.join(","), last.attempts),
+        Some(_) => ids.join(","),
+    }
+}
+
 /// `tidemark run`: the daemon, until SIGTERM or SIGINT.
 pub fn run_daemon(config: Config, serve_ops: bool) -> Result<()> {
     // Say so before binding ports if another process already writes to this store.
@@ -461,8 +471,13 @@ pub fn status(config: &Config, format: OutputFormat) -> Result<String> {
         "last_snapshot",
         "last_as_of",
         "last_error",
+        "analysis_owed",
     ]);
     for s in reader.source_statuses()? {
+        let owed = match reader.source_id(&s.name)? {
+            Some(id) => owed_summary(&reader.owed_analyses(id)?),
+            None => String::new(),
+        };
         table.push(vec![
             s.name.into(),
             s.kind.into(),
@@ -472,6 +487,7 @@ pub fn status(config: &Config, format: OutputFormat) -> Result<String> {
             s.last_snapshot_id.into(),
             s.last_applied_as_of.into(),
             s.last_error.into(),
+            owed.into(),
         ]);
     }
     Ok(match format {

@@ -278,4 +278,8 @@ fn ingest_without_analysis_leaves_it_owed_and_a_failed_analysis_exits_3() {
     let analysis = reader.analysis_of(third).unwrap().unwrap();
     assert_eq!((analysis.state, analysis.attempts), (OwedState::Failed, 1));
     assert!(analysis.error.as_deref().unwrap_or("").starts_with("quality:"), "{:?}", analysis.error);
+    let (code, stdout, _) =
+        run(tidemark().arg("--config").arg(&config_path).args(["status", "--format", "csv"]));
+    assert_eq!(code, 0);
+    assert!(stdout.contains(&format!("{third} (failed 1x)")), "status shows the owed analysis: {stdout}");
 }
