@@ -1,7 +1,9 @@
 //! Crash safety: a real `tidemark ingest` process is SIGKILLed at 20 different moments of a
-//! large ingest. Afterwards the store must pass `PRAGMA integrity_check`, every snapshot must
-//! be all or nothing, and ingesting the same file again must converge to the state of an
-//! uninterrupted run.
+//! large ingest, and at 6 more late in it, where the post-snapshot analysis runs. Afterwards
+//! the store must pass `PRAGMA integrity_check`, every snapshot must be all or nothing, and
+//! ingesting the same file again must converge to the state of an uninterrupted run, with
+//! no analysis lost: the latest applied snapshot's quality measures, nowcasts and delay fits
+//! are stored and nothing is left owed.
 
 use std::fs;
 use std::path::{Path, PathBuf};
@@ -11,6 +13,9 @@ use std::time::{Duration, Instant};
 use rusqlite::Connection;
 
 const KILLS: usize = 20;
+/// Kills between 80% and 110% of an uninterrupted run: in the commit's last moments and
+/// in the analysis after it.
+const LATE_KILLS: usize = 6;
 const ROWS: usize = 40_000;
 
 fn write_config(dir: &Path) -> PathBuf {
@@ -96,6 +101,19 @@ fn check_consistent(db: &Path) {
     }
 }
 
+/// No analysis lost: nothing owed, and the latest applied snapshot's results are stored.
+fn check_analysed(db: &Path, after: &str) {
+    let conn = Connection::open(db).unwrap();
+    let count = |sql: &str| -> i64 { conn.query_row(sql, [], |r| r.get(0)).unwrap() };
+    let owed = count("SELECT count(*) FROM analysis_owed WHERE state IN ('pending', 'failed')");
+    assert_eq!(owed, 0, "analyses still owed {after}");
+    let latest = "(SELECT max(snapshot_id) FROM snapshot WHERE status = 'applied')";
+    for table in ["quality", "nowcast", "delay_fit"] {
+        let rows = count(&format!("SELECT count(*) FROM {table} WHERE snapshot_id = {latest}"));
+        assert!(rows > 0, "no {table} rows for the latest applied snapshot {after}");
+    }
+}
+
 fn copy_dir(from: &Path, to: &Path) {
     fs::create_dir_all(to).unwrap();
     for entry in fs::read_dir(from).unwrap() {
@@ -129,14 +147,21 @@ fn sigkill_during_ingest_leaves_a_consistent_store_that_converges() {
     let full_time = started.elapsed();
     let want = state(&reference.join("data/t.db"));
 
+    check_analysed(&reference.join("data/t.db"), "after an uninterrupted run");
+
     let mut interrupted = 0;
-    for kill in 0..KILLS {
+    for kill in 0..KILLS + LATE_KILLS {
         let dir = root.path().join(format!("kill-{kill:02}"));
         copy_dir(&base, &dir);
         let config = write_config(&dir);
-        // Over the first 80% of the run: the analyses after the commit take a fixed share of
-        // it, and the kills must land inside the ingest itself.
-        let delay = full_time.mul_f64(kill as f64 / KILLS as f64 * 0.8);
+        // Over the first 80% of the run, where the ingest itself runs; then later, into the
+        // analyses after the commit.
+        let share = if kill < KILLS {
+            kill as f64 / KILLS as f64 * 0.8
+        } else {
+            0.8 + (kill - KILLS + 1) as f64 / LATE_KILLS as f64 * 0.3
+        };
+        let delay = full_time.mul_f64(share);
         let mut child = ingest(&config, &second, "2026-03-02").spawn().unwrap();
         std::thread::sleep(delay.max(Duration::from_millis(5)));
         let _ = child.kill(); // SIGKILL on Unix
@@ -154,6 +179,7 @@ fn sigkill_during_ingest_leaves_a_consistent_store_that_converges() {
         let got = state(&db);
         assert_eq!(got.0, want.0, "current records differ after kill {kill} ({delay:?})");
         assert_eq!(got.1, want.1, "applied snapshots differ after kill {kill} ({delay:?})");
+        check_analysed(&db, &format!("after kill {kill} ({delay:?}) and a re-ingest"));
     }
     // The kills must really land inside the ingest, not only after it finished.
     assert!(interrupted >= KILLS / 2, "only {interrupted} of {KILLS} kills interrupted the ingest");
