@@ -484,7 +484,7 @@ fn run(cli: Cli) -> Result<u8> {
         Command::Run { no_ops } => {
             let config = load(flag)?;
             init_tracing(true, config.log_json);
-            commands::run_daemon(config, !no_ops)?;
+            tidemark::app::daemon::run_until_signal(config, !no_ops)?;
             return Ok(0);
         }
         Command::Status { listing } => commands::status(&load(flag)?, listing.output())?,

@@ -10,7 +10,8 @@ use anyhow::{Context, Result};
 use tokio::net::TcpListener;
 use tokio_util::sync::CancellationToken;
 
-use super::commands::{self, CurveArgs, DelaysArgs, NowcastArgs, UsageError};
+use super::commands::{self, CurveArgs, DelaysArgs, NowcastArgs};
+use super::errors::{NotFound, UsageError};
 use crate::config::Config;
 use crate::metrics::Metrics;
 use crate::serve::api::{ApiState, Endpoint, ListingError, Listings, Params};
@@ -79,7 +80,7 @@ pub fn serve(config: Config) -> Result<()> {
         let shutdown = CancellationToken::new();
         let signal = shutdown.clone();
         tokio::spawn(async move {
-            commands::stop_on_signal(signal).await;
+            super::signals::stop_on_signal(signal).await;
         });
         serve::serve(listener, app_router(&config, None), shutdown).await.context("serving")?;
         Ok(())
@@ -227,7 +228,7 @@ fn classify(err: anyhow::Error) -> ListingError {
     if err.chain().any(|c| c.is::<Unavailable>()) {
         return ListingError::Unavailable(message);
     }
-    if message.contains("no applied snapshot") || message.contains("no snapshots yet") {
+    if err.chain().any(|c| c.is::<NotFound>()) {
         return ListingError::NotFound(message);
     }
     tracing::warn!(error = %format!("{err:#}"), "API listing failed");

@@ -2,7 +2,8 @@
 //! nowcast them, backtest the methods, and store results keyed by the snapshot they were
 //! computed from. The statistics are in `analysis`; this file only reads, calls and writes.
 
-use anyhow::{Context, Result};
+use super::errors::not_found;
+use anyhow::Result;
 use chrono::{Days, NaiveDate};
 
 use crate::analysis::backtest::{self, BacktestCell, NAIVE};
@@ -32,12 +33,7 @@ impl TriangleKey {
 
 /// The day a snapshot describes (its as-of date).
 pub fn snapshot_day(reader: &Reader, snapshot_id: i64) -> Result<NaiveDate> {
-    let table = reader
-        .query(&format!("SELECT substr(as_of, 1, 10) FROM snapshot WHERE snapshot_id = {snapshot_id}"), 1)?;
-    match table.rows.first().and_then(|r| r.first()) {
-        Some(crate::table::Cell::Text(day)) => Ok(day.parse().context("snapshot as-of date")?),
-        _ => anyhow::bail!("no snapshot {snapshot_id}"),
-    }
+    reader.snapshot_day(snapshot_id)?.ok_or_else(|| not_found(format!("no snapshot {snapshot_id}")))
 }
 
 /// The triangle of `key` as known at snapshot `snapshot_id`, over the reference dates a
@@ -86,25 +82,14 @@ pub fn resolve_method(
     if requested != "auto" {
         return Ok((requested.to_string(), String::new()));
     }
-    let table = reader.query(
-        &format!(
-            "SELECT method, avg(wis) FROM backtest
-             WHERE source_id = {source_id} AND ref_field = '{}' AND method <> '{NAIVE}' AND horizon <= {AUTO_HORIZONS}
-               AND snapshot_id = (SELECT max(snapshot_id) FROM backtest WHERE source_id = {source_id} AND ref_field = '{}')
-             GROUP BY method ORDER BY avg(wis) LIMIT 1",
-            field.name(),
-            field.name()
-        ),
-        1,
-    )?;
-    Ok(match table.rows.first().map(|r| r.as_slice()) {
-        Some([crate::table::Cell::Text(method), crate::table::Cell::Real(wis)]) => (
-            method.clone(),
-            format!(
+    Ok(match reader.best_backtest_method(source_id, field.name(), NAIVE, AUTO_HORIZONS)? {
+        Some((method, wis)) => {
+            let why = format!(
                 "auto chose {method} (mean WIS {wis:.2} over horizons 0-{AUTO_HORIZONS} in the latest backtest)"
-            ),
-        ),
-        _ => (
+            );
+            (method, why)
+        }
+        None => (
             "hazard".to_string(),
             "auto chose hazard: no backtest stored yet (run `tidemark backtest`)".to_string(),
         ),
@@ -186,8 +171,11 @@ pub fn backtest(
     request: &BacktestRequest,
 ) -> Result<(i64, Vec<BacktestCell>, NaiveDate, NaiveDate)> {
     let reader = Reader::open(&config.store.path)?;
-    let source_id = reader.source_id(&source.name)?.context("the source has no snapshots yet")?;
-    let latest = reader.snapshot_as_of(source_id, None)?.context("the source has no applied snapshot")?;
+    let source_id =
+        reader.source_id(&source.name)?.ok_or_else(|| not_found("the source has no snapshots yet"))?;
+    let latest = reader
+        .snapshot_as_of(source_id, None)?
+        .ok_or_else(|| not_found("the source has no applied snapshot"))?;
     let analysis = &config.analysis;
     let last_day = snapshot_day(&reader, latest)?;
     let to = request.to.unwrap_or(last_day - Days::new(request.lag as u64)).min(last_day);

@@ -18,14 +18,8 @@ use crate::store::{Reader, Store};
 use crate::table::{Cell, OutputFormat, Table};
 use crate::text::escape_path;
 
-/// A mistake in how tidemark was called (exit code 2), as opposed to a failure (exit code 1).
-#[derive(Debug, thiserror::Error)]
-#[error("{0}")]
-pub struct UsageError(pub String);
-
-fn usage(message: impl Into<String>) -> anyhow::Error {
-    UsageError(message.into()).into()
-}
+use super::errors::usage;
+pub use super::errors::{NotFound, UsageError, not_found};
 
 /// Parses TIME: RFC 3339, or a plain date meaning the end of that day (UTC).
 pub fn parse_time_arg(text: &str) -> Result<DateTime<Utc>> {
@@ -134,7 +128,7 @@ pub fn ingest(
     let source = source(config, source_name)?;
     let as_of = as_of.map(parse_time_arg).transpose()?;
     let mut store = Store::open(&config.store.path)?;
-    remove_archive_orphans(config);
+    ingest::remove_archive_orphans(config);
     let outcome = ingest::commit_file(&mut store, config, source, file, as_of)?;
     let analysis_failure = if analyse { analyse_owed(&mut store, config, source) } else { None };
     Ok(IngestReport { outcome, analysis_failure })
@@ -150,46 +144,15 @@ fn analyse_owed(store: &mut Store, config: &Config, source: &SourceConfig) -> Op
     }
 }
 
-/// Removes the temporary archive files that an ingest killed mid-copy left behind (logged,
-/// never fatal). Call it with the store open for writing (the writer lock held) and before
-/// this process archives anything: at `tidemark ingest` and at daemon start.
-pub fn remove_archive_orphans(config: &Config) {
-    let archive = &config.store.archive;
-    match crate::store::archive::remove_orphans(archive) {
-        Ok(0) => {}
-        Ok(removed) => tracing::warn!(
-            removed, archive = %escape_path(archive), "removed temporary files of interrupted ingests"
-        ),
-        Err(err) => tracing::warn!(
-            archive = %escape_path(archive), error = %err, "temporary files of interrupted ingests not removed"
-        ),
-    }
-}
-
 /// Up to `max` problems of a snapshot, for printing after an ingest.
 pub fn problem_lines(config: &Config, snapshot_id: i64, max: usize) -> Result<Vec<String>> {
     let reader = Reader::open(&config.store.path)?;
-    let table = reader.query(
-        &format!(
-            "SELECT line, field, kind, reason FROM (
-                 SELECT line, field, kind, reason FROM reject WHERE snapshot_id = {snapshot_id}
-                 UNION ALL
-                 SELECT line, field, kind, reason FROM field_problem WHERE snapshot_id = {snapshot_id})
-             ORDER BY line LIMIT {max}"
-        ),
-        max,
-    )?;
-    Ok(table
-        .rows
-        .iter()
-        .map(|row| match row.as_slice() {
-            [Cell::Int(line), Cell::Text(field), Cell::Text(kind), Cell::Text(reason)] => {
-                format!("line {line}, field {field}: {reason} ({kind})")
-            }
-            [Cell::Int(line), _, Cell::Text(kind), Cell::Text(reason)] => {
-                format!("line {line}: {reason} ({kind})")
-            }
-            _ => String::new(),
+    Ok(reader
+        .problem_lines(snapshot_id, max)?
+        .into_iter()
+        .map(|p| match p.field {
+            Some(field) => format!("line {}, field {field}: {} ({})", p.line, p.reason, p.kind),
+            None => format!("line {}: {} ({})", p.line, p.reason, p.kind),
         })
         .collect())
 }
@@ -262,7 +225,7 @@ pub fn history(config: &Config, case_key: &str, source_name: &str, format: Outpu
     source(config, source_name)?;
     let reader = Reader::open(&config.store.path)?;
     let Some(source_id) = reader.source_id(source_name)? else {
-        bail!("source {source_name:?} has no snapshots yet");
+        return Err(not_found(format!("source {source_name:?} has no snapshots yet")));
     };
     let versions = reader.history(source_id, case_key)?;
     if versions.is_empty() {
@@ -336,7 +299,7 @@ pub fn curve_table(config: &Config, reader: &Reader, args: &CurveArgs<'_>) -> Re
         .map(|id| Ok::<_, anyhow::Error>((id, reader.snapshot_as_of(id, as_of)?)))
         .transpose()?;
     let Some((source_id, Some(snapshot_id))) = snapshot else {
-        bail!("source {:?} has no applied snapshot at that time", args.source);
+        return Err(not_found(format!("source {:?} has no applied snapshot at that time", args.source)));
     };
     let mut columns = vec![by.name()];
     if let Some(field) = stratify {
@@ -403,48 +366,6 @@ fn owed_summary(owed: &[crate::store::OwedAnalysis]) -> String {
         Some(last) if last.error.is_some() => format!("{} (failed {}x)", ids.join(","), last.attempts),
         Some(_) => ids.join(","),
     }
-}
-
-/// `tidemark run`: the daemon, until SIGTERM or SIGINT.
-pub fn run_daemon(config: Config, serve_ops: bool) -> Result<()> {
-    // Say so before binding ports if another process already writes to this store.
-    if let Some(pid) = crate::store::lock::holder(&config.store.path) {
-        bail!(
-            "another tidemark process (pid {pid}) is writing to {}; stop it or wait for it to finish",
-            config.store.path.display()
-        );
-    }
-    let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
-    runtime.block_on(async move {
-        let shutdown = tokio_util::sync::CancellationToken::new();
-        let ops = if serve_ops {
-            let listener = tokio::net::TcpListener::bind(config.bind)
-                .await
-                .with_context(|| format!("binding the API and ops endpoints to {}", config.bind))?;
-            tracing::info!(address = %config.bind, "serving /api/v1, /healthz, /metrics");
-            Some(listener)
-        } else {
-            None
-        };
-        tokio::spawn(stop_on_signal(shutdown.clone()));
-        super::daemon::run(std::sync::Arc::new(config), shutdown, Default::default(), ops).await
-    })
-}
-
-/// Cancels `shutdown` on SIGTERM or SIGINT.
-pub(super) async fn stop_on_signal(shutdown: tokio_util::sync::CancellationToken) {
-    use tokio::signal::unix::{SignalKind, signal};
-    let (Ok(mut term), Ok(mut int)) = (signal(SignalKind::terminate()), signal(SignalKind::interrupt()))
-    else {
-        tracing::error!("cannot install signal handlers");
-        return;
-    };
-    let name = tokio::select! {
-        _ = term.recv() => "SIGTERM",
-        _ = int.recv() => "SIGINT",
-    };
-    tracing::info!(signal = name, "stopping: no new polls; an ingest in progress rolls back");
-    shutdown.cancel();
 }
 
 /// `tidemark status`
@@ -559,10 +480,11 @@ pub fn nowcast_table(config: &Config, reader: &Reader, args: &NowcastArgs<'_>) -
         return Err(usage(format!("--method {}: choose auto, hazard or smooth", args.method)));
     }
     let as_of = args.as_of.map(parse_time_arg).transpose()?;
-    let source_id = reader.source_id(args.source)?.context("the source has no snapshots yet")?;
+    let source_id =
+        reader.source_id(args.source)?.ok_or_else(|| not_found("the source has no snapshots yet"))?;
     let snapshot_id = reader
         .snapshot_as_of(source_id, as_of)?
-        .context("the source has no applied snapshot at that time")?;
+        .ok_or_else(|| not_found("the source has no applied snapshot at that time"))?;
     let (method, note) = analyse::resolve_method(reader, source_id, field, args.method)?;
     let mut strata = vec![TriangleKey::all(field)];
     if let Some(text) = args.stratify {
@@ -773,10 +695,11 @@ pub fn delays_table(config: &Config, reader: &Reader, args: &DelaysArgs<'_>) -> 
     let stratify = args.stratify.map(parse_field_arg).transpose()?;
     let compare_by = args.compare_by.map(parse_field_arg).transpose()?;
     let as_of = args.as_of.map(parse_time_arg).transpose()?;
-    let source_id = reader.source_id(args.source)?.context("the source has no snapshots yet")?;
+    let source_id =
+        reader.source_id(args.source)?.ok_or_else(|| not_found("the source has no snapshots yet"))?;
     let snapshot_id = reader
         .snapshot_as_of(source_id, as_of)?
-        .context("the source has no applied snapshot at that time")?;
+        .ok_or_else(|| not_found("the source has no applied snapshot at that time"))?;
     let grouping = compare_by.or(stratify);
     let obs = analyse::delay_observations(
         reader,

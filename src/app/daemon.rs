@@ -85,6 +85,32 @@ struct Shared {
     started: DateTime<Utc>,
 }
 
+/// `tidemark run`: the daemon, until SIGTERM or SIGINT.
+pub fn run_until_signal(config: Config, serve_ops: bool) -> Result<()> {
+    // Say so before binding ports if another process already writes to this store.
+    if let Some(pid) = crate::store::lock::holder(&config.store.path) {
+        anyhow::bail!(
+            "another tidemark process (pid {pid}) is writing to {}; stop it or wait for it to finish",
+            config.store.path.display()
+        );
+    }
+    let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
+    runtime.block_on(async move {
+        let shutdown = CancellationToken::new();
+        let ops = if serve_ops {
+            let listener = TcpListener::bind(config.bind)
+                .await
+                .with_context(|| format!("binding the API and ops endpoints to {}", config.bind))?;
+            tracing::info!(address = %config.bind, "serving /api/v1, /healthz, /metrics");
+            Some(listener)
+        } else {
+            None
+        };
+        tokio::spawn(super::signals::stop_on_signal(shutdown.clone()));
+        run(Arc::new(config), shutdown, Default::default(), ops).await
+    })
+}
+
 /// Runs the daemon until `shutdown` fires. `ops` is the listener for the API (`/api/v1`),
 /// `/healthz` and `/metrics` (none in tests that do not need it).
 pub async fn run(
@@ -94,7 +120,7 @@ pub async fn run(
     ops: Option<TcpListener>,
 ) -> Result<()> {
     let store = Store::open(&config.store.path)?;
-    super::commands::remove_archive_orphans(&config);
+    super::ingest::remove_archive_orphans(&config);
     let (writer, writer_thread) = writer::start(store)?;
     let source_ids = register_sources(&writer, &config).await?;
     let metrics = Arc::new(Metrics::default());

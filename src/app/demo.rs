@@ -294,36 +294,18 @@ fn summarise(config: &Config, scenario: &Scenario, dir: PathBuf) -> Result<DemoR
 
 /// Every alert raised in the run, by the day of the snapshot that opened it.
 fn demo_alerts(reader: &Reader, scenario: &Scenario) -> Result<Vec<DemoAlert>> {
-    let table = reader.query(
-        "SELECT coalesce(substr(n.as_of, 1, 10), substr(a.opened_at, 1, 10)), a.rule, a.source, a.subject,
-                a.severity, a.state, a.summary
-         FROM alert a LEFT JOIN snapshot n ON n.snapshot_id = a.snapshot_id ORDER BY 1, a.alert_id",
-        10_000,
-    )?;
-    let text = |c: &crate::table::Cell| match c {
-        crate::table::Cell::Text(t) => t.clone(),
-        _ => String::new(),
-    };
-    Ok(table
-        .rows
-        .iter()
-        .map(|r| {
-            let subject = if text(&r[3]).is_empty() { String::new() } else { format!(" [{}]", text(&r[3])) };
-            let line = format!(
-                "{} {}{} {} ({}): {}",
-                text(&r[1]),
-                text(&r[2]),
-                subject,
-                text(&r[4]),
-                text(&r[5]),
-                text(&r[6])
-            );
-            let day = NaiveDate::parse_from_str(&text(&r[0]), "%Y-%m-%d")
+    Ok(reader
+        .alert_lines()?
+        .into_iter()
+        .map(|a| {
+            let subject = if a.subject.is_empty() { String::new() } else { format!(" [{}]", a.subject) };
+            let line =
+                format!("{} {}{} {} ({}): {}", a.rule, a.source, subject, a.severity, a.state, a.summary);
+            let day = NaiveDate::parse_from_str(&a.day, "%Y-%m-%d")
                 .map(|d| (d - scenario.start).num_days())
                 .unwrap_or(-1);
-            let (rule, source, subject) = (text(&r[1]), text(&r[2]), text(&r[3]));
-            let injected_day = matching_injection(&scenario.injections, &rule, &source, &subject, day);
-            DemoAlert { rule, source, subject, day, injected_day, line }
+            let injected_day = matching_injection(&scenario.injections, &a.rule, &a.source, &a.subject, day);
+            DemoAlert { rule: a.rule, source: a.source, subject: a.subject, day, injected_day, line }
         })
         .collect())
 }

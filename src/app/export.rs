@@ -2,9 +2,10 @@
 //! snapshot, written as CSV or Parquet to a file with mode 0600. The store streams the rows;
 //! `crate::export` writes them (CSV text cells safe for spreadsheets unless `--raw`).
 
+use super::errors::not_found;
 use std::path::{Path, PathBuf};
 
-use anyhow::{Context, Result};
+use anyhow::Result;
 
 use super::commands::{UsageError, parse_time_arg};
 use crate::config::Config;
@@ -59,10 +60,11 @@ pub fn export(config: &Config, args: &ExportArgs<'_>) -> Result<ExportOutcome> {
         .ok_or_else(|| usage(format!("--table {}: choose line-list, nowcast or delays", args.table)))?;
     let as_of = args.as_of.map(parse_time_arg).transpose()?;
     let reader = Reader::open(&config.store.path)?;
-    let source_id = reader.source_id(args.source)?.context("the source has no snapshots yet")?;
+    let source_id =
+        reader.source_id(args.source)?.ok_or_else(|| not_found("the source has no snapshots yet"))?;
     let snapshot_id = reader
         .snapshot_as_of(source_id, as_of)?
-        .context("the source has no applied snapshot at that time")?;
+        .ok_or_else(|| not_found("the source has no applied snapshot at that time"))?;
     let snapshot_as_of = reader
         .applied_snapshots(source_id)?
         .into_iter()

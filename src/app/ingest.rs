@@ -304,6 +304,22 @@ pub fn end_of_day(date: NaiveDate) -> DateTime<Utc> {
     date.and_time(NaiveTime::from_hms_opt(23, 59, 59).unwrap_or_default()).and_utc()
 }
 
+/// Removes the temporary archive files that an ingest killed mid-copy left behind (logged,
+/// never fatal). Call it with the store open for writing (the writer lock held) and before
+/// this process archives anything: at `tidemark ingest` and at daemon start.
+pub fn remove_archive_orphans(config: &Config) {
+    let archive = &config.store.archive;
+    match archive::remove_orphans(archive) {
+        Ok(0) => {}
+        Ok(removed) => tracing::warn!(
+            removed, archive = %escape_path(archive), "removed temporary files of interrupted ingests"
+        ),
+        Err(err) => tracing::warn!(
+            archive = %escape_path(archive), error = %err, "temporary files of interrupted ingests not removed"
+        ),
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

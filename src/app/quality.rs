@@ -3,7 +3,8 @@
 //! and per-field missing and invalid shares of one snapshot. The SQL is in
 //! `store::quality`; this file only chooses what to measure and lays the rows out.
 
-use anyhow::{Context, Result};
+use super::errors::not_found;
+use anyhow::Result;
 
 use crate::config::{Config, SourceConfig};
 use crate::model::{Field, SnapshotStatus};
@@ -83,7 +84,7 @@ pub fn quality(
     let reader = Reader::open(&config.store.path)?;
     let source_id = reader
         .source_id(source_name)?
-        .with_context(|| format!("source {source_name:?} has no snapshots yet"))?;
+        .ok_or_else(|| not_found(format!("source {source_name:?} has no snapshots yet")))?;
     let snapshot_id = match snapshot {
         Some(id) => id,
         None => match reader.latest_quality_snapshot(source_id)? {

@@ -32,6 +32,7 @@ pub use self::dashboard::{
 pub use self::export::{ColumnKind, ExportTable};
 pub use self::owed::{OwedAnalysis, OwedState};
 pub use self::read::{AGE_BAND_EDGES, CurveRow, Reader, SnapshotRow, VersionRow};
+pub use self::results::{AlertLine, ProblemLine};
 pub use self::sources::{FileRecord, PollRecord, SourceStatus};
 pub use self::sql::{SqlLimits, run_sql};
 pub use self::tokens::{TokenRow, TokenScope, create_token, revoke_token};

@@ -1,5 +1,5 @@
 //! Read-only questions of the store: snapshots, the history of one record, the line list and
-//! epidemic curve as of any snapshot, and ad-hoc SQL. Every connection here is opened
+//! epidemic curve as of any snapshot (analysts' SQL is `store::sql`). Every connection here is opened
 //! read-only with `query_only`, so no read can change the store.
 
 use std::collections::BTreeMap;
@@ -11,7 +11,7 @@ use rusqlite::{Connection, OptionalExtension, Row, params};
 
 use super::{StoreError, open_reader, parse_time, time_text};
 use crate::model::{AgeRange, CaseRecord, Field};
-use crate::table::{Cell, Table};
+use crate::table::Cell;
 
 /// Default age bands for stratifying, as lower edges in years (common practice in
 /// surveillance tables); the last band is open.
@@ -212,32 +212,6 @@ impl Reader {
             [source_id],
             |r| Ok((r.get(0)?, r.get(1)?)),
         )?)
-    }
-
-    /// Runs one SQL statement and returns at most `limit` rows.
-    pub fn query(&self, sql: &str, limit: usize) -> Result<Table, StoreError> {
-        let mut stmt = self.conn.prepare(sql)?;
-        // The connection is read-only, but some statements act before SQLite refuses them
-        // (`VACUUM INTO 'file'` creates the file first); refuse anything that could write.
-        if !stmt.readonly() {
-            return Err(StoreError::Refused(
-                "query: only statements that read are allowed (SELECT, WITH, EXPLAIN, reading PRAGMAs)"
-                    .into(),
-            ));
-        }
-        let columns: Vec<String> = stmt.column_names().map(|c| c.to_string()).collect();
-        let width = columns.len();
-        let mut table = Table { columns, rows: Vec::new() };
-        let mut rows = stmt.query([])?;
-        while let Some(row) = rows.next()? {
-            if table.rows.len() >= limit {
-                return Err(StoreError::Refused(format!(
-                    "the query returns more than {limit} rows; add a LIMIT or aggregate"
-                )));
-            }
-            table.rows.push((0..width).map(|idx| cell(row.get_ref(idx))).collect::<Result<_, _>>()?);
-        }
-        Ok(table)
     }
 }
 

@@ -3,6 +3,7 @@
 //! `None`, so callers can say "not available" instead of failing.
 
 use chrono::{DateTime, Utc};
+use rusqlite::OptionalExtension;
 
 use super::{Reader, StoreError, time_text};
 use crate::table::Table;
@@ -83,5 +84,104 @@ impl Reader {
                 .push((0..width).map(|idx| super::read::cell(row.get_ref(idx))).collect::<Result<_, _>>()?);
         }
         Ok(table)
+    }
+}
+
+/// One problem of a snapshot (a reject or a field problem), for the lines printed after an
+/// ingest. Names the line, field and kind; the reason names columns, never cell values.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct ProblemLine {
+    pub line: i64,
+    pub field: Option<String>,
+    pub kind: String,
+    pub reason: String,
+}
+
+/// One alert with the day of the snapshot that opened it (or of its opening, without one).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct AlertLine {
+    pub day: String,
+    pub rule: String,
+    pub source: String,
+    pub subject: String,
+    pub severity: String,
+    pub state: String,
+    pub summary: String,
+}
+
+impl Reader {
+    /// The first `max` problems of a snapshot by line: rejects and field problems together.
+    pub fn problem_lines(&self, snapshot_id: i64, max: usize) -> Result<Vec<ProblemLine>, StoreError> {
+        let mut stmt = self.conn.prepare(
+            "SELECT line, field, kind, reason FROM (
+                 SELECT line, field, kind, reason FROM reject WHERE snapshot_id = ?1
+                 UNION ALL
+                 SELECT line, field, kind, reason FROM field_problem WHERE snapshot_id = ?1)
+             ORDER BY line LIMIT ?2",
+        )?;
+        let rows = stmt.query_map(rusqlite::params![snapshot_id, max as i64], |r| {
+            Ok(ProblemLine { line: r.get(0)?, field: r.get(1)?, kind: r.get(2)?, reason: r.get(3)? })
+        })?;
+        Ok(rows.collect::<Result<_, _>>()?)
+    }
+
+    /// Every alert, by the day of the snapshot that opened it, then by id.
+    pub fn alert_lines(&self) -> Result<Vec<AlertLine>, StoreError> {
+        let mut stmt = self.conn.prepare(
+            "SELECT coalesce(substr(n.as_of, 1, 10), substr(a.opened_at, 1, 10)), a.rule, a.source,
+                    coalesce(a.subject, ''), a.severity, a.state, a.summary
+             FROM alert a LEFT JOIN snapshot n ON n.snapshot_id = a.snapshot_id ORDER BY 1, a.alert_id",
+        )?;
+        let rows = stmt.query_map([], |r| {
+            Ok(AlertLine {
+                day: r.get(0)?,
+                rule: r.get(1)?,
+                source: r.get(2)?,
+                subject: r.get(3)?,
+                severity: r.get(4)?,
+                state: r.get(5)?,
+                summary: r.get(6)?,
+            })
+        })?;
+        Ok(rows.collect::<Result<_, _>>()?)
+    }
+
+    /// The day a snapshot describes (the date of its as-of time); `None` for no such snapshot.
+    pub fn snapshot_day(&self, snapshot_id: i64) -> Result<Option<chrono::NaiveDate>, StoreError> {
+        let day: Option<String> = self
+            .conn
+            .query_row(
+                "SELECT substr(as_of, 1, 10) FROM snapshot WHERE snapshot_id = ?1",
+                [snapshot_id],
+                |r| r.get(0),
+            )
+            .optional()?;
+        day.map(|d| {
+            d.parse()
+                .map_err(|_| StoreError::Refused(format!("snapshot {snapshot_id} has no valid as-of date")))
+        })
+        .transpose()
+    }
+
+    /// The method (other than `exclude`) with the lowest mean WIS over horizons
+    /// 0..=`max_horizon` in the source's latest backtest of `ref_field`, with that mean.
+    pub fn best_backtest_method(
+        &self,
+        source_id: i64,
+        ref_field: &str,
+        exclude: &str,
+        max_horizon: usize,
+    ) -> Result<Option<(String, f64)>, StoreError> {
+        Ok(self
+            .conn
+            .query_row(
+                "SELECT method, avg(wis) FROM backtest
+                 WHERE source_id = ?1 AND ref_field = ?2 AND method <> ?3 AND horizon <= ?4
+                   AND snapshot_id = (SELECT max(snapshot_id) FROM backtest WHERE source_id = ?1 AND ref_field = ?2)
+                 GROUP BY method ORDER BY avg(wis) LIMIT 1",
+                rusqlite::params![source_id, ref_field, exclude, max_horizon as i64],
+                |r| Ok((r.get(0)?, r.get(1)?)),
+            )
+            .optional()?)
     }
 }
