@@ -67,7 +67,7 @@ impl Default for AnalysisConfig {
         AnalysisConfig {
             reference_fields: vec![Field::OnsetDate, Field::ReportDate],
             strata: vec![Field::Jurisdiction, Field::Age, Field::Sex],
-            age_bands: crate::store::AGE_BAND_EDGES.to_vec(),
+            age_bands: AGE_BAND_EDGES.to_vec(),
             max_delay: 28,
             nowcast_methods: NOWCAST_METHODS.iter().map(|m| m.to_string()).collect(),
             window: 42,
@@ -166,4 +166,16 @@ fn delay_pair(text: &str, push: &mut impl FnMut(&str, String)) -> Option<(Field,
         push("delays", format!("\"{text}\" is not FIELD->FIELD (date fields or first_seen)"));
     }
     parsed
+}
+
+/// Default age bands for stratifying, as lower edges in years (common practice in
+/// surveillance tables); the last band is open.
+pub const AGE_BAND_EDGES: [u32; 7] = [0, 5, 15, 25, 45, 65, 80];
+
+/// Which triangles to maintain: reference fields, and strata besides the whole source.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TriangleSpec {
+    pub ref_fields: Vec<Field>,
+    pub strata: Vec<Field>,
+    pub age_edges: Vec<u32>,
 }

@@ -6,6 +6,8 @@
 
 pub mod alerting;
 pub mod analysis;
+pub mod mapping;
+pub mod query;
 mod raw;
 pub mod rule_params;
 mod source;
@@ -16,11 +18,12 @@ use std::path::{Path, PathBuf};
 use std::time::Duration;
 
 pub use self::alerting::{AlertSettings, QualitySettings, Severity};
-pub use self::analysis::{AnalysisConfig, DelayEnd};
+pub use self::analysis::{AGE_BAND_EDGES, AnalysisConfig, DelayEnd, TriangleSpec};
 use self::raw::RawConfig;
 pub use self::source::{
     AsOfRule, FolderSettings, HOLD_REMOVED_MIN, Location, SourceConfig, UrlSettings, defaults,
 };
+pub use query::SqlLimits;
 
 /// The example config that `tidemark init` writes, with comments.
 pub const EXAMPLE: &str = include_str!("../../config/example.toml");
@@ -54,7 +57,7 @@ pub struct Config {
 /// and how many queries the API runs at once.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct ServeLimits {
-    pub query: crate::store::SqlLimits,
+    pub query: SqlLimits,
     /// An API request that takes longer is answered 408 and dropped.
     pub request_timeout: Duration,
     /// Analysts' queries the API runs at once; one more waits briefly, then gets 503.
@@ -140,8 +143,8 @@ impl Config {
     }
 
     /// The reporting triangles the store maintains for every source.
-    pub fn triangle_spec(&self) -> crate::store::TriangleSpec {
-        crate::store::TriangleSpec {
+    pub fn triangle_spec(&self) -> TriangleSpec {
+        TriangleSpec {
             ref_fields: self.analysis.reference_fields.clone(),
             strata: self.analysis.strata.clone(),
             age_edges: self.analysis.age_bands.clone(),
@@ -277,24 +280,24 @@ fn build_serve_limits(raw: &raw::RawServe, problems: &mut Vec<String>) -> ServeL
             default
         }),
     };
-    let timeout = duration("query_timeout", raw.query_timeout.as_deref(), crate::store::sql::DEFAULT_TIMEOUT);
+    let timeout = duration("query_timeout", raw.query_timeout.as_deref(), query::DEFAULT_TIMEOUT);
     let request_timeout =
         duration("request_timeout", raw.request_timeout.as_deref(), DEFAULT_REQUEST_TIMEOUT);
-    let max_rows = raw.query_max_rows.unwrap_or(crate::store::sql::DEFAULT_MAX_ROWS);
+    let max_rows = raw.query_max_rows.unwrap_or(query::DEFAULT_MAX_ROWS);
     if max_rows == 0 {
         problems.push("serve.query_max_rows: must be at least 1".into());
     }
-    let query = crate::store::SqlLimits {
+    let query = SqlLimits {
         max_rows: max_rows.max(1),
         timeout,
         max_value_bytes: value_limit(raw.query_max_value_bytes, problems),
         max_answer_bytes: at_least_one(
             "query_max_answer_bytes",
             raw.query_max_answer_bytes,
-            crate::store::sql::DEFAULT_MAX_ANSWER_BYTES,
+            query::DEFAULT_MAX_ANSWER_BYTES,
             problems,
         ),
-        sqlite_heap_bytes: raw.sqlite_heap_bytes.unwrap_or(crate::store::sql::DEFAULT_SQLITE_HEAP_BYTES),
+        sqlite_heap_bytes: raw.sqlite_heap_bytes.unwrap_or(query::DEFAULT_SQLITE_HEAP_BYTES),
     };
     let query_concurrency =
         at_least_one("query_concurrency", raw.query_concurrency, DEFAULT_QUERY_CONCURRENCY, problems);
@@ -315,7 +318,7 @@ fn at_least_one(key: &str, value: Option<usize>, default: usize, problems: &mut 
 
 /// `serve.query_max_value_bytes`: at least 1, at most SQLite's own maximum.
 fn value_limit(value: Option<usize>, problems: &mut Vec<String>) -> usize {
-    use crate::store::sql::{DEFAULT_MAX_VALUE_BYTES, MAX_VALUE_BYTES_CEILING};
+    use query::{DEFAULT_MAX_VALUE_BYTES, MAX_VALUE_BYTES_CEILING};
     let bytes = at_least_one("query_max_value_bytes", value, DEFAULT_MAX_VALUE_BYTES, problems);
     if bytes > MAX_VALUE_BYTES_CEILING {
         problems.push(format!(

@@ -11,9 +11,9 @@ use std::time::Duration;
 use chrono::format::{Item, StrftimeItems};
 use sha2::{Digest, Sha256};
 
+use super::mapping::{LegacyEncoding, Limits, Mapping};
 use super::raw::RawSource;
 use super::{env_state, parse_duration, redact_url};
-use crate::extract::{LegacyEncoding, Limits, Mapping};
 use crate::model::{ExtractKind, Field, Format};
 
 /// Default poll schedule: every 15 minutes, at second 0 (cron crate syntax, seconds first).

@@ -10,58 +10,11 @@ use std::io::{self, Read};
 use std::sync::Arc;
 use std::sync::atomic::{AtomicU64, Ordering};
 
-/// Limits on one extract; every one is configurable per source (`[source.limits]`).
-#[derive(Debug, Clone, PartialEq)]
-pub struct Limits {
-    /// Decompressed bytes per compressed byte of a gzip extract. Line lists compress about
-    /// 5-15x; 100x leaves room for very sparse files and stops a bomb (zeros compress
-    /// about 1000x) after a small multiple of its own size.
-    pub max_expansion: u64,
-    /// Bytes of the extract after decompression, in all.
-    pub max_bytes: u64,
-    /// Bytes of one line (CSV record, NDJSON line) or one record of a JSON array.
-    pub max_record_bytes: u64,
-    /// Columns of a header and cells of a row.
-    pub max_columns: u64,
-    /// Nesting of JSON arrays and objects (a record is an object of values and lists: 3).
-    pub max_json_depth: u64,
-    /// Treat an extract whose last byte is not a newline as truncated, for feeds known to
-    /// always end with one.
-    pub require_final_newline: bool,
-}
-
-/// Default limits (named so the docs and tests can cite them).
-pub mod defaults {
-    /// See `Limits::max_expansion`.
-    pub const MAX_EXPANSION: u64 = 100;
-    /// 16 GiB: ten times the largest national line list we would expect in one file.
-    pub const MAX_BYTES: u64 = 16 << 30;
-    /// 16 MiB: real rows are under a few KiB; this still admits a 10 MB free-text cell
-    /// (rejected as a field problem, not a whole-file failure) while keeping one record's
-    /// buffers small.
-    pub const MAX_RECORD_BYTES: u64 = 16 << 20;
-    /// Wide exports have a few hundred columns.
-    pub const MAX_COLUMNS: u64 = 4096;
-    /// Records are flat; 64 is far beyond any record and far below a stack overflow.
-    pub const MAX_JSON_DEPTH: u64 = 64;
-}
+pub use crate::config::mapping::{Limits, defaults};
 
 /// Decompressed bytes admitted before the expansion ratio is applied, so a tiny gzip file
 /// of a small extract never trips it.
 const EXPANSION_ALLOWANCE: u64 = 1 << 20;
-
-impl Default for Limits {
-    fn default() -> Limits {
-        Limits {
-            max_expansion: defaults::MAX_EXPANSION,
-            max_bytes: defaults::MAX_BYTES,
-            max_record_bytes: defaults::MAX_RECORD_BYTES,
-            max_columns: defaults::MAX_COLUMNS,
-            max_json_depth: defaults::MAX_JSON_DEPTH,
-            require_final_newline: false,
-        }
-    }
-}
 
 /// Which limit an extract went over; carried inside an `io::Error` through the readers and
 /// turned into `ExtractError::Limit` at the top.

@@ -4,7 +4,7 @@
 //! Pure: the row arrives as a lookup function, whatever its byte format was.
 
 use std::borrow::Cow;
-use std::collections::{BTreeMap, BTreeSet, HashMap};
+use std::collections::BTreeMap;
 
 use chrono::NaiveDate;
 
@@ -12,40 +12,7 @@ use super::normalize::{self, Invalid};
 use super::{Problem, ProblemKind};
 use crate::model::{CaseRecord, Field};
 
-/// The legacy single-byte encodings a feed may fall back to when a cell is not UTF-8.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum LegacyEncoding {
-    Windows1252,
-    Latin1,
-}
-
-/// How one source's rows become canonical records; compiled once from the config.
-#[derive(Debug, Clone)]
-pub struct Mapping {
-    /// Where this mapping lives in the config, e.g. `source[1]`, for error messages.
-    pub label: String,
-    /// The source column that identifies a record.
-    pub key_column: String,
-    /// Canonical field -> source column, for every mapped field but the key.
-    pub columns: BTreeMap<Field, String>,
-    /// Per field: source value (trimmed, lower-cased) -> canonical value.
-    pub values: BTreeMap<Field, HashMap<String, String>>,
-    /// Cell values that mean "not captured" (trimmed, lower-cased).
-    pub missing_tokens: Vec<String>,
-    pub date_formats: Vec<String>,
-    pub list_separator: String,
-    /// Source columns to drop instead of keeping them in `extra`.
-    pub ignore: BTreeSet<String>,
-    /// CSV delimiter; detected from the header line when `None`.
-    pub delimiter: Option<u8>,
-    pub fallback_encoding: Option<LegacyEncoding>,
-    /// Resource limits on each extract of the source.
-    pub limits: super::Limits,
-}
-
-/// Missing tokens when the config names none (common practice in line lists).
-pub const DEFAULT_MISSING_TOKENS: [&str; 8] =
-    ["", "na", "n/a", "null", "none given", "unknown", "not known", "missing"];
+pub use crate::config::mapping::{DEFAULT_MISSING_TOKENS, LegacyEncoding, Mapping};
 
 /// Canonical sex values; anything else after the value map is a field problem.
 pub const SEX_VALUES: [&str; 3] = ["female", "male", "other"];
@@ -56,23 +23,6 @@ pub fn earliest_plausible_date() -> NaiveDate {
 }
 
 impl Mapping {
-    /// A mapping with the defaults and no mapped fields; the config fills it in.
-    pub fn new(label: &str, key_column: &str) -> Mapping {
-        Mapping {
-            label: label.to_string(),
-            key_column: key_column.to_string(),
-            columns: BTreeMap::new(),
-            values: BTreeMap::new(),
-            missing_tokens: DEFAULT_MISSING_TOKENS.iter().map(|t| t.to_string()).collect(),
-            date_formats: vec!["%Y-%m-%d".to_string()],
-            list_separator: ";".to_string(),
-            ignore: BTreeSet::new(),
-            delimiter: None,
-            fallback_encoding: None,
-            limits: super::Limits::default(),
-        }
-    }
-
     /// The config path of the setting that names `field`'s column.
     pub fn config_path(&self, field: Field) -> String {
         match field {

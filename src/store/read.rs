@@ -13,9 +13,7 @@ use super::{StoreError, open_reader, parse_time, time_text};
 use crate::model::{AgeRange, CaseRecord, Field};
 use crate::table::Cell;
 
-/// Default age bands for stratifying, as lower edges in years (common practice in
-/// surveillance tables); the last band is open.
-pub const AGE_BAND_EDGES: [u32; 7] = [0, 5, 15, 25, 45, 65, 80];
+pub use crate::config::AGE_BAND_EDGES;
 
 /// A read-only connection.
 #[derive(Debug)]

@@ -16,7 +16,7 @@
 use std::path::Path;
 use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
-use std::time::{Duration, Instant};
+use std::time::Instant;
 
 use rusqlite::ErrorCode;
 use rusqlite::hooks::{AuthAction, AuthContext, Authorization};
@@ -24,38 +24,11 @@ use rusqlite::limits::Limit;
 
 use super::read::cell;
 use super::{StoreError, open_reader};
+pub use crate::config::query::{
+    DEFAULT_MAX_ANSWER_BYTES, DEFAULT_MAX_ROWS, DEFAULT_MAX_VALUE_BYTES, DEFAULT_SQLITE_HEAP_BYTES,
+    DEFAULT_TIMEOUT, MAX_VALUE_BYTES_CEILING, SqlLimits,
+};
 use crate::table::{Cell, Table};
-
-/// Default row limit: enough for any listing a person reads or a spreadsheet holds, small
-/// enough that a forgotten WHERE does not stream the whole line list into memory.
-pub const DEFAULT_MAX_ROWS: usize = 10_000;
-
-/// Default time limit: an aggregate over a million versions takes well under a second here,
-/// so ten seconds only stops queries that would run for much longer (runaway recursion,
-/// cross joins).
-pub const DEFAULT_TIMEOUT: Duration = Duration::from_secs(10);
-
-/// Default largest value (string or blob) a query may build: far above any real cell of a
-/// line list (free-text notes are kilobytes), far below what hurts the server. SQLite's own
-/// default is 1,000,000,000 bytes, so `zeroblob(1e9)` would take a gigabyte.
-pub const DEFAULT_MAX_VALUE_BYTES: usize = 16 * 1024 * 1024;
-
-/// Default largest answer, counted as rows are collected (see `cell_bytes`): a 10,000-row
-/// listing of the line list is a few megabytes, and the JSON answer is about this size, so a
-/// few of them at once stay well within the server's memory.
-pub const DEFAULT_MAX_ANSWER_BYTES: usize = 32 * 1024 * 1024;
-
-/// Default cap on the memory SQLite allocates in the whole process (every connection: the
-/// ingest writer's 64 MiB cache and its statements, the pooled readers, analysts' queries).
-/// Ordinary work stays far below it (measured: 89 MiB at most while ingesting a
-/// 1,000,000-row extract twice, the second time held); it exists for statements that hold many values at the
-/// value limit at once (each distinct constant expression keeps its own copy), which the
-/// per-connection limits cannot see, so that such a query fails instead of the machine
-/// running out of memory.
-pub const DEFAULT_SQLITE_HEAP_BYTES: usize = 512 * 1024 * 1024;
-
-/// The largest value limit accepted: SQLite's compile-time maximum (`SQLITE_MAX_LENGTH`).
-pub const MAX_VALUE_BYTES_CEILING: usize = 1_000_000_000;
 
 /// The analysts' connection's page cache, in KiB (negative `cache_size`: kibibytes). It also
 /// bounds the sorter's memory before it spills to a temporary file; 2 MiB is SQLite's own
@@ -90,31 +63,6 @@ const SCHEMA_PRAGMAS: &[&str] = &[
 /// (rusqlite's bundled SQLite leaves extension loading off, and this is a second lock), and
 /// `fts3_tokenizer` can hand SQLite a function pointer.
 const REFUSED_FUNCTIONS: &[&str] = &["load_extension", "fts3_tokenizer"];
-
-/// The limits of one query.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub struct SqlLimits {
-    pub max_rows: usize,
-    pub timeout: Duration,
-    /// The longest string or blob the query may build (`SQLITE_LIMIT_LENGTH`).
-    pub max_value_bytes: usize,
-    /// The largest answer (see `cell_bytes`).
-    pub max_answer_bytes: usize,
-    /// The cap on SQLite's memory in the whole process (see `limit_sqlite_heap`); 0: none.
-    pub sqlite_heap_bytes: usize,
-}
-
-impl Default for SqlLimits {
-    fn default() -> SqlLimits {
-        SqlLimits {
-            max_rows: DEFAULT_MAX_ROWS,
-            timeout: DEFAULT_TIMEOUT,
-            max_value_bytes: DEFAULT_MAX_VALUE_BYTES,
-            max_answer_bytes: DEFAULT_MAX_ANSWER_BYTES,
-            sqlite_heap_bytes: DEFAULT_SQLITE_HEAP_BYTES,
-        }
-    }
-}
 
 /// Runs one statement that only reads on a fresh read-only connection to the store at
 /// `path`, within `limits`.
@@ -386,6 +334,8 @@ fn action_name(action: &AuthAction<'_>) -> &'static str {
 
 #[cfg(test)]
 mod tests {
+    use std::time::Duration;
+
     use super::*;
 
     fn store() -> (tempfile::TempDir, std::path::PathBuf) {

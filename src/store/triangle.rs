@@ -15,15 +15,8 @@ use super::{Reader, Store, StoreError};
 use crate::analysis::backtest::BacktestCell;
 use crate::analysis::delay::DelayFit;
 use crate::analysis::nowcast::NowcastRow;
+pub use crate::config::TriangleSpec;
 use crate::model::Field;
-
-/// Which triangles to maintain: reference fields, and strata besides the whole source.
-#[derive(Debug, Clone, PartialEq)]
-pub struct TriangleSpec {
-    pub ref_fields: Vec<Field>,
-    pub strata: Vec<Field>,
-    pub age_edges: Vec<u32>,
-}
 
 /// A stored nowcast's key: (ref_field, stratum_kind, stratum, method).
 pub type NowcastKey = (String, String, String, String);
@@ -696,7 +689,7 @@ mod tests {
         let spec = TriangleSpec {
             ref_fields: vec![Field::OnsetDate, Field::ReportDate],
             strata: vec![Field::Jurisdiction, Field::Age, Field::Sex],
-            age_edges: crate::store::AGE_BAND_EDGES.to_vec(),
+            age_edges: crate::config::AGE_BAND_EDGES.to_vec(),
         };
         let mut expected = Vec::new();
         let mut got = Vec::new();
