@@ -98,7 +98,12 @@ fn main() {
             ingest_day(&mut store, &config, dir.path(), d);
         }
     }
-    let token = access::token_create(&config, "bench", "read").unwrap().lines().next().unwrap().to_string();
+    let token = access::token_create(&config, "bench", tidemark::model::TokenScope::Read)
+        .unwrap()
+        .lines()
+        .next()
+        .unwrap()
+        .to_string();
     let config = Arc::new(config);
     let runtime = tokio::runtime::Runtime::new().unwrap();
     let (seen, mut latencies, errors, took) = runtime.block_on(async {

@@ -1,5 +1,5 @@
 -- tidemark store, version 5: analysts' access. API tokens (only their SHA-256 is kept) and
--- stable views over the tables, documented in the README ("Store tables and views"), so
+-- stable views over the tables, documented in docs/store.md, so
 -- that scripts in R, Python or SQL do not depend on how the tables are laid out.
 
 CREATE TABLE api_token (

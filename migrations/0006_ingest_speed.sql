@@ -3,7 +3,7 @@
 -- 1. No index on case_attr(kind, value). Nothing in tidemark reads the attributes by value,
 --    and keeping the index cost every ingest a second B-tree insert per symptom and condition
 --    (2.5 million of them for a 1,000,000-record extract: about a fifth of the store's bytes
---    and of a first ingest's time; README "Ingest benchmark"). Analysts' queries by value
+--    and of a first ingest's time; docs/performance.md). Analysts' queries by value
 --    scan case_attr instead (WITHOUT ROWID, keyed by version), a fraction of a second per
 --    million records; an operator who needs faster ones may create an index of their own.
 DROP INDEX IF EXISTS case_attr_value;

@@ -8,15 +8,17 @@ use std::process::ExitCode;
 use anyhow::Result;
 use clap::{Args, Parser, Subcommand};
 
+use tidemark::analysis::delay::FamilyChoice;
 use tidemark::app::access;
 use tidemark::app::commands::{self, CurveArgs, UsageError};
 use tidemark::app::demo::{self, DemoOptions};
 use tidemark::config::{Config, ConfigError};
 use tidemark::demo::DEFAULT_DAYS;
+use tidemark::model::{MethodChoice, TokenScope};
 use tidemark::table::OutputFormat;
 
 /// mimalloc instead of the system allocator: an ingest allocates on the parsing thread and
-/// frees on the writer's, where glibc's arenas contend (measured in the README's ingest
+/// frees on the writer's, where glibc's arenas contend (measured in the ingest
 /// benchmark section).
 #[global_allocator]
 static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
@@ -113,8 +115,8 @@ enum Command {
         #[arg(long, value_name = "TIME")]
         as_of: Option<String>,
         /// hazard, smooth, or auto (the better one in the source's latest backtest).
-        #[arg(long, default_value = "auto")]
-        method: String,
+        #[arg(long, value_enum, default_value_t = MethodChoice::Auto)]
+        method: MethodChoice,
         /// jurisdiction, age or sex (one nowcast per stratum).
         #[arg(long, value_name = "FIELD")]
         stratify: Option<String>,
@@ -150,8 +152,8 @@ enum Command {
         #[arg(long, value_name = "FIELD")]
         to: String,
         /// auto (lowest AIC), gamma, lognormal or weibull.
-        #[arg(long, default_value = "auto")]
-        family: String,
+        #[arg(long, value_enum, default_value_t = FamilyChoice::Auto)]
+        family: FamilyChoice,
         #[arg(long, value_name = "TIME")]
         as_of: Option<String>,
         /// One fit per stratum: jurisdiction, age or sex.
@@ -262,8 +264,8 @@ enum TokenAction {
     Create {
         name: String,
         /// read: the listings; sql: the listings and POST /api/v1/query.
-        #[arg(long, default_value = "read")]
-        scope: String,
+        #[arg(long, value_enum, default_value_t = TokenScope::Read)]
+        scope: TokenScope,
     },
     /// List tokens (names, scopes, hints; never the tokens).
     List {
@@ -420,7 +422,7 @@ fn run(cli: Cli) -> Result<u8> {
                 source: &source,
                 by: &by,
                 as_of: as_of.as_deref(),
-                method: &method,
+                method,
                 stratify: stratify.as_deref(),
                 format: listing.output(),
             };
@@ -442,7 +444,7 @@ fn run(cli: Cli) -> Result<u8> {
                 source: &source,
                 from: &from,
                 to: &to,
-                family: &family,
+                family,
                 as_of: as_of.as_deref(),
                 stratify: stratify.as_deref(),
                 by_week,
@@ -459,7 +461,7 @@ fn run(cli: Cli) -> Result<u8> {
         Command::Token { action } => {
             let config = load(flag)?;
             match action {
-                TokenAction::Create { name, scope } => access::token_create(&config, &name, &scope)?,
+                TokenAction::Create { name, scope } => access::token_create(&config, &name, scope)?,
                 TokenAction::List { listing } => access::token_list(&config, listing.output())?,
                 TokenAction::Revoke { name } => access::token_revoke(&config, &name)?,
             }

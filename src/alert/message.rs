@@ -136,7 +136,7 @@ mod tests {
             rule: "missingness_jump".into(),
             source: "county-reports".into(),
             subject: "onset_date".into(),
-            severity: "warning".into(),
+            severity: crate::model::Severity::Warning,
             summary: "onset_date missing in 31% of new records, baseline 4%".into(),
             figures: r#"{"share":0.31,"baseline":0.04,"records":412}"#.into(),
             snapshot_id: Some(40),

@@ -13,8 +13,6 @@ pub mod outbox;
 pub mod rules;
 pub mod webhook;
 
-use std::fmt;
-
 /// Why one delivery attempt did not succeed.
 #[derive(Debug, thiserror::Error)]
 pub enum DeliveryError {
@@ -26,108 +24,7 @@ pub enum DeliveryError {
     Failed(String),
 }
 
-/// How urgently a signal needs a person. The mapping per rule is documented on each rule in
-/// [`rules`]; in short: `Critical` means the feed or the day's figures are likely wrong or
-/// missing now (held snapshot, no data for twice the expected interval, polls failing for
-/// twice the limit, a field gone almost entirely, new records at zero, a count statistic at
-/// twice its threshold); `Warning` is every other tripped rule; `Info` is for messages that
-/// need no action (for example a delivery test).
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash)]
-pub enum Severity {
-    Info,
-    Warning,
-    Critical,
-}
-
-impl Severity {
-    /// Stable lowercase name, for config routing and storage.
-    pub fn as_str(self) -> &'static str {
-        match self {
-            Severity::Info => "info",
-            Severity::Warning => "warning",
-            Severity::Critical => "critical",
-        }
-    }
-
-    /// The severity named by [`Severity::as_str`].
-    pub fn parse(name: &str) -> Option<Severity> {
-        [Severity::Info, Severity::Warning, Severity::Critical].into_iter().find(|s| s.as_str() == name)
-    }
-}
-
-impl fmt::Display for Severity {
-    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        f.write_str(self.as_str())
-    }
-}
-
-/// The rules a signal can come from.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash)]
-pub enum Rule {
-    /// A field's missing share jumped in the records new or changed in the latest snapshot.
-    MissingnessJump,
-    /// The daily median reporting lag rose (EWMA, confirmed by Mann-Whitney).
-    LagJump,
-    /// The latest snapshot was held (truncated-feed guard).
-    HeldSnapshot,
-    /// Far fewer new records than usual in the latest snapshot.
-    VolumeDrop,
-    /// No applied snapshot within the source's expected interval.
-    StaleSource,
-    /// The source failed several polls in a row.
-    FailingPolls,
-    /// EARS C1 on daily counts by report date.
-    EarsC1,
-    /// EARS C2 on daily counts by report date.
-    EarsC2,
-    /// EARS C3 on daily counts by report date.
-    EarsC3,
-    /// Upper Poisson or negative-binomial CUSUM on daily counts by report date.
-    CountCusum,
-}
-
-impl Rule {
-    /// Every rule, in a fixed order.
-    pub const ALL: [Rule; 10] = [
-        Rule::MissingnessJump,
-        Rule::LagJump,
-        Rule::HeldSnapshot,
-        Rule::VolumeDrop,
-        Rule::StaleSource,
-        Rule::FailingPolls,
-        Rule::EarsC1,
-        Rule::EarsC2,
-        Rule::EarsC3,
-        Rule::CountCusum,
-    ];
-
-    /// Stable snake_case name, used in fingerprints, storage and messages.
-    pub fn as_str(self) -> &'static str {
-        match self {
-            Rule::MissingnessJump => "missingness_jump",
-            Rule::LagJump => "lag_jump",
-            Rule::HeldSnapshot => "held_snapshot",
-            Rule::VolumeDrop => "volume_drop",
-            Rule::StaleSource => "stale_source",
-            Rule::FailingPolls => "failing_polls",
-            Rule::EarsC1 => "ears_c1",
-            Rule::EarsC2 => "ears_c2",
-            Rule::EarsC3 => "ears_c3",
-            Rule::CountCusum => "count_cusum",
-        }
-    }
-
-    /// The rule named by [`Rule::as_str`].
-    pub fn parse(name: &str) -> Option<Rule> {
-        Rule::ALL.into_iter().find(|r| r.as_str() == name)
-    }
-}
-
-impl fmt::Display for Rule {
-    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        f.write_str(self.as_str())
-    }
-}
+pub use crate::model::{Rule, Severity};
 
 /// A named number: an aggregate such as a share, a median lag or a baseline mean.
 #[derive(Debug, Clone, PartialEq)]
@@ -183,7 +80,7 @@ impl Signal {
 /// different triples never collide.
 pub fn fingerprint(rule: Rule, source: &str, subject: &str) -> String {
     let escape = |text: &str| text.replace('\\', "\\\\").replace('|', "\\|");
-    format!("{}|{}|{}", rule.as_str(), escape(source), escape(subject))
+    format!("{}|{}|{}", rule.name(), escape(source), escape(subject))
 }
 
 /// What one rule concluded for one subject.
@@ -220,7 +117,7 @@ mod tests {
     #[test]
     fn names_round_trip() {
         for rule in Rule::ALL {
-            assert_eq!(Rule::parse(rule.as_str()), Some(rule));
+            assert_eq!(Rule::parse(rule.name()), Some(rule));
         }
         for severity in [Severity::Info, Severity::Warning, Severity::Critical] {
             assert_eq!(Severity::parse(&severity.to_string()), Some(severity));

@@ -75,7 +75,7 @@ pub fn c2(counts: &[f64], t: usize, min_sd: f64) -> Option<Standardised> {
 /// C3 of day `t`: the sum of `max(0, C2_i - 1)` over `i = t-2, t-1, t`. `None` unless C2 is
 /// defined on all three days (`t >= 11`).
 ///
-/// Reference check (REFERENCE-CHECKS.md, 1-based days): on day 12 the days entering C3 are
+/// Reference check (docs/validation.md, 1-based days): on day 12 the days entering C3 are
 /// days 10, 11 and 12 with C2 = -1.5407, 6.8274 and 3.4931; day 10 contributes 0, so
 /// C3 = 5.8274 + 2.4931 = 8.3205.
 pub fn c3(counts: &[f64], t: usize, min_sd: f64) -> Option<f64> {
@@ -176,19 +176,19 @@ mod tests {
     use super::*;
     use statrs::distribution::{Discrete, NegativeBinomial, Poisson};
 
-    /// REFERENCE-CHECKS.md "Aberration and change detection", days 1..14.
+    /// docs/validation.md "Aberration and change detection", days 1..14.
     const SERIES: [f64; 14] = [4., 6., 5., 7., 5., 6., 7., 5., 6., 4., 12., 9., 15., 8.];
 
     fn close(got: f64, want: f64, tolerance: f64) -> bool {
         (got - want).abs() < tolerance
     }
 
-    /// Day numbers in REFERENCE-CHECKS.md are 1-based; the series index is day - 1.
+    /// Day numbers in docs/validation.md are 1-based; the series index is day - 1.
     fn day(n: usize) -> usize {
         n - 1
     }
 
-    /// EARS values from REFERENCE-CHECKS.md (Hutwagner et al. 2005 definitions, sample sd),
+    /// EARS values from docs/validation.md (Hutwagner et al. 2005 definitions, sample sd),
     /// to the four decimals published there.
     #[test]
     fn ears_matches_the_reference_series() {
@@ -265,7 +265,7 @@ mod tests {
         assert!((rate - expected).abs() < 4.0 * se, "{rate} vs {expected}");
     }
 
-    /// REFERENCE-CHECKS.md: Lucas (1985) k for 4 -> 8 is 5.770780 (scipy).
+    /// docs/validation.md: Lucas (1985) k for 4 -> 8 is 5.770780 (scipy).
     #[test]
     fn poisson_reference_value_matches_lucas() {
         assert!(close(poisson_reference_value(4.0, 8.0), 5.770780, 1e-6));

@@ -158,7 +158,7 @@ mod tests {
         let latest = Triangle::from_fn(start, start + Days::new(5), 2, |t, d| finals[t.min(1)][d]);
         let day = start + Days::new(1);
         let nowcast = Nowcast {
-            method: "hazard",
+            method: crate::model::NowcastMethod::Hazard,
             rows: vec![row(start, 1, 8.0, (9.0, 11.0)), row(start + Days::new(1), 0, 5.0, (10.0, 12.0))],
             problems: vec![],
         };

@@ -247,7 +247,7 @@ mod tests {
         assert!((arl - want).abs() < 4.0 * se + rounding, "ARL {arl:.2} (se {se:.2}) vs {want}");
     }
 
-    /// Montgomery and Runger's table (REFERENCE-CHECKS.md): two-sided tabular CUSUM, k = 0.5,
+    /// Montgomery and Runger's table (docs/validation.md): two-sided tabular CUSUM, k = 0.5,
     /// in-control ARL 168 (h = 4) and 465 (h = 5). A run length is close to geometric, so its
     /// sd is about the ARL and the standard error of the mean of n runs is ARL / sqrt(n):
     /// 8,000 runs give about 1.2% (2 for h = 4, 5 for h = 5); the bound is 4 se plus the
@@ -270,7 +270,7 @@ mod tests {
     }
 
     /// EWMA lambda = 0.25, L = 3, asymptotic limits: one-sd shift ARL 11.154267 (published,
-    /// REFERENCE-CHECKS.md), in-control ARL 502.9 (Brook & Evans Markov chain with 201 states,
+    /// docs/validation.md), in-control ARL 502.9 (Brook & Evans Markov chain with 201 states,
     /// computed for this check; Lucas & Saccucci's table has 500 for L = 2.998, from memory).
     #[test]
     fn ewma_arl_matches_published_values() {
@@ -286,7 +286,7 @@ mod tests {
         assert!(mean_and_se(&exact).0 < mean_and_se(&shifted).0 - 0.2);
     }
 
-    /// REFERENCE-CHECKS.md: mu0 = 10, sigma = 1, lambda = 0.2, L = 3, exact limits; the first
+    /// docs/validation.md: mu0 = 10, sigma = 1, lambda = 0.2, L = 3, exact limits; the first
     /// signal is at t = 8.
     #[test]
     fn ewma_reference_series_signals_at_t8() {
@@ -308,7 +308,7 @@ mod tests {
         assert_eq!((steps[2].upper, steps[3].lower), (0.0, 1.5));
     }
 
-    /// Textbook p-chart example (REFERENCE-CHECKS.md): pbar = 0.16, n = 200 -> 0.0822..0.2378.
+    /// Textbook p-chart example (docs/validation.md): pbar = 0.16, n = 200 -> 0.0822..0.2378.
     #[test]
     fn p_chart_limits_match_the_textbook() {
         let (lower, upper) = p_chart_limits(0.16, 200.0, 3.0);
@@ -316,7 +316,7 @@ mod tests {
         assert_eq!(p_chart_limits(0.01, 10.0, 3.0).0, 0.0);
     }
 
-    /// REFERENCE-CHECKS.md: 30/200 vs 50/200 -> z = 2.5, two-sided p = 0.0124193 (scipy).
+    /// docs/validation.md: 30/200 vs 50/200 -> z = 2.5, two-sided p = 0.0124193 (scipy).
     #[test]
     fn two_proportion_z_matches_scipy() {
         let test = two_proportion_z(30.0, 200.0, 50.0, 200.0);

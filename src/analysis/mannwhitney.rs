@@ -184,7 +184,7 @@ mod tests {
     }
 
     /// scipy documentation example after Shier 2004 (published in the scipy docs; scipy 1.17.1),
-    /// via REFERENCE-CHECKS.md "Mann-Whitney U".
+    /// via docs/validation.md "Mann-Whitney U".
     #[test]
     fn shier_example_matches_scipy() {
         let auto = mann_whitney(&SHIER_X, &SHIER_Y);
@@ -199,7 +199,7 @@ mod tests {
         }
     }
 
-    /// scipy 1.17.1 values (REFERENCE-CHECKS.md "Mann-Whitney U", ties).
+    /// scipy 1.17.1 values (docs/validation.md "Mann-Whitney U", ties).
     #[test]
     fn ties_use_the_corrected_normal_approximation() {
         let auto = mann_whitney(&TIES_X, &TIES_Y);

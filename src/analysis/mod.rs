@@ -10,6 +10,7 @@ pub mod delay;
 pub mod detector_sim;
 pub mod mannwhitney;
 pub mod nowcast;
+mod numeric;
 pub mod quantile;
 pub mod score;
 pub mod simulate;

@@ -67,11 +67,11 @@ mod tests {
     fn interval_scores() {
         // (lower, upper, alpha, y, expected, source)
         let cases = [
-            // REFERENCE-CHECKS.md: Bracher et al. 2021 scoring example (scipy): IS_0.5 = 12.
+            // docs/validation.md: Bracher et al. 2021 scoring example (scipy): IS_0.5 = 12.
             (8.0, 12.0, 0.5, 14.0, 12.0),
-            // REFERENCE-CHECKS.md: Bracher et al. 2021 scoring example (scipy): IS_0.1 = 11.
+            // docs/validation.md: Bracher et al. 2021 scoring example (scipy): IS_0.1 = 11.
             (5.0, 16.0, 0.1, 14.0, 11.0),
-            // By hand from the REFERENCE-CHECKS.md formula: y inside, score = width 4.
+            // By hand from the docs/validation.md formula: y inside, score = width 4.
             (8.0, 12.0, 0.5, 10.0, 4.0),
             // By hand from the formula: y below, 4 + (2/0.5)(8 - 6) = 12.
             (8.0, 12.0, 0.5, 6.0, 12.0),
@@ -96,7 +96,7 @@ mod tests {
 
     #[test]
     fn weighted_interval_score_of_the_reference_example() {
-        // REFERENCE-CHECKS.md: Bracher et al. 2021 scoring example (scipy): WIS = 2.22.
+        // docs/validation.md: Bracher et al. 2021 scoring example (scipy): WIS = 2.22.
         // The exact formula gives (0.5*4 + 0.25*12 + 0.05*11) / 2.5 = 5.55 / 2.5 = 2.22
         // exactly (not 2.2222...), so the check is to 1e-12.
         let got = wis(10.0, &[(0.5, 8.0, 12.0), (0.1, 5.0, 16.0)], 14.0);
@@ -105,7 +105,7 @@ mod tests {
 
     #[test]
     fn weighted_interval_score_without_intervals_is_absolute_error() {
-        // By hand from the REFERENCE-CHECKS.md formula with K = 0: (0.5 |y - m|) / 0.5.
+        // By hand from the docs/validation.md formula with K = 0: (0.5 |y - m|) / 0.5.
         assert!((wis(10.0, &[], 14.0) - 4.0).abs() < EXACT);
     }
 
@@ -141,7 +141,7 @@ mod tests {
             upper95: 18.0,
             completeness: 0.7,
         };
-        // By hand from the REFERENCE-CHECKS.md formula: IS_0.05([4, 18]; 14) = 14, so
+        // By hand from the docs/validation.md formula: IS_0.05([4, 18]; 14) = 14, so
         // WIS = (2 + 3 + 0.55 + 0.025*14) / 3.5 = 5.9 / 3.5.
         let expected = 5.9 / 3.5;
         let got = wis_of_row(&row, 14.0);

@@ -140,7 +140,7 @@ mod tests {
     use super::*;
 
     fn toy() -> Triangle {
-        // The toy triangle of REFERENCE-CHECKS.md (T = 4, D = 2), as cumulative counts.
+        // The toy triangle of docs/validation.md (T = 4, D = 2), as cumulative counts.
         let n = [[10.0, 6.0, 4.0], [12.0, 7.0, 5.0], [15.0, 9.0, 6.0], [20.0, 12.0, 0.0], [25.0, 0.0, 0.0]];
         let start = NaiveDate::from_ymd_opt(2026, 3, 1).unwrap();
         Triangle::from_fn(start, start + Days::new(4), 2, |t, d| n[t][..=d].iter().sum())

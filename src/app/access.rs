@@ -12,17 +12,17 @@ use tokio_util::sync::CancellationToken;
 
 use super::commands::{self, CurveArgs, DelaysArgs, NowcastArgs};
 use super::errors::{NotFound, UsageError};
+use crate::analysis::delay::FamilyChoice;
 use crate::config::Config;
 use crate::metrics::Metrics;
+use crate::model::{MethodChoice, SnapshotStatus};
 use crate::serve::api::{ApiState, Endpoint, ListingError, Listings, Params};
 use crate::serve::{self, auth, ops};
 use crate::store::{self, Reader, TokenScope};
 use crate::table::{OutputFormat, Table};
 
 /// `tidemark token create NAME --scope read|sql`: prints the token once.
-pub fn token_create(config: &Config, name: &str, scope: &str) -> Result<String> {
-    let scope =
-        TokenScope::parse(scope).ok_or_else(|| UsageError(format!("--scope {scope}: choose read or sql")))?;
+pub fn token_create(config: &Config, name: &str, scope: TokenScope) -> Result<String> {
     if name.is_empty() || !name.chars().all(|c| c.is_ascii_alphanumeric() || "-_.".contains(c)) {
         return Err(
             UsageError(format!("{name:?}: a token name uses letters, digits, '-', '_' and '.'")).into()
@@ -139,7 +139,7 @@ impl CliListings {
                     source: p.required("source")?,
                     by: p.required("by")?,
                     as_of: p.get("as_of"),
-                    method: p.get("method").unwrap_or("auto"),
+                    method: p.vocabulary("method")?.unwrap_or(MethodChoice::Auto),
                     stratify: p.get("stratify"),
                     format,
                 };
@@ -150,7 +150,7 @@ impl CliListings {
                     source: p.required("source")?,
                     from: p.required("from")?,
                     to: p.required("to")?,
-                    family: p.get("family").unwrap_or("auto"),
+                    family: p.vocabulary("family")?.unwrap_or(FamilyChoice::Auto),
                     as_of: p.get("as_of"),
                     stratify: p.get("stratify"),
                     by_week: p.flag("by_week")?,
@@ -200,7 +200,7 @@ fn sources_table(config: &Config, reader: &Reader) -> Result<Table> {
     let snapshots = reader.snapshots(None)?;
     for source in &config.sources {
         let own: Vec<_> = snapshots.iter().filter(|s| s.source == source.name).collect();
-        let applied: Vec<_> = own.iter().filter(|s| s.status == "applied").collect();
+        let applied: Vec<_> = own.iter().filter(|s| s.status == SnapshotStatus::Applied).collect();
         let latest = applied.last();
         table.push(vec![
             source.name.clone().into(),

@@ -56,10 +56,10 @@ fn finding(signal: &Signal, snapshot_id: Option<i64>) -> Finding {
     }
     Finding {
         fingerprint: signal.fingerprint(),
-        rule: signal.rule.as_str().to_string(),
+        rule: signal.rule,
         source: signal.source.clone(),
         subject: signal.subject.clone(),
-        severity: signal.severity.as_str().to_string(),
+        severity: signal.severity,
         summary: signal.summary.clone(),
         figures: serde_json::Value::Object(figures).to_string(),
         snapshot_id,
@@ -96,7 +96,7 @@ pub fn apply_pass(
         resolve_after: config.alerting.resolve_after,
     };
     let base = dashboard_base(config);
-    let route = |severity: &str| channels_for(config, Severity::parse(severity).unwrap_or(Severity::Warning));
+    let route = |severity: Severity| channels_for(config, severity);
     let payload = |facts: &MessageFacts| message::payload(facts, &base);
     let delivery = Delivery { route: &route, payload: &payload };
     Ok(store.apply_findings(&pass.clear, &pass.findings, &life, &delivery)?)
@@ -111,8 +111,10 @@ pub fn snapshot_pass(config: &Config, source: &SourceConfig, outcome: &OwedAnaly
     let mut pass = Pass::default();
     let snapshot_id = outcome.snapshot_id;
     let volumes = reader.volumes(source_id, snapshot_id)?;
-    let applied: Vec<_> =
-        volumes.iter().filter(|v| v.status == "applied" && v.snapshot_id < snapshot_id).collect();
+    let applied: Vec<_> = volumes
+        .iter()
+        .filter(|v| v.status == SnapshotStatus::Applied && v.snapshot_id < snapshot_id)
+        .collect();
     if params.enabled("held_snapshot") {
         let input = HeldInput {
             source: source.name.clone(),
@@ -369,10 +371,10 @@ pub fn list(config: &Config, all: bool, format: OutputFormat) -> Result<String> 
     for a in reader.alerts(all)? {
         table.push(vec![
             a.alert_id.into(),
-            a.rule.into(),
+            a.rule.name().into(),
             a.source.into(),
             a.subject.into(),
-            a.severity.into(),
+            a.severity.name().into(),
             a.state.into(),
             a.opened_at.into(),
             a.last_seen_at.into(),

@@ -11,10 +11,10 @@ use crate::analysis::delay::{self, DelayFit, DelayObs, DelaySummary, FitOptions}
 use crate::analysis::nowcast::{Nowcast, NowcastRow, hazard, smooth};
 use crate::analysis::triangle::{self, Triangle};
 use crate::config::{AnalysisConfig, Config, DelayEnd, SourceConfig};
-use crate::model::Field;
+use crate::model::{Field, MethodChoice, NowcastMethod};
 use crate::store::{DelayRow, NowcastKey, Reader, Store};
 
-/// Horizons over which `auto` compares methods (the acceptance range).
+/// Horizons over which `auto` compares methods (the horizons the published figures use).
 pub const AUTO_HORIZONS: usize = 7;
 
 /// Which triangle: a reference field and a stratum (`("all", "")` for the whole source).
@@ -54,13 +54,13 @@ pub fn load_triangle(
 }
 
 /// Nowcasts a triangle with a named method; the seed makes draws reproducible.
-pub fn run_method(method: &str, tri: &Triangle, analysis: &AnalysisConfig, seed: u64) -> Nowcast {
+pub fn run_method(method: NowcastMethod, tri: &Triangle, analysis: &AnalysisConfig, seed: u64) -> Nowcast {
     match method {
-        "smooth" => {
+        NowcastMethod::Smooth => {
             let params = smooth::SmoothParams { draws: analysis.draws, ..smooth::SmoothParams::default() };
             smooth::nowcast(tri, &params, seed)
         }
-        _ => {
+        NowcastMethod::Hazard => {
             let params = hazard::HazardParams {
                 window: analysis.window,
                 draws: analysis.draws,
@@ -77,10 +77,10 @@ pub fn resolve_method(
     reader: &Reader,
     source_id: i64,
     field: Field,
-    requested: &str,
-) -> Result<(String, String)> {
-    if requested != "auto" {
-        return Ok((requested.to_string(), String::new()));
+    requested: MethodChoice,
+) -> Result<(NowcastMethod, String)> {
+    if let Some(method) = requested.method() {
+        return Ok((method, String::new()));
     }
     Ok(match reader.best_backtest_method(source_id, field.name(), NAIVE, AUTO_HORIZONS)? {
         Some((method, wis)) => {
@@ -90,15 +90,15 @@ pub fn resolve_method(
             (method, why)
         }
         None => (
-            "hazard".to_string(),
+            NowcastMethod::Hazard,
             "auto chose hazard: no backtest stored yet (run `tidemark backtest`)".to_string(),
         ),
     })
 }
 
 /// A seed derived from what is being computed, so a figure is reproduced exactly.
-pub fn seed_for(snapshot_id: i64, key: &TriangleKey, method: &str) -> u64 {
-    let text = format!("{snapshot_id}/{}/{}/{}/{method}", key.field.name(), key.kind, key.stratum);
+pub fn seed_for(snapshot_id: i64, key: &TriangleKey, label: &str) -> u64 {
+    let text = format!("{snapshot_id}/{}/{}/{}/{label}", key.field.name(), key.kind, key.stratum);
     text.bytes().fold(0xcbf2_9ce4_8422_2325u64, |h, b| (h ^ b as u64).wrapping_mul(0x0100_0000_01b3))
 }
 
@@ -120,16 +120,21 @@ pub fn nowcast_snapshot(
         for stratum_field in &analysis.strata {
             for stratum in reader.triangle_strata(source_id, field, stratum_field.name())? {
                 let key = TriangleKey { field, kind: stratum_field.name().to_string(), stratum };
-                keys.push((key, vec!["hazard".to_string()]));
+                keys.push((key, vec![NowcastMethod::Hazard]));
             }
         }
         for (key, methods) in keys {
             let tri = load_triangle(reader, source_id, snapshot_id, &key, analysis, 0)?;
             for method in methods {
-                let nowcast = run_method(&method, &tri, analysis, seed_for(snapshot_id, &key, &method));
+                let nowcast = run_method(method, &tri, analysis, seed_for(snapshot_id, &key, method.name()));
                 let recent: Vec<_> =
                     nowcast.rows.into_iter().filter(|r| r.horizon <= analysis.max_delay).collect();
-                let id = (field.name().to_string(), key.kind.clone(), key.stratum.clone(), method);
+                let id = (
+                    field.name().to_string(),
+                    key.kind.clone(),
+                    key.stratum.clone(),
+                    method.name().to_string(),
+                );
                 results.push((id, recent));
             }
         }
@@ -159,7 +164,7 @@ pub struct BacktestRequest {
     pub to: Option<NaiveDate>,
     pub lag: usize,
     pub max_horizon: usize,
-    pub methods: Vec<String>,
+    pub methods: Vec<NowcastMethod>,
 }
 
 /// Backtests the methods on the whole source's triangle as known at the latest snapshot,
@@ -189,8 +194,8 @@ pub fn backtest(
         let known = full.as_of(day);
         let start = known.rows().saturating_sub(analysis.window + analysis.max_delay);
         let known = trim_rows(&known, start);
-        for method in &request.methods {
-            let seed = seed_for(latest, &key, method)
+        for &method in &request.methods {
+            let seed = seed_for(latest, &key, method.name())
                 ^ day.to_string().len() as u64
                 ^ (day - from).num_days() as u64;
             nowcasts.push((day, run_method(method, &known, analysis, seed)));

@@ -12,8 +12,9 @@ use chrono::{DateTime, NaiveDate, Utc};
 
 use super::ingest::{self, IngestOutcome, end_of_day};
 use super::pipeline;
+use crate::analysis::delay::FamilyChoice;
 use crate::config::{self, Config, SourceConfig};
-use crate::model::{Field, SnapshotStatus};
+use crate::model::{Field, MethodChoice, SnapshotStatus};
 use crate::store::{Reader, Store};
 use crate::table::{Cell, OutputFormat, Table};
 use crate::text::escape_path;
@@ -188,7 +189,7 @@ pub fn snapshots_table(reader: &Reader, source_name: Option<&str>) -> Result<Tab
             s.source.into(),
             s.seq.into(),
             s.as_of.into(),
-            s.status.into(),
+            s.status.name().into(),
             s.rows_total.into(),
             s.rows_accepted.into(),
             s.rows_rejected.into(),
@@ -447,7 +448,7 @@ pub struct NowcastArgs<'a> {
     pub source: &'a str,
     pub by: &'a str,
     pub as_of: Option<&'a str>,
-    pub method: &'a str,
+    pub method: MethodChoice,
     pub stratify: Option<&'a str>,
     pub format: OutputFormat,
 }
@@ -475,9 +476,6 @@ pub fn nowcast_table(config: &Config, reader: &Reader, args: &NowcastArgs<'_>) -
     let field = parse_field_arg(args.by)?;
     if !config.analysis.reference_fields.contains(&field) {
         return Err(usage(format!("--by {field}: not in analysis.reference_fields, so no triangle is kept")));
-    }
-    if !["auto", "hazard", "smooth"].contains(&args.method) {
-        return Err(usage(format!("--method {}: choose auto, hazard or smooth", args.method)));
     }
     let as_of = args.as_of.map(parse_time_arg).transpose()?;
     let source_id =
@@ -515,11 +513,16 @@ pub fn nowcast_table(config: &Config, reader: &Reader, args: &NowcastArgs<'_>) -
         "snapshot_id",
     ]);
     for key in &strata {
-        let stored = reader.nowcast(snapshot_id, (field.name(), &key.kind, &key.stratum, &method))?;
+        let stored = reader.nowcast(snapshot_id, (field.name(), &key.kind, &key.stratum, method.name()))?;
         let rows = if stored.is_empty() {
             let tri = analyse::load_triangle(reader, source_id, snapshot_id, key, &config.analysis, 0)?;
-            analyse::run_method(&method, &tri, &config.analysis, analyse::seed_for(snapshot_id, key, &method))
-                .rows
+            analyse::run_method(
+                method,
+                &tri,
+                &config.analysis,
+                analyse::seed_for(snapshot_id, key, method.name()),
+            )
+            .rows
         } else {
             stored
         };
@@ -537,7 +540,7 @@ pub fn nowcast_table(config: &Config, reader: &Reader, args: &NowcastArgs<'_>) -
                 r.lower95.into(),
                 r.upper95.into(),
                 r.completeness.into(),
-                method.clone().into(),
+                method.name().into(),
                 snapshot_id.into(),
             ]);
         }
@@ -581,7 +584,7 @@ pub fn backtest(config: &Config, args: &BacktestArgs<'_>) -> Result<String> {
         to: day(args.to)?,
         lag: args.lag.unwrap_or(config.analysis.backtest_lag),
         max_horizon: 14,
-        methods: config::analysis::NOWCAST_METHODS.iter().map(|m| m.to_string()).collect(),
+        methods: config::analysis::NOWCAST_METHODS.to_vec(),
     };
     let mut store = Store::open(&config.store.path)?;
     let (snapshot_id, cells, from, to) = analyse::backtest(&mut store, config, source, &request)?;
@@ -653,7 +656,7 @@ pub struct DelaysArgs<'a> {
     pub source: &'a str,
     pub from: &'a str,
     pub to: &'a str,
-    pub family: &'a str,
+    pub family: FamilyChoice,
     pub as_of: Option<&'a str>,
     pub stratify: Option<&'a str>,
     pub by_week: bool,
@@ -685,13 +688,7 @@ pub fn delays_table(config: &Config, reader: &Reader, args: &DelaysArgs<'_>) -> 
     if !from.is_date() {
         return Err(usage(format!("--from {from}: a delay starts at a date field")));
     }
-    let family = match args.family {
-        "auto" => None,
-        name => Some(
-            crate::analysis::delay::Family::from_name(name)
-                .ok_or_else(|| usage(format!("--family {name}: auto, gamma, lognormal or weibull")))?,
-        ),
-    };
+    let family = args.family.family();
     let stratify = args.stratify.map(parse_field_arg).transpose()?;
     let compare_by = args.compare_by.map(parse_field_arg).transpose()?;
     let as_of = args.as_of.map(parse_time_arg).transpose()?;

@@ -23,7 +23,7 @@ use super::pipeline::Analysed;
 use crate::analysis::nowcast::NowcastRow;
 use crate::config::Config;
 use crate::demo::{self, COUNTY_SOURCE, LAB_SOURCE, Scenario};
-use crate::model::{Field, SnapshotStatus};
+use crate::model::{Field, MethodChoice, SnapshotStatus};
 use crate::serve::feed::{self, Feed};
 use crate::serve::{self};
 use crate::store::{Reader, Store};
@@ -96,7 +96,7 @@ fn matching_injection(
 #[derive(Debug, Clone)]
 pub struct SourceSummary {
     pub name: String,
-    pub statuses: BTreeMap<String, usize>,
+    pub statuses: BTreeMap<SnapshotStatus, usize>,
     pub versions: i64,
     pub current: i64,
     pub rejects: Vec<(String, i64)>,
@@ -327,7 +327,7 @@ fn nowcast_against_truth(
         to: None,
         lag: config.analysis.backtest_lag,
         max_horizon: 14,
-        methods: crate::config::analysis::NOWCAST_METHODS.iter().map(|m| m.to_string()).collect(),
+        methods: crate::config::analysis::NOWCAST_METHODS.to_vec(),
     };
     let mut store = Store::open(&config.store.path)?;
     let (_, cells, from, to) = analyse::backtest(&mut store, config, source, &request)?;
@@ -336,13 +336,14 @@ fn nowcast_against_truth(
         format!("  nowcasts made on each day {from}..{to}, scored {} days later:\n", request.lag);
     backtest.push_str(&commands::backtest_summary(&cells));
     let reader = Reader::open(&config.store.path)?;
-    let (method, _) = analyse::resolve_method(&reader, county_id, Field::OnsetDate, "auto")?;
+    let (method, _) = analyse::resolve_method(&reader, county_id, Field::OnsetDate, MethodChoice::Auto)?;
     let key = TriangleKey::all(Field::OnsetDate);
-    let mut rows = reader.nowcast(last, (Field::OnsetDate.name(), "all", "", &method))?;
+    let mut rows = reader.nowcast(last, (Field::OnsetDate.name(), "all", "", method.name()))?;
     if rows.is_empty() {
         let tri = analyse::load_triangle(&reader, county_id, last, &key, &config.analysis, 0)?;
         rows =
-            analyse::run_method(&method, &tri, &config.analysis, analyse::seed_for(last, &key, &method)).rows;
+            analyse::run_method(method, &tri, &config.analysis, analyse::seed_for(last, &key, method.name()))
+                .rows;
     }
     let eventual = demo::feeds::eventual_county_onsets(scenario);
     let truth = scenario.true_onsets();
@@ -361,7 +362,7 @@ fn nowcast_against_truth(
             (r, e, t)
         })
         .collect();
-    Ok((recent, method, backtest))
+    Ok((recent, method.to_string(), backtest))
 }
 
 impl DemoReport {

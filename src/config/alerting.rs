@@ -9,7 +9,7 @@ use serde::Deserialize;
 use super::parse_duration;
 use crate::model::Field;
 
-pub use crate::alert::Severity;
+pub use crate::model::Severity;
 
 /// Default re-send interval of an alert nobody has acknowledged: a working shift.
 pub const DEFAULT_RESEND_AFTER: Duration = Duration::from_secs(6 * 3600);
@@ -97,8 +97,8 @@ pub fn duration_or(text: Option<&str>, key: &str, default: Duration, problems: &
 pub fn severity_or(text: Option<&str>, key: &str, problems: &mut Vec<String>) -> Severity {
     match text {
         None => Severity::Info,
-        Some(text) => Severity::parse(text).unwrap_or_else(|| {
-            problems.push(format!("{key}: \"{text}\" is not one of info, warning, critical"));
+        Some(text) => text.parse().unwrap_or_else(|e| {
+            problems.push(format!("{key}: {e}"));
             Severity::Info
         }),
     }

@@ -2,7 +2,7 @@
 //! strata), the nowcast settings, and which delay distributions to fit after every applied
 //! snapshot. Every key has a documented default, so the table may be left out.
 
-use crate::model::Field;
+use crate::model::{Field, NowcastMethod};
 
 /// The end of a delay: another date field, or the day a record first appeared in the store
 /// (the true reporting delay, from version history).
@@ -37,7 +37,7 @@ impl DelayEnd {
 }
 
 /// Nowcast methods that can be configured.
-pub const NOWCAST_METHODS: [&str; 2] = ["hazard", "smooth"];
+pub const NOWCAST_METHODS: [NowcastMethod; 2] = NowcastMethod::ALL;
 
 #[derive(Debug, Clone, PartialEq)]
 pub struct AnalysisConfig {
@@ -49,7 +49,7 @@ pub struct AnalysisConfig {
     pub age_bands: Vec<u32>,
     /// Longest reporting delay modelled, in days; counts known at this delay are final.
     pub max_delay: usize,
-    pub nowcast_methods: Vec<String>,
+    pub nowcast_methods: Vec<NowcastMethod>,
     /// Reference dates used to estimate the delay distribution.
     pub window: usize,
     /// Predictive draws per nowcast.
@@ -69,7 +69,7 @@ impl Default for AnalysisConfig {
             strata: vec![Field::Jurisdiction, Field::Age, Field::Sex],
             age_bands: AGE_BAND_EDGES.to_vec(),
             max_delay: 28,
-            nowcast_methods: NOWCAST_METHODS.iter().map(|m| m.to_string()).collect(),
+            nowcast_methods: NOWCAST_METHODS.to_vec(),
             window: 42,
             draws: 1000,
             backtest_lag: 28,
@@ -128,10 +128,14 @@ pub fn build(raw: RawAnalysis, problems: &mut Vec<String>) -> AnalysisConfig {
     positive("backtest_lag", raw.backtest_lag, &mut config.backtest_lag);
     positive("bootstrap", raw.bootstrap, &mut config.bootstrap);
     if let Some(methods) = raw.nowcast_methods {
-        for method in methods.iter().filter(|m| !NOWCAST_METHODS.contains(&m.as_str())) {
-            push("nowcast_methods", format!("\"{method}\" is not one of hazard, smooth"));
+        let mut parsed = Vec::new();
+        for method in &methods {
+            match method.parse::<NowcastMethod>() {
+                Ok(method) => parsed.push(method),
+                Err(e) => push("nowcast_methods", e.to_string()),
+            }
         }
-        config.nowcast_methods = methods;
+        config.nowcast_methods = parsed;
     }
     if let Some(pairs) = raw.delays {
         config.delays = pairs.iter().filter_map(|p| delay_pair(p, &mut push)).collect();

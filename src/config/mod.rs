@@ -10,6 +10,7 @@ pub mod mapping;
 pub mod query;
 mod raw;
 pub mod rule_params;
+pub mod rules;
 mod source;
 
 use std::fmt::Write as _;
@@ -178,7 +179,7 @@ impl Config {
                 email.to.join(","),
                 env_state(email.username_env.as_deref()),
                 env_state(email.password_env.as_deref()),
-                email.min_severity.as_str(),
+                email.min_severity.name(),
                 email.timeout.as_millis(),
             );
         }
@@ -188,7 +189,7 @@ impl Config {
                 "webhook: {} secret={} min_severity={} timeout={}ms",
                 redact_url(&webhook.url),
                 env_state(webhook.secret_env.as_deref()),
-                webhook.min_severity.as_str(),
+                webhook.min_severity.name(),
                 webhook.timeout.as_millis()
             );
         }

@@ -5,7 +5,7 @@
 
 use std::collections::{BTreeMap, BTreeSet};
 
-use crate::alert::rules::{
+use crate::config::rules::{
     CountFamily, CountParams, LagParams, MissingnessParams, StalenessParams, VolumeParams,
 };
 

@@ -71,7 +71,7 @@ pub struct UrlSettings {
     pub retry_cap: Duration,
 }
 
-/// Defaults for polling (named so the README and tests can cite them).
+/// Defaults for polling (named so the docs and tests can cite them).
 pub mod defaults {
     use std::time::Duration;
     /// Long enough for a copy over a network share to show progress between looks.
@@ -197,14 +197,10 @@ pub fn build(raw: RawSource, label: &str, base: &Path, problems: &mut Vec<String
     let schedule = cron::Schedule::from_str(schedule_text)
         .map_err(|err| push("schedule", format!("invalid cron expression ({err})")))
         .ok();
-    let extract = match raw.extract.as_deref().unwrap_or("full") {
-        "full" => ExtractKind::Full,
-        "delta" => ExtractKind::Delta,
-        other => {
-            push("extract", format!("\"{other}\" is not one of full, delta"));
-            ExtractKind::Full
-        }
-    };
+    let extract = raw.extract.as_deref().unwrap_or("full").parse().unwrap_or_else(|e| {
+        push("extract", format!("{e}"));
+        ExtractKind::Full
+    });
     let format = parse_format(&raw, &mut push);
     let as_of = parse_as_of(raw.as_of.as_deref().unwrap_or("file-mtime"), &mut push);
     let expect_every = raw.expect_every.as_deref().and_then(|text| {
@@ -318,15 +314,10 @@ fn parse_format(raw: &RawSource, push: &mut impl FnMut(&str, String)) -> Format 
             .find(|(ext, _)| p.ends_with(ext))
             .map(|(_, name)| *name)
     });
-    match raw.format.as_deref().or(guessed).unwrap_or("csv") {
-        "csv" => Format::Csv,
-        "ndjson" => Format::Ndjson,
-        "json" => Format::Json,
-        other => {
-            push("format", format!("\"{other}\" is not one of csv, ndjson, json"));
-            Format::Csv
-        }
-    }
+    raw.format.as_deref().or(guessed).unwrap_or("csv").parse().unwrap_or_else(|e| {
+        push("format", format!("{e}"));
+        Format::Csv
+    })
 }
 
 fn parse_as_of(text: &str, push: &mut impl FnMut(&str, String)) -> AsOfRule {

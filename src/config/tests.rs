@@ -37,7 +37,10 @@ fn minimal_config_takes_defaults() {
 fn errors_name_the_key_path() {
     let cases: &[(&str, &str)] = &[
         ("schedule = \"every day\"", "source[0].schedule: invalid cron expression"),
-        ("extract = \"partial\"", "source[0].extract: \"partial\" is not one of full, delta"),
+        (
+            "extract = \"partial\"",
+            "source[0].extract: unknown extract kind \"partial\"; accepted: full, delta",
+        ),
         ("format = \"xml\"", "source[0].format:"),
         ("as_of = \"yesterday\"", "source[0].as_of:"),
         ("expect_every = \"a while\"", "source[0].expect_every:"),

@@ -83,6 +83,17 @@ impl Params {
         self.get(name).ok_or_else(|| ListingError::BadRequest(format!("missing query parameter {name}")))
     }
 
+    /// A parameter from one of the closed vocabularies (`model::vocabulary`): absent is
+    /// `None`; an unknown value is a 400 listing the accepted ones.
+    pub fn vocabulary<T>(&self, name: &str) -> Result<Option<T>, ListingError>
+    where
+        T: std::str::FromStr<Err = crate::model::UnknownName>,
+    {
+        self.get(name)
+            .map(|text| text.parse::<T>().map_err(|e| ListingError::BadRequest(format!("{name}: {e}"))))
+            .transpose()
+    }
+
     /// A yes/no parameter: absent is false.
     pub fn flag(&self, name: &str) -> Result<bool, ListingError> {
         match self.get(name) {

@@ -14,16 +14,16 @@ use chrono::{DateTime, Utc};
 use rusqlite::{OptionalExtension, Transaction, params};
 
 use super::{Reader, Store, StoreError, time_text};
+use crate::model::{Rule, Severity};
 
 /// What one rule found for one subject at one evaluation: aggregates only.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Finding {
     pub fingerprint: String,
-    pub rule: String,
+    pub rule: Rule,
     pub source: String,
     pub subject: String,
-    /// `info`, `warning` or `critical`.
-    pub severity: String,
+    pub severity: Severity,
     pub summary: String,
     /// JSON object of the figures that tripped the rule (and its baseline).
     pub figures: String,
@@ -46,10 +46,11 @@ pub struct MessageFacts {
     /// `opened`, `resent`, `resolved` or `test`.
     pub kind: String,
     pub alert_id: Option<i64>,
+    /// The rule's name (`test` for a delivery test).
     pub rule: String,
     pub source: String,
     pub subject: String,
-    pub severity: String,
+    pub severity: Severity,
     pub summary: String,
     pub figures: String,
     pub snapshot_id: Option<i64>,
@@ -61,7 +62,7 @@ pub struct MessageFacts {
 /// How an evaluation pass routes and words its messages.
 pub struct Delivery<'a> {
     /// Channels (`email`, `webhook`) that take an alert of this severity.
-    pub route: &'a dyn Fn(&str) -> Vec<&'static str>,
+    pub route: &'a dyn Fn(Severity) -> Vec<&'static str>,
     /// The JSON payload stored with a notifying event.
     pub payload: &'a dyn Fn(&MessageFacts) -> String,
 }
@@ -87,10 +88,10 @@ pub struct EvalOutcome {
 #[derive(Debug, Clone, PartialEq)]
 pub struct AlertRow {
     pub alert_id: i64,
-    pub rule: String,
+    pub rule: Rule,
     pub source: String,
     pub subject: String,
-    pub severity: String,
+    pub severity: Severity,
     pub state: String,
     pub summary: String,
     pub opened_at: String,
@@ -199,7 +200,7 @@ impl Store {
             rule: "test".into(),
             source: String::new(),
             subject: String::new(),
-            severity: "info".into(),
+            severity: Severity::Info,
             summary: "test message: delivery from tidemark works".into(),
             figures: "{}".into(),
             snapshot_id: None,
@@ -406,7 +407,7 @@ fn notify(
         "UPDATE alert_event SET payload = ?2 WHERE event_id = ?1",
         params![event_id, (delivery.payload)(&facts)],
     )?;
-    let channels = (delivery.route)(&facts.severity);
+    let channels = (delivery.route)(facts.severity);
     for channel in &channels {
         enqueue(tx, event_id, channel, &at)?;
     }

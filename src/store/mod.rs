@@ -17,6 +17,7 @@ mod sources;
 pub mod sql;
 mod tokens;
 mod triangle;
+mod vocabulary;
 mod writer;
 
 use std::fs;

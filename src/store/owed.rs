@@ -9,35 +9,7 @@ use rusqlite::{OptionalExtension, Transaction, params};
 use super::{Reader, Store, StoreError, time_text};
 use crate::model::SnapshotStatus;
 
-/// Where a snapshot's analysis stands.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum OwedState {
-    /// Owed, not tried yet (or interrupted by a crash or shutdown).
-    Pending,
-    /// Owed; the last try failed.
-    Failed,
-    /// Its results are stored.
-    Done,
-    /// Not analysed: a later snapshot of the source was analysed in its place.
-    Superseded,
-}
-
-impl OwedState {
-    pub fn name(self) -> &'static str {
-        match self {
-            OwedState::Pending => "pending",
-            OwedState::Failed => "failed",
-            OwedState::Done => "done",
-            OwedState::Superseded => "superseded",
-        }
-    }
-
-    fn parse(text: &str) -> Option<OwedState> {
-        [OwedState::Pending, OwedState::Failed, OwedState::Done, OwedState::Superseded]
-            .into_iter()
-            .find(|state| state.name() == text)
-    }
-}
+pub use crate::model::OwedState;
 
 /// One snapshot's entry, with the snapshot's counts the alert rules read.
 #[derive(Debug, Clone, PartialEq, Eq)]
@@ -59,19 +31,13 @@ const OWED_SELECT: &str = "SELECT o.snapshot_id, o.source_id, n.status, n.rows_a
      FROM analysis_owed o JOIN snapshot n ON n.snapshot_id = o.snapshot_id";
 
 fn owed_row(row: &rusqlite::Row<'_>) -> rusqlite::Result<OwedAnalysis> {
-    let unknown = |column: usize, text: String| {
-        let message = format!("unknown value {text:?} in the store");
-        rusqlite::Error::FromSqlConversionFailure(column, rusqlite::types::Type::Text, message.into())
-    };
-    let status: String = row.get(2)?;
-    let state: String = row.get(5)?;
     Ok(OwedAnalysis {
         snapshot_id: row.get(0)?,
         source_id: row.get(1)?,
-        status: SnapshotStatus::parse(&status).ok_or_else(|| unknown(2, status))?,
+        status: row.get(2)?,
         rows_accepted: row.get::<_, i64>(3)?.max(0) as u64,
         rows_new: row.get::<_, i64>(4)?.max(0) as u64,
-        state: OwedState::parse(&state).ok_or_else(|| unknown(5, state))?,
+        state: row.get(5)?,
         attempts: row.get(6)?,
         error: row.get(7)?,
         superseded_by: row.get(8)?,

@@ -13,7 +13,7 @@ use rusqlite::{Transaction, params};
 
 use super::{Reader, Store, StoreError};
 use crate::analysis::quantile::quantile_of_counts;
-use crate::model::Field;
+use crate::model::{Field, SnapshotStatus};
 
 /// The stratum a record without a jurisdiction is counted in.
 pub const NO_JURISDICTION: &str = "(missing)";
@@ -56,11 +56,11 @@ pub struct LagRow {
 }
 
 /// The volume of one snapshot, from the snapshot table.
-#[derive(Debug, Clone, PartialEq, Default)]
+#[derive(Debug, Clone, PartialEq)]
 pub struct VolumeRow {
     pub snapshot_id: i64,
     pub as_of: String,
-    pub status: String,
+    pub status: SnapshotStatus,
     pub rows_total: i64,
     pub rows_accepted: i64,
     pub rows_new: i64,

@@ -10,7 +10,7 @@ use rusqlite::types::ValueRef;
 use rusqlite::{Connection, OptionalExtension, Row, params};
 
 use super::{StoreError, open_reader, parse_time, time_text};
-use crate::model::{AgeRange, CaseRecord, Field};
+use crate::model::{AgeRange, CaseRecord, Field, SnapshotStatus};
 use crate::table::Cell;
 
 pub use crate::config::AGE_BAND_EDGES;
@@ -28,7 +28,7 @@ pub struct SnapshotRow {
     pub source: String,
     pub seq: i64,
     pub as_of: String,
-    pub status: String,
+    pub status: SnapshotStatus,
     pub rows_total: i64,
     pub rows_accepted: i64,
     pub rows_rejected: i64,

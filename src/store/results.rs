@@ -6,6 +6,7 @@ use chrono::{DateTime, Utc};
 use rusqlite::OptionalExtension;
 
 use super::{Reader, StoreError, time_text};
+use crate::model::NowcastMethod;
 use crate::table::Table;
 
 impl Reader {
@@ -171,7 +172,7 @@ impl Reader {
         ref_field: &str,
         exclude: &str,
         max_horizon: usize,
-    ) -> Result<Option<(String, f64)>, StoreError> {
+    ) -> Result<Option<(NowcastMethod, f64)>, StoreError> {
         Ok(self
             .conn
             .query_row(

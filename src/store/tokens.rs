@@ -8,34 +8,7 @@ use std::path::Path;
 
 use super::{Reader, StoreError, now_text, open_writer};
 
-/// What a token may do. `Sql` includes `Read`.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
-pub enum TokenScope {
-    Read,
-    Sql,
-}
-
-impl TokenScope {
-    pub fn name(self) -> &'static str {
-        match self {
-            TokenScope::Read => "read",
-            TokenScope::Sql => "sql",
-        }
-    }
-
-    pub fn parse(text: &str) -> Option<TokenScope> {
-        match text {
-            "read" => Some(TokenScope::Read),
-            "sql" => Some(TokenScope::Sql),
-            _ => None,
-        }
-    }
-
-    /// Whether a token with this scope may do what `needed` asks.
-    pub fn allows(self, needed: TokenScope) -> bool {
-        self >= needed
-    }
-}
+pub use crate::model::TokenScope;
 
 /// One token as listed (never the token itself).
 #[derive(Debug, Clone, PartialEq, Eq)]
@@ -95,11 +68,9 @@ impl Reader {
              WHERE NOT ?1 OR revoked_at IS NULL ORDER BY token_id",
         )?;
         let rows = stmt.query_map([active_only], |r| {
-            let scope: String = r.get(1)?;
             Ok(TokenRow {
                 name: r.get(0)?,
-                // The CHECK constraint allows only these two; anything else reads as the narrower.
-                scope: TokenScope::parse(&scope).unwrap_or(TokenScope::Read),
+                scope: r.get(1)?,
                 sha256: r.get(2)?,
                 hint: r.get(3)?,
                 created_at: r.get(4)?,

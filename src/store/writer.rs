@@ -762,7 +762,7 @@ fn last_applied(conn: &Connection, source_id: i64) -> Result<Option<LastApplied>
 }
 
 fn held_snapshot(tx: &Transaction<'_>, snapshot_id: i64) -> Result<(i64, ExtractKind), StoreError> {
-    let found: Option<(i64, String, String)> = tx
+    let found: Option<(i64, SnapshotStatus, ExtractKind)> = tx
         .query_row(
             "SELECT source_id, status, extract_kind FROM snapshot WHERE snapshot_id = ?1",
             [snapshot_id],
@@ -771,11 +771,9 @@ fn held_snapshot(tx: &Transaction<'_>, snapshot_id: i64) -> Result<(i64, Extract
         .optional()?;
     match found {
         None => Err(StoreError::Refused(format!("no snapshot {snapshot_id}"))),
-        Some((_, status, _)) if status != "held" => {
+        Some((_, status, _)) if status != SnapshotStatus::Held => {
             Err(StoreError::Refused(format!("snapshot {snapshot_id} is {status}, not held")))
         }
-        Some((source_id, _, kind)) => {
-            Ok((source_id, if kind == "delta" { ExtractKind::Delta } else { ExtractKind::Full }))
-        }
+        Some((source_id, _, kind)) => Ok((source_id, kind)),
     }
 }

@@ -49,7 +49,7 @@ pub fn store_with_days(days: i64, base: usize, step: usize) -> Env {
 
 /// Creates a token and returns it (the first line `token create` prints).
 pub fn token(config: &Config, name: &str, scope: &str) -> String {
-    let text = access::token_create(config, name, scope).unwrap();
+    let text = access::token_create(config, name, scope.parse().unwrap()).unwrap();
     text.lines().next().unwrap().to_string()
 }
 
@@ -203,7 +203,7 @@ async fn listings_agree_with_the_cli_in_json_and_csv() {
         source: "full",
         by: "onset",
         as_of: None,
-        method: "hazard",
+        method: tidemark::model::MethodChoice::Hazard,
         stratify: None,
         format: OutputFormat::Json,
     };

@@ -358,7 +358,8 @@ async fn api_call(router: &axum::Router, method: &str, uri: &str, token: &str, b
 async fn api_csv_answers_neutralise_formula_text_unless_raw_is_true() {
     let env = formula_env();
     let config = std::sync::Arc::new(env.config.clone());
-    let token = tidemark::app::access::token_create(&config, "etl", "sql").unwrap();
+    let token =
+        tidemark::app::access::token_create(&config, "etl", tidemark::model::TokenScope::Sql).unwrap();
     let token = token.lines().next().unwrap().to_string();
     let router = tidemark::app::access::app_router(&config, None);
     let sql = r#"{"sql": "SELECT '=1+1' AS f, -3 AS n"}"#;

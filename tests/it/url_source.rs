@@ -729,7 +729,7 @@ async fn daemon_good_server_then_304_then_restart() {
     };
     let snapshots = daemon.snapshots();
     assert_eq!(snapshots.len(), 1);
-    assert_eq!((snapshots[0].snapshot_id, snapshots[0].status.as_str()), (snapshot_id, "applied"));
+    assert_eq!((snapshots[0].snapshot_id, snapshots[0].status.name()), (snapshot_id, "applied"));
     assert_eq!((snapshots[0].rows_accepted, snapshots[0].rows_new), (2, 2));
     // The as-of time comes from Last-Modified.
     assert!(snapshots[0].as_of.starts_with("2026-03-03T06:00:00"), "{}", snapshots[0].as_of);

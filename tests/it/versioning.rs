@@ -93,7 +93,7 @@ fn the_same_bytes_twice_are_a_duplicate_and_write_no_versions() -> TestResult {
     let db = env.db();
     assert_eq!(count(&db, "SELECT count(*) FROM case_version"), versions);
     assert_eq!(count(&db, "SELECT count(*) FROM case_version WHERE valid_to IS NOT NULL"), 0);
-    assert_eq!(snapshot(&env, second.snapshot_id).status, "duplicate");
+    assert_eq!(snapshot(&env, second.snapshot_id).status.name(), "duplicate");
     // The duplicate is not the source's latest applied snapshot.
     let reader = Reader::open(&env.store_path())?;
     assert_eq!(reader.snapshot_as_of(source_id(&env, "full"), None)?, Some(first.snapshot_id));
@@ -369,7 +369,7 @@ fn a_full_extract_with_far_fewer_rows_is_held_and_applies_nothing() -> TestResul
     let note = held.note.clone().unwrap();
     assert!(note.contains("7 rows accepted against 10") && note.contains("drop of more than 20%"), "{note}");
     let row = snapshot(&env, held.snapshot_id);
-    assert_eq!((row.status.as_str(), row.rows_accepted, row.rows_removed), ("held", 7, 3));
+    assert_eq!((row.status.name(), row.rows_accepted, row.rows_removed), ("held", 7, 3));
     let db = env.db();
     assert_eq!(
         count(&db, &format!("SELECT count(*) FROM case_version WHERE valid_from = {}", held.snapshot_id)),
@@ -425,7 +425,7 @@ fn releasing_a_held_snapshot_applies_it_and_rejecting_discards_it() -> TestResul
     let text = retry_locked(|| commands::release(&env.config, held.snapshot_id))?;
     assert!(text.contains(&format!("snapshot {} of full: applied", held.snapshot_id)), "{text}");
     let row = snapshot(&env, held.snapshot_id);
-    assert_eq!(row.status, "applied");
+    assert_eq!(row.status.name(), "applied");
     assert_eq!((row.rows_accepted, row.rows_changed, row.rows_removed), (7, 1, 3));
     assert_eq!(row.note.as_deref(), Some("released by operator"));
     assert_eq!((row.rows_total, row.rows_rejected), (8, 1));
@@ -448,7 +448,7 @@ fn releasing_a_held_snapshot_applies_it_and_rejecting_discards_it() -> TestResul
     let text = retry_locked(|| commands::reject(&env.config, held2.snapshot_id, None))?;
     assert!(text.contains("rejected"), "{text}");
     let row = snapshot(&env, held2.snapshot_id);
-    assert_eq!(row.status, "rejected");
+    assert_eq!(row.status.name(), "rejected");
     assert!(row.note.as_deref().unwrap().contains("rejected by operator"), "{:?}", row.note);
     assert_eq!(count(&env.db(), "SELECT count(*) FROM case_version"), versions);
     assert_eq!(current_keys(&env, "full").len(), 7);
@@ -491,12 +491,12 @@ fn releasing_a_held_snapshot_after_a_newer_one_was_applied_is_refused() -> TestR
     let err = retry_locked(|| commands::release(&env.config, held.snapshot_id)).unwrap_err();
     let message = format!("{err:#}");
     assert!(message.contains(&format!("older than applied snapshot {}", newer.snapshot_id)), "{message}");
-    assert_eq!(snapshot(&env, held.snapshot_id).status, "held", "still waiting for a decision");
+    assert_eq!(snapshot(&env, held.snapshot_id).status.name(), "held", "still waiting for a decision");
     assert_eq!(count(&env.db(), "SELECT count(*) FROM case_version"), versions);
     assert_eq!(current_keys(&env, "full").len(), 10);
     // Rejecting it is still possible.
     retry_locked(|| commands::reject(&env.config, held.snapshot_id, Some("superseded")))?;
-    assert_eq!(snapshot(&env, held.snapshot_id).status, "rejected");
+    assert_eq!(snapshot(&env, held.snapshot_id).status.name(), "rejected");
     Ok(())
 }
 

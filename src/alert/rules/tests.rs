@@ -1,4 +1,4 @@
-//! Tests of the alert rules: reference values from REFERENCE-CHECKS.md where a rule rests on
+//! Tests of the alert rules: reference values from docs/validation.md where a rule rests on
 //! one (p-chart, EARS), hand-computed cases at each gate, and seeded simulations with known
 //! truth for the in-control false-alarm rate of the lag rule.
 
@@ -8,6 +8,12 @@ use rand::rngs::StdRng;
 use rand_distr::{Distribution, Poisson};
 
 use super::*;
+use crate::alert::{Outcome, Rule, Severity};
+use std::time::Duration;
+
+use chrono::Utc;
+
+use crate::analysis::aberration;
 
 fn close(got: f64, want: f64, tolerance: f64) -> bool {
     (got - want).abs() < tolerance
@@ -46,7 +52,7 @@ fn missingness_jump_needs_the_limit_and_the_effect() {
     assert_eq!(gone.signal().unwrap().severity, Severity::Critical);
 }
 
-/// Textbook p-chart (REFERENCE-CHECKS.md): pbar = 0.16, n = 200, upper limit 0.2378. With the
+/// Textbook p-chart (docs/validation.md): pbar = 0.16, n = 200, upper limit 0.2378. With the
 /// effect gate lowered to 5 points, 48/200 = 0.24 alarms and 47/200 = 0.235 does not.
 #[test]
 fn missingness_jump_uses_the_textbook_p_chart_limit() {
@@ -201,7 +207,7 @@ fn failing_polls_after_three_in_a_row() {
     assert_eq!(failing_polls(&staleness(Some(1), 6), &params).signal().unwrap().severity, Severity::Critical);
 }
 
-/// REFERENCE-CHECKS.md "Aberration and change detection" series, days 1..14.
+/// docs/validation.md "Aberration and change detection" series, days 1..14.
 const SERIES: [f64; 14] = [4., 6., 5., 7., 5., 6., 7., 5., 6., 4., 12., 9., 15., 8.];
 
 fn counts_through(day: usize) -> CountInput {

@@ -14,30 +14,44 @@
 use statrs::function::erf::erfc;
 use statrs::function::gamma::{gamma_lr, gamma_ur, ln_gamma};
 
-/// A parametric family for a continuous delay in days.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
-pub enum Family {
-    /// Parameters `[shape k, rate b]`; mean `k / b`.
-    Gamma,
-    /// Parameters `[meanlog mu, sdlog s]`; median `exp(mu)`.
-    Lognormal,
-    /// Parameters `[shape k, scale lambda]`; `F(x) = 1 - exp(-(x / lambda)^k)`.
-    Weibull,
+use crate::model::vocabulary::vocabulary;
+
+vocabulary! {
+    /// A parametric family for a continuous delay in days; the name is used in configs, the
+    /// CLI and stored results.
+    pub enum Family("delay family") {
+        /// Parameters `[shape k, rate b]`; mean `k / b`.
+        Gamma => "gamma",
+        /// Parameters `[meanlog mu, sdlog s]`; median `exp(mu)`.
+        Lognormal => "lognormal",
+        /// Parameters `[shape k, scale lambda]`; `F(x) = 1 - exp(-(x / lambda)^k)`.
+        Weibull => "weibull",
+    }
+}
+
+vocabulary! {
+    /// The delay family a request asks for: one family, or `Auto` (the lowest AIC).
+    pub enum FamilyChoice("delay family") {
+        Auto => "auto",
+        Gamma => "gamma",
+        Lognormal => "lognormal",
+        Weibull => "weibull",
+    }
+}
+
+impl FamilyChoice {
+    /// The family asked for by name, `None` for `Auto`.
+    pub fn family(self) -> Option<Family> {
+        match self {
+            FamilyChoice::Auto => None,
+            FamilyChoice::Gamma => Some(Family::Gamma),
+            FamilyChoice::Lognormal => Some(Family::Lognormal),
+            FamilyChoice::Weibull => Some(Family::Weibull),
+        }
+    }
 }
 
 impl Family {
-    /// Every family, in a fixed order.
-    pub const ALL: [Family; 3] = [Family::Gamma, Family::Lognormal, Family::Weibull];
-
-    /// Lower-case name used in configs, the CLI and stored results.
-    pub fn name(self) -> &'static str {
-        match self {
-            Family::Gamma => "gamma",
-            Family::Lognormal => "lognormal",
-            Family::Weibull => "weibull",
-        }
-    }
-
     /// The family called `name` (as returned by [`Family::name`], case-insensitive).
     pub fn from_name(name: &str) -> Option<Family> {
         Family::ALL.into_iter().find(|family| family.name().eq_ignore_ascii_case(name))
@@ -199,7 +213,7 @@ impl Dist {
         }
     }
 
-    /// `G(x)` for `x > 0` in closed form (REFERENCE-CHECKS.md "Delay distributions"; the Weibull
+    /// `G(x)` for `x > 0` in closed form (docs/validation.md "Delay distributions"; the Weibull
     /// form `x F(x) - E[X; X <= x]` equals the reference `x - (lam/k) Gamma(1/k) P(1/k, t)`
     /// without its cancellation for small `x`).
     fn lower(&self, x: f64) -> f64 {
@@ -295,7 +309,7 @@ mod tests {
         Dist::new(family, params).unwrap()
     }
 
-    /// scipy 1.17.1 values for the formulas as written (REFERENCE-CHECKS.md "Delay distributions").
+    /// scipy 1.17.1 values for the formulas as written (docs/validation.md "Delay distributions").
     #[test]
     fn daily_pmf_matches_reference_values() {
         let cases: &[(Family, [f64; 2], i64, f64)] = &[
@@ -317,7 +331,7 @@ mod tests {
         }
     }
 
-    /// scipy (REFERENCE-CHECKS.md): Gamma(2, rate 1) sum_{m<=5} = 0.9726643884 and
+    /// scipy (docs/validation.md): Gamma(2, rate 1) sum_{m<=5} = 0.9726643884 and
     /// P(N=3 | N<=5) = 0.15767441; the telescoped mass must equal the explicit sum.
     #[test]
     fn truncation_mass_is_the_telescoped_sum() {
@@ -336,7 +350,7 @@ mod tests {
     }
 
     /// The closed forms of G must agree with a direct numerical integral of F (midpoint rule),
-    /// and the Weibull form used here with the REFERENCE-CHECKS.md form.
+    /// and the Weibull form used here with the docs/validation.md form.
     #[test]
     fn integrated_cdf_matches_numerical_integral() {
         let cases: &[(Family, [f64; 2])] = &[
@@ -395,7 +409,7 @@ mod tests {
                 assert!((d.cdf(q) - p).abs() < 1e-9, "{family:?} p={p}");
             }
         }
-        // Lauer et al. 2020 (memory, REFERENCE-CHECKS.md): meanlog 1.621, sdlog 0.418 gives a
+        // Lauer et al. 2020 (memory, docs/validation.md): meanlog 1.621, sdlog 0.418 gives a
         // median of 5.06 d and a 97.5th percentile of 11.48 d.
         let lauer = dist(Family::Lognormal, [1.621, 0.418]);
         assert!((lauer.median() - 5.06).abs() < 0.01);

@@ -28,7 +28,7 @@ use statrs::function::gamma::ln_gamma;
 use super::DelayObs;
 use super::dist::{Dist, Family, Point};
 use super::likelihood::{Counts, Design};
-use super::optim::{Bounds, Settings, minimize_1d, nelder_mead};
+use crate::analysis::numeric::simplex::{Bounds, Settings, minimize_1d, nelder_mead};
 
 /// How a fit is made.
 #[derive(Debug, Clone, PartialEq)]
@@ -375,7 +375,7 @@ struct Problem<'a> {
 }
 
 /// The best point found and the negative log-likelihood there.
-type Estimate = super::optim::Minimum;
+type Estimate = crate::analysis::numeric::simplex::Minimum;
 
 /// Bootstrap estimates of (mean, median, 95th percentile).
 struct Boot {

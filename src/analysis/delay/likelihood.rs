@@ -177,14 +177,14 @@ mod tests {
     use super::*;
 
     fn toy() -> Vec<DelayObs> {
-        // REFERENCE-CHECKS.md toy data: d = [2,3,3,5,7], tau = [10,6,5,8,7].
+        // docs/validation.md toy data: d = [2,3,3,5,7], tau = [10,6,5,8,7].
         [(2, 10), (3, 6), (3, 5), (5, 8), (7, 7)]
             .into_iter()
             .map(|(delay, tau)| DelayObs { delay, horizon: Some(tau) })
             .collect()
     }
 
-    /// scipy 1.17.1 values (REFERENCE-CHECKS.md "Delay distributions"), lognormal(1.5, 0.5).
+    /// scipy 1.17.1 values (docs/validation.md "Delay distributions"), lognormal(1.5, 0.5).
     #[test]
     fn toy_log_likelihoods_match_reference() {
         let cases = [

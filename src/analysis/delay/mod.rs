@@ -11,11 +11,10 @@
 mod dist;
 mod fit;
 mod likelihood;
-mod optim;
 #[cfg(test)]
 mod simulate;
 
-pub use dist::{Dist, Family};
+pub use dist::{Dist, Family, FamilyChoice};
 pub use fit::{DelayFit, FitOptions, Interval, fit, fit_all, fit_all_counted, fit_counted};
 pub use likelihood::log_likelihood;
 

@@ -19,9 +19,10 @@ use rand_distr::{Beta, Distribution, Gamma, Poisson};
 
 use super::{Nowcast, NowcastRow, row_from_draws};
 use crate::analysis::triangle::Triangle;
+use crate::model::NowcastMethod;
 
 /// The method name recorded in every `Nowcast` this module makes.
-pub const METHOD: &str = "hazard";
+pub const METHOD: NowcastMethod = NowcastMethod::Hazard;
 
 /// Parameters of the hazard nowcast.
 #[derive(Debug, Clone, PartialEq)]
@@ -36,7 +37,7 @@ pub struct HazardParams {
     pub prior_a: f64,
     pub prior_b: f64,
     /// Gamma(shape gamma_alpha, rate gamma_beta) prior on each date's expected eventual
-    /// count. Default 1 and 0.001 (REFERENCE-CHECKS.md): nearly flat over counts.
+    /// count. Default 1 and 0.001 (docs/validation.md): nearly flat over counts.
     pub gamma_alpha: f64,
     pub gamma_beta: f64,
 }
@@ -383,13 +384,13 @@ mod tests {
         Triangle::from_fn(start(), last, max_delay, |t, d| n[t][..=d].iter().sum())
     }
 
-    /// REFERENCE-CHECKS.md: Lawless 1994 toy triangle, T = 4, D = 2.
+    /// docs/validation.md: Lawless 1994 toy triangle, T = 4, D = 2.
     fn toy() -> Triangle {
         let n = [[10.0, 6.0, 4.0], [12.0, 7.0, 5.0], [15.0, 9.0, 6.0], [20.0, 12.0, 0.0], [25.0, 0.0, 0.0]];
         from_increments(&n.map(|row| row.to_vec()), 2)
     }
 
-    /// REFERENCE-CHECKS.md: Taylor & Ashe (1983) cumulative triangle (published in Mack 1993
+    /// docs/validation.md: Taylor & Ashe (1983) cumulative triangle (published in Mack 1993
     /// Table 1), origins as reference dates and development years as delays.
     fn taylor_ashe() -> Triangle {
         let rows: [&[f64]; 10] = [
@@ -420,7 +421,7 @@ mod tests {
         let est = estimate(&tri, 42);
         let f = &est.completeness;
         let points = point_estimates(&tri, 42);
-        // (what, got, want, tolerance): REFERENCE-CHECKS.md: Lawless 1994 toy triangle (scipy, exact fractions).
+        // (what, got, want, tolerance): docs/validation.md: Lawless 1994 toy triangle (scipy, exact fractions).
         let checks = [
             ("g_2", est.hazards[2], 15.0 / 74.0, 1e-12),
             ("g_1", est.hazards[1], 34.0 / 91.0, 1e-12),
@@ -440,7 +441,7 @@ mod tests {
 
     #[test]
     fn hazard_point_estimates_equal_chain_ladder() {
-        // REFERENCE-CHECKS.md: the hazard estimate equals the chain-ladder estimate
+        // docs/validation.md: the hazard estimate equals the chain-ladder estimate
         // (Lawless 1994; Hohle & an der Heiden 2014 section 3.1), on the toy and Taylor & Ashe.
         for (name, tri) in [("toy", toy()), ("Taylor & Ashe", taylor_ashe())] {
             let hazard = point_estimates(&tri, tri.rows());
@@ -456,7 +457,7 @@ mod tests {
 
     #[test]
     fn taylor_ashe_development_factors() {
-        // REFERENCE-CHECKS.md: Taylor & Ashe development factors (published, Mack 1993), 4 decimals.
+        // docs/validation.md: Taylor & Ashe development factors (published, Mack 1993), 4 decimals.
         let published = [3.4906, 1.7473, 1.4574, 1.1739, 1.1038, 1.0863, 1.0539, 1.0766, 1.0177];
         let factors = development_factors(&taylor_ashe());
         assert_eq!(factors.len(), published.len());
@@ -474,10 +475,10 @@ mod tests {
         let by_ladder = reserves(&chain_ladder(&tri));
         let by_hazard = reserves(&point_estimates(&tri, tri.rows()));
         for (name, reserve) in [("chain ladder", &by_ladder), ("hazard", &by_hazard)] {
-            // REFERENCE-CHECKS.md: total reserve 18,680,855.6 (scipy/numpy recomputation).
+            // docs/validation.md: total reserve 18,680,855.6 (scipy/numpy recomputation).
             let total: f64 = reserve.iter().sum();
             assert!(close(total, 18_680_855.6, 0.1), "{name}: total reserve {total}");
-            // REFERENCE-CHECKS.md: reserves by origin 2..10 in thousands (published, Mack 1993).
+            // docs/validation.md: reserves by origin 2..10 in thousands (published, Mack 1993).
             let published = [95.0, 470.0, 710.0, 985.0, 1419.0, 2178.0, 3920.0, 4279.0, 4626.0];
             for (origin, want) in (2..=10).zip(published) {
                 let got = reserve[origin - 1] / 1000.0;
@@ -491,7 +492,7 @@ mod tests {
 
     #[test]
     fn negative_binomial_predictive_of_the_toy() {
-        // REFERENCE-CHECKS.md: conjugate NB predictive (Hohle & an der Heiden 2014) for t = 4 of
+        // docs/validation.md: conjugate NB predictive (Hohle & an der Heiden 2014) for t = 4 of
         // the toy, alpha = 1, beta = 0.001, q = F(0) (scipy): mean 51.0098, median 51, 95% [38, 66].
         let params = HazardParams { gamma_alpha: 1.0, gamma_beta: 0.001, ..HazardParams::default() };
         let q = 3363.0 / 6734.0;
@@ -515,7 +516,7 @@ mod tests {
     fn nowcast_rows_of_the_toy() {
         let tri = toy();
         let now = nowcast(&tri, &HazardParams::default(), 7);
-        assert_eq!(now.method, "hazard");
+        assert_eq!(now.method, NowcastMethod::Hazard);
         assert_eq!(now.rows.len(), 5);
         assert!(now.problems.is_empty(), "{:?}", now.problems);
         for (t, row) in now.rows.iter().enumerate() {
@@ -538,7 +539,7 @@ mod tests {
             assert!(summaries.iter().all(|&value| value == row.observed), "{row:?}");
             assert_eq!(row.completeness, 1.0);
         }
-        // Incomplete rows: completeness is the point estimate F(T - t) (REFERENCE-CHECKS.md toy, scipy),
+        // Incomplete rows: completeness is the point estimate F(T - t) (docs/validation.md toy, scipy),
         // and the intervals are nested around the median, above the count so far.
         for (t, q) in [(3, 59.0 / 74.0), (4, 3363.0 / 6734.0)] {
             let row = &now.rows[t];
@@ -550,7 +551,7 @@ mod tests {
                 "{row:?}"
             );
         }
-        // The median is near the point estimate (REFERENCE-CHECKS.md toy N_4 = 50.06; NB median 51).
+        // The median is near the point estimate (docs/validation.md toy N_4 = 50.06; NB median 51).
         assert!(close(now.rows[4].median, 51.0, 3.0), "{:?}", now.rows[4]);
     }
 

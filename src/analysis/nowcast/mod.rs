@@ -7,6 +7,7 @@
 pub mod hazard;
 pub mod smooth;
 
+use crate::model::NowcastMethod;
 use chrono::NaiveDate;
 
 /// One reference date of a nowcast. Counts are of cases; intervals are central prediction
@@ -33,7 +34,7 @@ pub struct NowcastRow {
 /// A nowcast of every reference date of a triangle.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Nowcast {
-    pub method: &'static str,
+    pub method: NowcastMethod,
     pub rows: Vec<NowcastRow>,
     /// Things the analyst should know (e.g. too few data for the window); never fatal.
     pub problems: Vec<String>,

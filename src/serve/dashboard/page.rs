@@ -225,7 +225,7 @@ fn snapshots_html(rows: &[SnapshotRow], selected: Option<i64>) -> String {
             r.snapshot_id,
             r.seq,
             escape(&r.as_of),
-            escape(&r.status),
+            escape(r.status.name()),
             r.rows_total,
             r.rows_accepted,
             r.rows_rejected,

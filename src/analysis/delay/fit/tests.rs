@@ -26,7 +26,7 @@ struct GrowthCase {
 
 fn growth_cases() -> Vec<GrowthCase> {
     // Lauer et al. 2020 incubation, lognormal meanlog 1.621, sdlog 0.418 (parameters from
-    // memory per REFERENCE-CHECKS.md): true mean exp(1.621 + 0.418^2 / 2).
+    // memory per docs/validation.md): true mean exp(1.621 + 0.418^2 / 2).
     let lauer = LogNormal::new(1.621, 0.418).unwrap();
     // Verity et al. 2020 onset to death, gamma shape 4.938, rate 0.2774 (memory; published
     // mean 17.8 d). rand_distr's Gamma takes a scale.
@@ -48,7 +48,7 @@ fn growth_cases() -> Vec<GrowthCase> {
 }
 
 /// Acceptance: during growth at r = 0.1/day the naive mean is biased low (for the
-/// gamma, REFERENCE-CHECKS.md derives an observed mean of 13.08 d against 17.8 d), while the
+/// gamma, docs/validation.md derives an observed mean of 13.08 d against 17.8 d), while the
 /// truncation-corrected fit is within 10% of the truth.
 #[test]
 fn truncation_correction_recovers_the_mean_during_growth() {
@@ -76,7 +76,7 @@ fn truncation_correction_recovers_the_mean_during_growth() {
 
 /// Onset to death (Verity et al. 2020 gamma, memory) seen only ten days into an epidemic:
 /// almost no death delay near the mean of 17.8 d is observable yet, so the mean must not be
-/// reported as identified (Seaman et al. 2022, via REFERENCE-CHECKS.md).
+/// reported as identified (Seaman et al. 2022, via docs/validation.md).
 #[test]
 fn strong_truncation_is_not_identifiable() {
     let early = Growth { rate: 0.2, days: 10, primaries: 10_000 };

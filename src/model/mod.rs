@@ -9,6 +9,13 @@ use std::io::Write as _;
 use chrono::{DateTime, Datelike, NaiveDate, Utc};
 use sha2::{Digest, Sha256};
 
+pub mod vocabulary;
+
+pub use vocabulary::{
+    ExtractKind, Format, MethodChoice, NowcastMethod, OwedState, Rule, Severity, SnapshotStatus, TokenScope,
+    UnknownName,
+};
+
 /// A canonical line-list field. Every source's columns are mapped onto these by config.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
 pub enum Field {
@@ -240,81 +247,6 @@ impl CaseRecord {
         let mut first = [0u8; 8];
         first.copy_from_slice(&digest[..8]);
         i64::from_le_bytes(first)
-    }
-}
-
-/// Whether an extract holds the source's whole line list or only new and changed records.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum ExtractKind {
-    /// Records missing from a full extract are removed.
-    Full,
-    /// A delta extract never removes.
-    Delta,
-}
-
-impl ExtractKind {
-    pub fn name(self) -> &'static str {
-        match self {
-            ExtractKind::Full => "full",
-            ExtractKind::Delta => "delta",
-        }
-    }
-}
-
-/// The byte format of an extract (gzip is detected separately, by magic bytes).
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Format {
-    Csv,
-    Ndjson,
-    Json,
-}
-
-impl Format {
-    pub fn name(self) -> &'static str {
-        match self {
-            Format::Csv => "csv",
-            Format::Ndjson => "ndjson",
-            Format::Json => "json",
-        }
-    }
-}
-
-/// What became of a snapshot.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum SnapshotStatus {
-    /// Its records are versioned in the store.
-    Applied,
-    /// Suspect (e.g. a truncated feed); waits for an operator to release or reject it.
-    Held,
-    /// Could not be parsed at all; nothing of it was applied.
-    Failed,
-    /// The same bytes as an earlier snapshot of the source; nothing new.
-    Duplicate,
-    /// A held snapshot that an operator discarded.
-    Rejected,
-}
-
-impl SnapshotStatus {
-    pub fn name(self) -> &'static str {
-        match self {
-            SnapshotStatus::Applied => "applied",
-            SnapshotStatus::Held => "held",
-            SnapshotStatus::Failed => "failed",
-            SnapshotStatus::Duplicate => "duplicate",
-            SnapshotStatus::Rejected => "rejected",
-        }
-    }
-
-    pub fn parse(text: &str) -> Option<SnapshotStatus> {
-        [
-            SnapshotStatus::Applied,
-            SnapshotStatus::Held,
-            SnapshotStatus::Failed,
-            SnapshotStatus::Duplicate,
-            SnapshotStatus::Rejected,
-        ]
-        .into_iter()
-        .find(|status| status.name() == text)
     }
 }
 

@@ -1,0 +1,54 @@
+//! The alert rules: measured aggregates in, an [`Outcome`] out. One input type and one
+//! parameter type per rule, plain numbers and vectors so the caller can fill them from SQL;
+//! each default is documented with its reason. Pure: no IO, no clock (the current time is an
+//! argument), no store types. Summaries carry aggregates only, never a patient-level value.
+//!
+//! Severity mapping (see [`Severity`]):
+//! - `missingness_jump`: warning; critical when the latest share is at least 0.95 and rose by
+//!   at least 0.5 (the field has all but vanished).
+//! - `lag_jump`: warning; critical when the recent median lag is at least twice the baseline
+//!   median and at least 2 days more.
+//! - `held_snapshot`: always critical (the day's data did not arrive whole).
+//! - `volume_drop`: warning; critical when no new records arrived at all.
+//! - `stale_source`: warning; critical after twice `expect_every`.
+//! - `failing_polls`: warning; critical after twice the allowed failures.
+//! - `ears_c1`, `ears_c2`, `ears_c3`, `count_cusum`: warning; critical when the statistic is at
+//!   least twice its threshold.
+
+mod count;
+mod lag;
+mod missingness;
+mod staleness;
+mod volume;
+
+pub use crate::config::rules::{
+    CountCusumParams, CountFamily, CountParams, LagParams, MissingnessParams, StalenessParams, VolumeParams,
+};
+pub use count::*;
+pub use lag::*;
+pub use missingness::*;
+pub use staleness::*;
+pub use volume::*;
+
+/// The last `n` items.
+fn tail<T>(items: &[T], n: usize) -> &[T] {
+    &items[items.len().saturating_sub(n)..]
+}
+
+/// The median of the non-NaN values; `None` when there are none.
+pub fn median(values: &[f64]) -> Option<f64> {
+    let mut sorted: Vec<f64> = values.iter().copied().filter(|v| !v.is_nan()).collect();
+    if sorted.is_empty() {
+        return None;
+    }
+    sorted.sort_by(f64::total_cmp);
+    let mid = sorted.len() / 2;
+    Some(if sorted.len() % 2 == 1 { sorted[mid] } else { (sorted[mid - 1] + sorted[mid]) / 2.0 })
+}
+
+fn subject_suffix(subject: &str) -> String {
+    if subject.is_empty() { String::new() } else { format!(" ({subject})") }
+}
+
+#[cfg(test)]
+mod tests;

@@ -1,0 +1,266 @@
+//! The smooth nowcast's delay model: the multinomial split of each row's reports over its
+//! observed delays, with a baseline pmf and a per-row stretch that follows a Student-t random
+//! walk, fitted by penalised Fisher scoring with its step precision chosen by Laplace marginal
+//! likelihood.
+
+use super::*;
+
+/// Largest log stretch used (a factor of e^3, about 20, either way).
+pub(super) const MAX_LOG_STRETCH: f64 = 3.0;
+/// Precision that pins the first knot's log stretch to zero: the baseline is the delay
+/// distribution at the start of the window.
+pub(super) const ANCHOR: f64 = 1e6;
+
+#[derive(Debug)]
+pub(super) struct DelayModel<'a> {
+    pub(super) window: &'a Window,
+    /// Whether the log stretch varies (one coefficient per knot) or not.
+    pub(super) terms: usize,
+    pub(super) knots: Knots,
+    /// Baseline smoothness, anchor and ridge (fixed quadratic part of the penalty).
+    pub(super) penalty: Matrix,
+    /// Precision per day of the log stretch's random-walk steps.
+    pub(super) trend_penalty: f64,
+    /// Degrees of freedom of the Student-t steps (infinite: Gaussian).
+    pub(super) dof: f64,
+}
+
+#[derive(Debug)]
+pub(super) struct DelayFit {
+    pub(super) minimum: Minimum,
+    pub(super) converged: bool,
+}
+
+impl<'a> DelayModel<'a> {
+    pub(super) fn new(window: &'a Window, params: &SmoothParams, trend_penalty: f64) -> DelayModel<'a> {
+        let terms = usize::from(params.delay_changes);
+        let knots = Knots::new(window.len(), params.delay_trend_knots);
+        let dof = if params.delay_change_dof > 0.0 { params.delay_change_dof } else { f64::INFINITY };
+        let mut model = DelayModel { window, terms, knots, penalty: Matrix::zeros(0), trend_penalty, dof };
+        model.penalty = model.baseline_penalty(params.delay_shape_penalty);
+        model
+    }
+
+    pub(super) fn len(&self) -> usize {
+        self.window.max_delay + 1 + self.terms * self.knots.len()
+    }
+
+    pub(super) fn knot_index(&self, knot: usize) -> usize {
+        self.window.max_delay + 1 + knot
+    }
+
+    /// Second differences of the baseline across delays, the anchor, and the ridge.
+    pub(super) fn baseline_penalty(&self, shape_penalty: f64) -> Matrix {
+        let mut p = Matrix::zeros(self.len());
+        for d in 2..=self.window.max_delay {
+            // Centred at d - 1; weight (1 + (d - 1))^2 (see `SmoothParams::delay_shape_penalty`).
+            p.add_outer(&[(d, 1.0), (d - 1, -2.0), (d - 2, 1.0)], shape_penalty * (d * d) as f64);
+        }
+        if self.terms > 0 {
+            p.add(self.knot_index(0), self.knot_index(0), ANCHOR);
+        }
+        (0..self.len()).for_each(|i| p.add(i, i, RIDGE));
+        p
+    }
+
+    /// The steps of the log stretch between consecutive knots: (knot, days since the
+    /// previous knot, step, squared step scaled to its precision).
+    pub(super) fn steps<'s>(&'s self, theta: &'s [f64]) -> impl Iterator<Item = (usize, f64, f64, f64)> + 's {
+        (1..self.knots.len()).filter(|_| self.terms > 0).map(move |k| {
+            let gap = (self.knots.positions[k] - self.knots.positions[k - 1]) as f64;
+            let step = theta[self.knot_index(k)] - theta[self.knot_index(k - 1)];
+            (k, gap, step, self.trend_penalty * step * step / gap)
+        })
+    }
+
+    /// Minus the log prior density of one step (up to a constant): `q / 2` for Gaussian
+    /// steps, `(dof + 1) / 2 ln(1 + q / dof)` for Student-t steps, q the scaled squared step.
+    pub(super) fn step_penalty(&self, scaled: f64) -> f64 {
+        if self.dof.is_finite() { 0.5 * (self.dof + 1.0) * (scaled / self.dof).ln_1p() } else { 0.5 * scaled }
+    }
+
+    /// Weight of a step in the reweighted quadratic (IRLS) form of its penalty: the
+    /// derivative of `step_penalty` with respect to `q / 2`.
+    pub(super) fn step_weight(&self, scaled: f64) -> f64 {
+        if self.dof.is_finite() { (self.dof + 1.0) / (self.dof + scaled) } else { 1.0 }
+    }
+
+    /// Adds the steps' penalty gradient and reweighted Hessian.
+    pub(super) fn add_step_derivatives(&self, theta: &[f64], gradient: &mut [f64], hessian: &mut Matrix) {
+        for (k, gap, step, scaled) in self.steps(theta) {
+            let weight = self.step_weight(scaled) * self.trend_penalty / gap;
+            let (hi, lo) = (self.knot_index(k), self.knot_index(k - 1));
+            gradient[hi] += weight * step;
+            gradient[lo] -= weight * step;
+            hessian.add_outer(&[(hi, 1.0), (lo, -1.0)], weight);
+        }
+    }
+
+    /// Laplace approximation of the log marginal likelihood, up to a constant that does not
+    /// depend on the step precision: `-f + (S / 2) ln(precision) - ln|H| / 2` with S steps.
+    pub(super) fn evidence(&self, minimum: &Minimum) -> f64 {
+        let steps = (self.terms * (self.knots.len() - 1)) as f64;
+        -minimum.value + 0.5 * steps * self.trend_penalty.ln() - 0.5 * minimum.hessian.log_det()
+    }
+
+    /// The stretch factor of window row r, and the knots it comes from with their weights.
+    pub(super) fn stretch(&self, theta: &[f64], r: usize) -> (f64, [(usize, f64); 2]) {
+        let (lo, w_lo, hi, w_hi) = self.knots.weights[r];
+        if self.terms == 0 {
+            return (1.0, [(0, 0.0), (0, 0.0)]);
+        }
+        let log_stretch = w_lo * theta[self.knot_index(lo)] + w_hi * theta[self.knot_index(hi)];
+        (log_stretch.clamp(-MAX_LOG_STRETCH, MAX_LOG_STRETCH).exp(), [(lo, w_lo), (hi, w_hi)])
+    }
+
+    pub(super) fn baseline(&self, theta: &[f64]) -> Baseline {
+        Baseline::new(&theta[..=self.window.max_delay])
+    }
+
+    /// `ln F_r(k_r)`: log of the share of row r's eventual count reported by its largest
+    /// observed delay. Delay d of row r covers baseline days `[d, d + 1) / stretch`.
+    pub(super) fn log_completeness(&self, baseline: &Baseline, theta: &[f64], r: usize) -> f64 {
+        let (stretch, _) = self.stretch(theta, r);
+        let reported = (self.window.observed[r] + 1) as f64 / stretch;
+        let all = (self.window.max_delay + 1) as f64 / stretch;
+        baseline.cdf(reported).ln() - baseline.cdf(all).ln()
+    }
+
+    /// Rows that inform the delay split: more than one observed delay and some reports.
+    pub(super) fn informative_rows(&self) -> impl Iterator<Item = usize> + '_ {
+        (0..self.window.len()).filter(|&r| self.window.observed[r] > 0 && self.window.totals[r] > 0.0)
+    }
+
+    /// Start: log shares of the pooled complete rows, no stretch.
+    pub(super) fn initial(&self) -> Vec<f64> {
+        let mut theta = vec![0.0; self.len()];
+        let complete = (0..self.window.len()).filter(|&r| self.window.observed[r] == self.window.max_delay);
+        let mut sums = vec![0.0; self.window.max_delay + 1];
+        for r in complete {
+            sums.iter_mut().zip(&self.window.n[r]).for_each(|(s, n)| *s += n);
+        }
+        let total: f64 = sums.iter().sum::<f64>() + 0.5 * sums.len() as f64;
+        sums.iter().enumerate().for_each(|(d, s)| theta[d] = ((s + 0.5) / total).ln());
+        theta
+    }
+
+    /// Log likelihood of row r's split over its observed delays:
+    /// `sum_d n_d ln A_d - O ln C`, A_d the baseline mass of delay d's stretched interval and
+    /// C their sum.
+    pub(super) fn row_log_likelihood(&self, baseline: &Baseline, theta: &[f64], r: usize) -> f64 {
+        let (stretch, _) = self.stretch(theta, r);
+        let k = self.window.observed[r];
+        let mut sum = 0.0;
+        for (d, &n) in self.window.n[r].iter().enumerate().take(k + 1) {
+            if n > 0.0 {
+                let mass = baseline.cdf((d + 1) as f64 / stretch) - baseline.cdf(d as f64 / stretch);
+                sum += n * mass.ln();
+            }
+        }
+        sum - self.window.totals[r] * baseline.cdf((k + 1) as f64 / stretch).ln()
+    }
+
+    /// Adds row r's score and Fisher information. With `x_d` the gradient of `ln A_d` in the
+    /// baseline weights (through `pi_j dA_d/dpi_j / A_d`) and the log stretch, and
+    /// `q_d = A_d / C`: score `sum_d (n_d - O q_d) x_d`, information
+    /// `O (sum_d q_d x_d x_d^T - xbar xbar^T)` with `xbar = sum_d q_d x_d` (the softmax
+    /// normaliser cancels). The log stretch maps to the row's two knots.
+    pub(super) fn add_row_derivatives(
+        &self,
+        baseline: &Baseline,
+        theta: &[f64],
+        r: usize,
+        gradient: &mut [f64],
+        hessian: &mut Matrix,
+    ) {
+        let (stretch, knots) = self.stretch(theta, r);
+        let k = self.window.observed[r];
+        let total = self.window.totals[r];
+        let top = (((k + 1) as f64 / stretch).floor() as usize + 1).min(self.window.max_delay);
+        let norm = baseline.cdf((k + 1) as f64 / stretch);
+        // Global indices of the local coordinates: baseline days 0..=top, then the knots.
+        let mut index: Vec<usize> = (0..=top).collect();
+        let mut knot_weight = Vec::new();
+        if self.terms > 0 {
+            for (knot, w) in knots.into_iter().filter(|(_, w)| *w > 0.0) {
+                index.push(self.knot_index(knot));
+                knot_weight.push(w);
+            }
+        }
+        let mut xbar = vec![0.0; index.len()];
+        let mut x: Vec<(usize, f64)> = Vec::new();
+        for d in 0..=k {
+            let (u0, u1) = (d as f64 / stretch, (d + 1) as f64 / stretch);
+            let mass = baseline.mass_gradient(u0, u1, &mut x);
+            if mass.is_nan() || mass <= 0.0 {
+                continue;
+            }
+            x.iter_mut().for_each(|(_, v)| *v /= mass);
+            let log_stretch = -(u1 * baseline.density(u1) - u0 * baseline.density(u0)) / mass;
+            x.extend(knot_weight.iter().enumerate().map(|(i, w)| (top + 1 + i, w * log_stretch)));
+            let q = mass / norm;
+            let residual = self.window.n[r][d] - total * q;
+            for &(i, v) in &x {
+                xbar[i] += q * v;
+                gradient[index[i]] -= residual * v;
+            }
+            for &(i, a) in &x {
+                for &(j, b) in &x {
+                    hessian.add(index[i], index[j], total * q * a * b);
+                }
+            }
+        }
+        for (i, &gi) in index.iter().enumerate() {
+            for (j, &gj) in index.iter().enumerate() {
+                hessian.add(gi, gj, -total * xbar[i] * xbar[j]);
+            }
+        }
+    }
+}
+
+impl Objective for DelayModel<'_> {
+    /// Negative penalized log likelihood of the split of each row over its observed delays.
+    fn value(&self, theta: &[f64]) -> f64 {
+        let baseline = self.baseline(theta);
+        let log_lik: f64 =
+            self.informative_rows().map(|r| self.row_log_likelihood(&baseline, theta, r)).sum();
+        let steps: f64 = self.steps(theta).map(|(.., scaled)| self.step_penalty(scaled)).sum();
+        0.5 * self.penalty.quadratic(theta) + steps - log_lik
+    }
+
+    /// Exact gradient; the Hessian is the Fisher information plus the penalty, with the
+    /// Student-t steps in reweighted (IRLS) form, which keeps it positive definite.
+    fn derivatives(&self, theta: &[f64]) -> (Vec<f64>, Matrix) {
+        let baseline = self.baseline(theta);
+        let mut gradient = self.penalty.times(theta);
+        let mut hessian = self.penalty.clone();
+        self.add_step_derivatives(theta, &mut gradient, &mut hessian);
+        for r in self.informative_rows() {
+            self.add_row_derivatives(&baseline, theta, r, &mut gradient, &mut hessian);
+        }
+        (gradient, hessian)
+    }
+}
+
+/// Fits the delay model, choosing the precision of the log stretch's random walk by Laplace
+/// marginal likelihood unless it is given.
+pub(super) fn fit_delay<'a>(window: &'a Window, params: &SmoothParams) -> Option<(DelayModel<'a>, DelayFit)> {
+    let strengths: Vec<f64> = match (params.delay_changes, params.delay_trend_penalty) {
+        (false, _) => vec![1.0],
+        (true, Some(strength)) => vec![strength.max(1e-9)],
+        (true, None) => (1..=4).map(|i| 10f64.powi(i)).collect(),
+    };
+    let mut best: Option<(f64, DelayModel<'a>, DelayFit)> = None;
+    let mut start: Option<Vec<f64>> = None;
+    for strength in strengths {
+        let model = DelayModel::new(window, params, strength);
+        let initial = start.take().unwrap_or_else(|| model.initial());
+        let Some((minimum, converged)) = minimise(&model, initial) else { continue };
+        let evidence = model.evidence(&minimum);
+        start = Some(minimum.x.clone());
+        if best.as_ref().is_none_or(|(e, ..)| evidence > *e) {
+            best = Some((evidence, model, DelayFit { minimum, converged }));
+        }
+    }
+    best.map(|(_, model, fit)| (model, fit))
+}

@@ -1,0 +1,173 @@
+//! The alert rules' typed parameters, each default with its reason. The rules themselves live
+//! in `alert::rules`; `[alert.rules.<rule>]` overrides these defaults (see `rule_params`).
+
+use crate::analysis::aberration::EarsParams;
+use crate::analysis::change::EwmaParams;
+
+/// Parameters of the missingness-jump rule.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct MissingnessParams {
+    /// Number of previous snapshots pooled into the baseline share. Default 7: about a week of
+    /// daily extracts, long enough to steady the share, short enough to follow a slow drift.
+    pub baseline_snapshots: usize,
+    /// Smallest absolute rise of the missing share that can alarm. Default 0.10 (10 percentage
+    /// points, the smallest rise an epidemiologist acts on): a huge extract makes a rise of 0.5 points "significant" on
+    /// the p-chart but nobody should be woken for it.
+    pub min_effect: f64,
+    /// Smallest number of new or changed records in the latest snapshot, and of records in the
+    /// pooled baseline, for the rule to be evaluated. Default 30: below it the p-chart's normal
+    /// approximation is poor and one record moves the share by more than 3 points.
+    pub min_records: u64,
+    /// Width of the p-chart's upper limit in standard errors. Default 3 (Shewhart).
+    pub sigmas: f64,
+}
+
+impl Default for MissingnessParams {
+    fn default() -> MissingnessParams {
+        MissingnessParams { baseline_snapshots: 7, min_effect: 0.10, min_records: 30, sigmas: 3.0 }
+    }
+}
+
+/// Parameters of the lag-jump rule.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct LagParams {
+    /// EWMA on the daily median lag. Default lambda 0.2, L 3, exact limits: sensitive to a
+    /// lasting shift of about one day-to-day sd within a week, in-control ARL near 500 days.
+    pub ewma: EwmaParams,
+    /// Days of the baseline window before the recent window. Default 28: four weeks, so
+    /// weekday effects average out.
+    pub baseline_days: usize,
+    /// Days of the recent window (ending on the latest day). Default 7.
+    pub recent_days: usize,
+    /// Baseline days with at least one record needed to estimate the in-control mean and sd.
+    /// Default 14.
+    pub min_baseline_days: usize,
+    /// Records needed in each window for the Mann-Whitney confirmation. Default 20.
+    pub min_records: usize,
+    /// Mann-Whitney two-sided p-value below which the rise is confirmed. Default 0.01: the
+    /// EWMA already selected the window, so the confirmation is kept strict.
+    pub alpha: f64,
+    /// Smallest rise (days) of the recent pooled median lag over the baseline's that can alarm.
+    /// Default 1 day: lags are counted in whole days, so a smaller rise is within rounding.
+    pub min_effect_days: f64,
+    /// Floor of the sd of the daily medians (days). Default 0.5: daily medians of whole days
+    /// can be constant for weeks; half a day is the finest step they resolve.
+    pub min_sd_days: f64,
+}
+
+impl Default for LagParams {
+    fn default() -> LagParams {
+        LagParams {
+            ewma: EwmaParams::default(),
+            baseline_days: 28,
+            recent_days: 7,
+            min_baseline_days: 14,
+            min_records: 20,
+            alpha: 0.01,
+            min_effect_days: 1.0,
+            min_sd_days: 0.5,
+        }
+    }
+}
+
+/// Parameters of the volume-drop rule.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct VolumeParams {
+    /// Previous snapshots whose new-record counts form the baseline. Default 7 (a week).
+    pub baseline_snapshots: usize,
+    /// Alarm when new records fall below this fraction of the baseline median. Default 0.5:
+    /// Poisson noise alone almost never halves a count of 20 or more (P < 0.01 at 20).
+    pub drop_fraction: f64,
+    /// Smallest baseline median for the rule to be evaluated. Default 20: below it a halving
+    /// is ordinary noise.
+    pub min_baseline_median: f64,
+    /// Smallest number of baseline snapshots. Default 3.
+    pub min_baseline_snapshots: usize,
+}
+
+impl Default for VolumeParams {
+    fn default() -> VolumeParams {
+        VolumeParams {
+            baseline_snapshots: 7,
+            drop_fraction: 0.5,
+            min_baseline_median: 20.0,
+            min_baseline_snapshots: 3,
+        }
+    }
+}
+
+/// Parameters of the failing-polls rule.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct StalenessParams {
+    /// Consecutive failed polls that raise a signal. Default 3: one or two failures are often a
+    /// passing network fault or a file still being written.
+    pub max_consecutive_failures: u32,
+}
+
+impl Default for StalenessParams {
+    fn default() -> StalenessParams {
+        StalenessParams { max_consecutive_failures: 3 }
+    }
+}
+
+/// The count distribution assumed by the count CUSUM.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum CountFamily {
+    /// Variance equal to the mean; reference value of Lucas (1985).
+    Poisson,
+    /// Variance above the mean, size estimated from the baseline by moments; falls back to
+    /// Poisson when the baseline is not over-dispersed.
+    NegativeBinomial,
+}
+
+/// Parameters of the count CUSUM (an option beside EARS).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct CountCusumParams {
+    pub family: CountFamily,
+    /// Days of each day's moving baseline. Default 28: four weeks, weekday effects average out.
+    pub baseline_days: usize,
+    /// Days between a day and the end of its baseline. Default 2, as EARS C2, so an
+    /// outbreak's first days do not raise their own baseline.
+    pub guard_days: usize,
+    /// The rise to detect, in baseline sds: `mu1 = mu0 + shift_sds * sd0`. Default 2.
+    pub shift_sds: f64,
+    /// Decision interval in baseline sds (`h = h_sds * sd0` cases). Default 3: with a 2-sd
+    /// shift this is the standardised CUSUM k = 1, h = 3 whose in-control ARL for normal data
+    /// is about 2,000 days (Siegmund's approximation); count skewness and an estimated baseline
+    /// bring it down (see the detector benchmark for the measured false-alarm rate).
+    pub h_sds: f64,
+    /// Floor of the baseline mean (cases per day). Default 0.5, so a run of zeros still gives
+    /// a finite reference value.
+    pub min_mean: f64,
+}
+
+impl Default for CountCusumParams {
+    fn default() -> CountCusumParams {
+        CountCusumParams {
+            family: CountFamily::Poisson,
+            baseline_days: 28,
+            guard_days: 2,
+            shift_sds: 2.0,
+            h_sds: 3.0,
+            min_mean: 0.5,
+        }
+    }
+}
+
+/// Which count statistics to evaluate, and their parameters.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct CountParams {
+    pub ears: EarsParams,
+    /// Evaluate EARS C1, C2, C3 (default all three).
+    pub c1: bool,
+    pub c2: bool,
+    pub c3: bool,
+    /// The count CUSUM, off by default (`None`): EARS needs only a week of history.
+    pub cusum: Option<CountCusumParams>,
+}
+
+impl Default for CountParams {
+    fn default() -> CountParams {
+        CountParams { ears: EarsParams::default(), c1: true, c2: true, c3: true, cusum: None }
+    }
+}
