@@ -10,7 +10,7 @@ use clap::{Args, Parser, Subcommand};
 
 use tidemark::analysis::delay::FamilyChoice;
 use tidemark::app::access;
-use tidemark::app::commands::{self, CurveArgs, UsageError};
+use tidemark::app::commands::{self, CurveArgs, QueryError, UsageError};
 use tidemark::app::demo::{self, DemoOptions};
 use tidemark::config::{Config, ConfigError};
 use tidemark::demo::DEFAULT_DAYS;
@@ -321,7 +321,11 @@ fn main() -> ExitCode {
 }
 
 fn exit_code(err: &anyhow::Error) -> u8 {
-    let usage = err.chain().any(|cause| cause.is::<UsageError>() || cause.is::<ConfigError>());
+    let bad_question = |cause: &(dyn std::error::Error + 'static)| {
+        matches!(cause.downcast_ref::<QueryError>(), Some(QueryError::BadRequest(_)))
+    };
+    let usage =
+        err.chain().any(|cause| cause.is::<UsageError>() || cause.is::<ConfigError>() || bad_question(cause));
     if usage { 2 } else { 1 }
 }
 

@@ -1,7 +1,8 @@
 //! Analysts' access from the command line: `tidemark token create|list|revoke`, and
 //! `tidemark serve` (the API, ops endpoints and dashboard without polling). Also the
-//! `serve::api::Listings` implementation that answers the API's listings with the same
-//! functions the CLI prints, so the two always agree.
+//! `serve::api::Listings` implementation: each request's parameters become a
+//! `queries::Question`, answered by the same `queries::answer` the CLI prints, and the
+//! answer's error kind chooses the status code.
 
 use std::sync::Arc;
 use std::sync::atomic::AtomicBool;
@@ -10,12 +11,12 @@ use anyhow::{Context, Result};
 use tokio::net::TcpListener;
 use tokio_util::sync::CancellationToken;
 
-use super::commands::{self, CurveArgs, DelaysArgs, NowcastArgs};
-use super::errors::{NotFound, UsageError};
+use super::errors::UsageError;
+use super::queries::{self, CurveArgs, DelaysArgs, NowcastArgs, QueryError, Question};
 use crate::analysis::delay::FamilyChoice;
 use crate::config::Config;
 use crate::metrics::Metrics;
-use crate::model::{MethodChoice, SnapshotStatus};
+use crate::model::MethodChoice;
 use crate::serve::api::{ApiState, Endpoint, ListingError, Listings, Params};
 use crate::serve::{self, auth, ops};
 use crate::store::{self, Reader, TokenScope};
@@ -108,129 +109,54 @@ struct CliListings {
 
 impl Listings for CliListings {
     fn listing(&self, reader: &Reader, endpoint: Endpoint, params: &Params) -> Result<Table, ListingError> {
-        self.answer(reader, endpoint, params).map_err(classify)
-    }
-}
-
-impl CliListings {
-    fn answer(&self, reader: &Reader, endpoint: Endpoint, p: &Params) -> Result<Table> {
-        let config = &self.config;
-        let format = OutputFormat::Json;
-        match endpoint {
-            Endpoint::Sources => sources_table(config, reader),
-            Endpoint::Snapshots => {
-                if let Some(name) = p.get("source") {
-                    known_source(config, name)?;
-                }
-                commands::snapshots_table(reader, p.get("source"))
-            }
-            Endpoint::Curve => {
-                let args = CurveArgs {
-                    source: p.required("source")?,
-                    by: p.required("by")?,
-                    as_of: p.get("as_of"),
-                    stratify: p.get("stratify"),
-                    format,
-                };
-                commands::curve_table(config, reader, &args)
-            }
-            Endpoint::Nowcast => {
-                let args = NowcastArgs {
-                    source: p.required("source")?,
-                    by: p.required("by")?,
-                    as_of: p.get("as_of"),
-                    method: p.vocabulary("method")?.unwrap_or(MethodChoice::Auto),
-                    stratify: p.get("stratify"),
-                    format,
-                };
-                Ok(commands::nowcast_table(config, reader, &args)?.0)
-            }
-            Endpoint::Delays => {
-                let args = DelaysArgs {
-                    source: p.required("source")?,
-                    from: p.required("from")?,
-                    to: p.required("to")?,
-                    family: p.vocabulary("family")?.unwrap_or(FamilyChoice::Auto),
-                    as_of: p.get("as_of"),
-                    stratify: p.get("stratify"),
-                    by_week: p.flag("by_week")?,
-                    compare_by: p.get("compare_by"),
-                    format,
-                };
-                Ok(commands::delays_table(config, reader, &args)?.0)
-            }
-            Endpoint::Quality | Endpoint::Alerts => {
-                let source = p.get("source");
-                if let Some(name) = source {
-                    known_source(config, name)?;
-                }
-                let as_of = p.get("as_of").map(commands::parse_time_arg).transpose()?;
-                let table = if endpoint == Endpoint::Quality {
-                    reader.quality(source, as_of)?
-                } else {
-                    reader.alerts_table(source, as_of)?
-                };
-                table.ok_or_else(|| {
-                    anyhow::Error::new(Unavailable(format!(
-                        "{} not available in this store (the quality and alerts tables are missing)",
-                        if endpoint == Endpoint::Quality { "quality" } else { "alerts" }
-                    )))
-                })
+        let question = question(endpoint, params)?;
+        match queries::answer(&self.config, reader, &question) {
+            Ok(answer) => Ok(answer.table),
+            Err(QueryError::BadRequest(message)) => Err(ListingError::BadRequest(message)),
+            Err(QueryError::NotFound(message)) => Err(ListingError::NotFound(message)),
+            Err(QueryError::Unavailable(message)) => Err(ListingError::Unavailable(message)),
+            Err(QueryError::Failed(err)) => {
+                tracing::warn!(error = %format!("{err:#}"), "API listing failed");
+                Err(ListingError::Internal)
             }
         }
     }
 }
 
-/// A feature this store does not have (503).
-#[derive(Debug, thiserror::Error)]
-#[error("{0}")]
-struct Unavailable(String);
-
-fn known_source(config: &Config, name: &str) -> Result<()> {
-    if config.source(name).is_none() {
-        anyhow::bail!(UsageError(format!("no source named {name:?}")));
-    }
-    Ok(())
-}
-
-/// One row per configured source: kind, snapshots, and the latest applied snapshot.
-fn sources_table(config: &Config, reader: &Reader) -> Result<Table> {
-    let mut table =
-        Table::new(&["source", "kind", "snapshots", "applied", "latest_snapshot_id", "latest_as_of"]);
-    let snapshots = reader.snapshots(None)?;
-    for source in &config.sources {
-        let own: Vec<_> = snapshots.iter().filter(|s| s.source == source.name).collect();
-        let applied: Vec<_> = own.iter().filter(|s| s.status == SnapshotStatus::Applied).collect();
-        let latest = applied.last();
-        table.push(vec![
-            source.name.clone().into(),
-            source.kind_name().into(),
-            (own.len() as i64).into(),
-            (applied.len() as i64).into(),
-            latest.map(|s| s.snapshot_id).into(),
-            latest.map(|s| s.as_of.clone()).into(),
-        ]);
-    }
-    Ok(table)
-}
-
-/// Sorts an error into what the client did wrong (400), what is not there (404), what this
-/// store cannot answer (503) or a failure (500). Messages come from the CLI's own errors,
-/// which name fields and sources but never a cell value.
-fn classify(err: anyhow::Error) -> ListingError {
-    if let Some(listing) = err.downcast_ref::<ListingError>() {
-        return listing.clone();
-    }
-    let message = err.to_string();
-    if err.chain().any(|c| c.is::<UsageError>()) {
-        return ListingError::BadRequest(message);
-    }
-    if err.chain().any(|c| c.is::<Unavailable>()) {
-        return ListingError::Unavailable(message);
-    }
-    if err.chain().any(|c| c.is::<NotFound>()) {
-        return ListingError::NotFound(message);
-    }
-    tracing::warn!(error = %format!("{err:#}"), "API listing failed");
-    ListingError::Internal
+/// The question an API request asks, from its query parameters (a missing or malformed
+/// parameter is a 400 naming it).
+fn question<'p>(endpoint: Endpoint, p: &'p Params) -> Result<Question<'p>, ListingError> {
+    let format = OutputFormat::Json;
+    Ok(match endpoint {
+        Endpoint::Sources => Question::Sources,
+        Endpoint::Snapshots => Question::Snapshots { source: p.get("source") },
+        Endpoint::Curve => Question::Curve(CurveArgs {
+            source: p.required("source")?,
+            by: p.required("by")?,
+            as_of: p.get("as_of"),
+            stratify: p.get("stratify"),
+            format,
+        }),
+        Endpoint::Nowcast => Question::Nowcast(NowcastArgs {
+            source: p.required("source")?,
+            by: p.required("by")?,
+            as_of: p.get("as_of"),
+            method: p.vocabulary("method")?.unwrap_or(MethodChoice::Auto),
+            stratify: p.get("stratify"),
+            format,
+        }),
+        Endpoint::Delays => Question::Delays(DelaysArgs {
+            source: p.required("source")?,
+            from: p.required("from")?,
+            to: p.required("to")?,
+            family: p.vocabulary("family")?.unwrap_or(FamilyChoice::Auto),
+            as_of: p.get("as_of"),
+            stratify: p.get("stratify"),
+            by_week: p.flag("by_week")?,
+            compare_by: p.get("compare_by"),
+            format,
+        }),
+        Endpoint::Quality => Question::Quality { source: p.get("source"), as_of: p.get("as_of") },
+        Endpoint::Alerts => Question::Alerts { source: p.get("source"), as_of: p.get("as_of") },
+    })
 }

@@ -8,49 +8,23 @@ use std::os::unix::fs::{OpenOptionsExt, PermissionsExt};
 use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result, bail};
-use chrono::{DateTime, NaiveDate, Utc};
+use chrono::NaiveDate;
 
-use super::ingest::{self, IngestOutcome, end_of_day};
+use super::ingest::{self, IngestOutcome};
 use super::pipeline;
-use crate::analysis::delay::FamilyChoice;
 use crate::config::{self, Config, SourceConfig};
-use crate::model::{Field, MethodChoice, SnapshotStatus};
+use crate::model::{Field, SnapshotStatus};
 use crate::store::{Reader, Store};
 use crate::table::{Cell, OutputFormat, Table};
 use crate::text::escape_path;
 
 use super::errors::usage;
 pub use super::errors::{NotFound, UsageError, not_found};
-
-/// Parses TIME: RFC 3339, or a plain date meaning the end of that day (UTC).
-pub fn parse_time_arg(text: &str) -> Result<DateTime<Utc>> {
-    if let Ok(time) = DateTime::parse_from_rfc3339(text) {
-        return Ok(time.with_timezone(&Utc));
-    }
-    match NaiveDate::parse_from_str(text, "%Y-%m-%d") {
-        Ok(date) => Ok(end_of_day(date)),
-        Err(_) => Err(usage(format!("{text:?} is not an RFC 3339 time or a YYYY-MM-DD date"))),
-    }
-}
-
-/// Parses FIELD: a canonical name or short form.
-pub fn parse_field_arg(text: &str) -> Result<Field> {
-    Field::parse(text).ok_or_else(|| {
-        let names: Vec<&str> = Field::ALL.iter().map(|f| f.name()).collect();
-        usage(format!("{text:?} is not a field; use one of {}", names.join(", ")))
-    })
-}
-
-fn source<'c>(config: &'c Config, name: &str) -> Result<&'c SourceConfig> {
-    config.source(name).ok_or_else(|| {
-        let names: Vec<&str> = config.sources.iter().map(|s| s.name.as_str()).collect();
-        usage(format!(
-            "no source named {name:?} in {} (sources: {})",
-            config.file.display(),
-            names.join(", ")
-        ))
-    })
-}
+use super::queries::source;
+pub use super::queries::{
+    Answer, CurveArgs, DelaysArgs, NOWCAST_CAUTION, NowcastArgs, QueryError, Question, answer,
+    parse_field_arg, parse_time_arg,
+};
 
 /// Mode of the folders `init` creates: owner only (they will hold extracts and the store).
 const PRIVATE_DIR: u32 = 0o700;
@@ -164,42 +138,7 @@ pub fn snapshots(config: &Config, source_name: Option<&str>, format: OutputForma
         source(config, name)?;
     }
     let reader = Reader::open(&config.store.path)?;
-    Ok(snapshots_table(&reader, source_name)?.render(format))
-}
-
-/// The listing behind `tidemark snapshots` (and the API's `snapshots`).
-pub fn snapshots_table(reader: &Reader, source_name: Option<&str>) -> Result<Table> {
-    let mut table = Table::new(&[
-        "snapshot_id",
-        "source",
-        "seq",
-        "as_of",
-        "status",
-        "rows",
-        "accepted",
-        "rejected",
-        "new",
-        "changed",
-        "removed",
-        "note",
-    ]);
-    for s in reader.snapshots(source_name)? {
-        table.push(vec![
-            s.snapshot_id.into(),
-            s.source.into(),
-            s.seq.into(),
-            s.as_of.into(),
-            s.status.name().into(),
-            s.rows_total.into(),
-            s.rows_accepted.into(),
-            s.rows_rejected.into(),
-            s.rows_new.into(),
-            s.rows_changed.into(),
-            s.rows_removed.into(),
-            s.note.into(),
-        ]);
-    }
-    Ok(table)
+    Ok(answer(config, &reader, &Question::Snapshots { source: source_name })?.table.render(format))
 }
 
 /// `tidemark snapshots release ID`
@@ -263,60 +202,10 @@ pub fn record_cells(r: &crate::model::CaseRecord) -> Vec<Cell> {
     cells
 }
 
-/// Arguments of `tidemark curve`.
-#[derive(Debug, Clone)]
-pub struct CurveArgs<'a> {
-    pub source: &'a str,
-    pub by: &'a str,
-    pub as_of: Option<&'a str>,
-    pub stratify: Option<&'a str>,
-    pub format: OutputFormat,
-}
-
 /// `tidemark curve --source NAME --by FIELD [--as-of TIME] [--stratify FIELD]`
 pub fn curve(config: &Config, args: &CurveArgs<'_>) -> Result<String> {
     let reader = Reader::open(&config.store.path)?;
-    Ok(curve_table(config, &reader, args)?.render(args.format))
-}
-
-/// The listing behind `tidemark curve` (and the API's `curve`); `args.format` is not used.
-pub fn curve_table(config: &Config, reader: &Reader, args: &CurveArgs<'_>) -> Result<Table> {
-    source(config, args.source)?;
-    let by = parse_field_arg(args.by)?;
-    if !by.is_date() {
-        return Err(usage(format!("--by {by}: a curve needs a date field")));
-    }
-    let stratify = args.stratify.map(parse_field_arg).transpose()?;
-    if let Some(field) =
-        stratify.filter(|f| f.is_date() || matches!(f, Field::CaseKey | Field::Symptoms | Field::Conditions))
-    {
-        return Err(usage(format!(
-            "--stratify {field}: choose jurisdiction, age, sex, outcome or hospitalised"
-        )));
-    }
-    let as_of = args.as_of.map(parse_time_arg).transpose()?;
-    let snapshot = reader
-        .source_id(args.source)?
-        .map(|id| Ok::<_, anyhow::Error>((id, reader.snapshot_as_of(id, as_of)?)))
-        .transpose()?;
-    let Some((source_id, Some(snapshot_id))) = snapshot else {
-        return Err(not_found(format!("source {:?} has no applied snapshot at that time", args.source)));
-    };
-    let mut columns = vec![by.name()];
-    if let Some(field) = stratify {
-        columns.push(field.name());
-    }
-    columns.extend(["count", "snapshot_id"]);
-    let mut table = Table::new(&columns);
-    for row in reader.curve(source_id, snapshot_id, by, stratify)? {
-        let mut cells = vec![Cell::from(row.date.map(|d| d.to_string()))];
-        if stratify.is_some() {
-            cells.push(row.stratum.into());
-        }
-        cells.extend([row.count.into(), snapshot_id.into()]);
-        table.push(cells);
-    }
-    Ok(table)
+    Ok(answer(config, &reader, &Question::Curve(args.clone()))?.table.render(args.format))
 }
 
 /// `tidemark query SQL` on a read-only connection that refuses anything but reading, within
@@ -442,22 +331,11 @@ pub fn restore(config: &Config, from: &Path) -> Result<String> {
     ))
 }
 
-/// Arguments of `tidemark nowcast`.
-#[derive(Debug, Clone)]
-pub struct NowcastArgs<'a> {
-    pub source: &'a str,
-    pub by: &'a str,
-    pub as_of: Option<&'a str>,
-    pub method: MethodChoice,
-    pub stratify: Option<&'a str>,
-    pub format: OutputFormat,
-}
-
 /// `tidemark nowcast`: the stored nowcast of the snapshot current at `--as-of` (computed now
 /// if it was not stored), one row per reference date, with 50/90/95% prediction intervals.
 pub fn nowcast(config: &Config, args: &NowcastArgs<'_>) -> Result<String> {
     let reader = Reader::open(&config.store.path)?;
-    let (table, note) = nowcast_table(config, &reader, args)?;
+    let Answer { table, note } = answer(config, &reader, &Question::Nowcast(args.clone()))?;
     let mut out = table.render(args.format);
     if args.format == OutputFormat::Table {
         if !note.is_empty() {
@@ -467,90 +345,6 @@ pub fn nowcast(config: &Config, args: &NowcastArgs<'_>) -> Result<String> {
     }
     Ok(out)
 }
-
-/// The listing behind `tidemark nowcast` (and the API's `nowcast`), with the note saying how
-/// `auto` chose; `args.format` is not used.
-pub fn nowcast_table(config: &Config, reader: &Reader, args: &NowcastArgs<'_>) -> Result<(Table, String)> {
-    use super::analyse::{self, TriangleKey};
-    source(config, args.source)?;
-    let field = parse_field_arg(args.by)?;
-    if !config.analysis.reference_fields.contains(&field) {
-        return Err(usage(format!("--by {field}: not in analysis.reference_fields, so no triangle is kept")));
-    }
-    let as_of = args.as_of.map(parse_time_arg).transpose()?;
-    let source_id =
-        reader.source_id(args.source)?.ok_or_else(|| not_found("the source has no snapshots yet"))?;
-    let snapshot_id = reader
-        .snapshot_as_of(source_id, as_of)?
-        .ok_or_else(|| not_found("the source has no applied snapshot at that time"))?;
-    let (method, note) = analyse::resolve_method(reader, source_id, field, args.method)?;
-    let mut strata = vec![TriangleKey::all(field)];
-    if let Some(text) = args.stratify {
-        let stratum_field = parse_field_arg(text)?;
-        if !config.analysis.strata.contains(&stratum_field) {
-            return Err(usage(format!("--stratify {stratum_field}: not in analysis.strata")));
-        }
-        strata = reader
-            .triangle_strata(source_id, field, stratum_field.name())?
-            .into_iter()
-            .map(|stratum| TriangleKey { field, kind: stratum_field.name().to_string(), stratum })
-            .collect();
-    }
-    let mut table = Table::new(&[
-        "ref_date",
-        "stratum",
-        "horizon",
-        "observed",
-        "median",
-        "lower50",
-        "upper50",
-        "lower90",
-        "upper90",
-        "lower95",
-        "upper95",
-        "completeness",
-        "method",
-        "snapshot_id",
-    ]);
-    for key in &strata {
-        let stored = reader.nowcast(snapshot_id, (field.name(), &key.kind, &key.stratum, method.name()))?;
-        let rows = if stored.is_empty() {
-            let tri = analyse::load_triangle(reader, source_id, snapshot_id, key, &config.analysis, 0)?;
-            analyse::run_method(
-                method,
-                &tri,
-                &config.analysis,
-                analyse::seed_for(snapshot_id, key, method.name()),
-            )
-            .rows
-        } else {
-            stored
-        };
-        for r in rows.iter().filter(|r| r.horizon <= config.analysis.max_delay) {
-            table.push(vec![
-                r.date.to_string().into(),
-                key.stratum.clone().into(),
-                (r.horizon as i64).into(),
-                r.observed.into(),
-                r.median.into(),
-                r.lower50.into(),
-                r.upper50.into(),
-                r.lower90.into(),
-                r.upper90.into(),
-                r.lower95.into(),
-                r.upper95.into(),
-                r.completeness.into(),
-                method.name().into(),
-                snapshot_id.into(),
-            ]);
-        }
-    }
-    Ok((table, note))
-}
-
-/// Printed under every nowcast table.
-pub const NOWCAST_CAUTION: &str = "Nowcasts are estimates: the intervals are prediction intervals for the count that will \
-eventually be reported, assuming the recent reporting delay holds.\n";
 
 /// Arguments of `tidemark backtest`.
 #[derive(Debug, Clone)]
@@ -650,190 +444,14 @@ pub fn backtest_summary(cells: &[crate::analysis::backtest::BacktestCell]) -> St
     out
 }
 
-/// Arguments of `tidemark delays`.
-#[derive(Debug, Clone)]
-pub struct DelaysArgs<'a> {
-    pub source: &'a str,
-    pub from: &'a str,
-    pub to: &'a str,
-    pub family: FamilyChoice,
-    pub as_of: Option<&'a str>,
-    pub stratify: Option<&'a str>,
-    pub by_week: bool,
-    pub compare_by: Option<&'a str>,
-    pub format: OutputFormat,
-}
-
 /// `tidemark delays`: the delay between two date fields (or to the day a record first
 /// appeared in the store), summarised and fitted with daily censoring and right truncation.
 pub fn delays(config: &Config, args: &DelaysArgs<'_>) -> Result<String> {
     let reader = Reader::open(&config.store.path)?;
-    let (table, footer) = delays_table(config, &reader, args)?;
+    let Answer { table, note: footer } = answer(config, &reader, &Question::Delays(args.clone()))?;
     let mut out = table.render(args.format);
     if args.format == OutputFormat::Table {
         out.push_str(&footer);
     }
     Ok(out)
-}
-
-/// The listing behind `tidemark delays` (and the API's `delays`) and the line printed under
-/// it as text; `args.format` is not used.
-pub fn delays_table(config: &Config, reader: &Reader, args: &DelaysArgs<'_>) -> Result<(Table, String)> {
-    use super::analyse;
-    use crate::config::DelayEnd;
-    source(config, args.source)?;
-    let from = parse_field_arg(args.from)?;
-    let to = DelayEnd::parse(args.to)
-        .ok_or_else(|| usage(format!("--to {}: a date field or first_seen", args.to)))?;
-    if !from.is_date() {
-        return Err(usage(format!("--from {from}: a delay starts at a date field")));
-    }
-    let family = args.family.family();
-    let stratify = args.stratify.map(parse_field_arg).transpose()?;
-    let compare_by = args.compare_by.map(parse_field_arg).transpose()?;
-    let as_of = args.as_of.map(parse_time_arg).transpose()?;
-    let source_id =
-        reader.source_id(args.source)?.ok_or_else(|| not_found("the source has no snapshots yet"))?;
-    let snapshot_id = reader
-        .snapshot_as_of(source_id, as_of)?
-        .ok_or_else(|| not_found("the source has no applied snapshot at that time"))?;
-    let grouping = compare_by.or(stratify);
-    let obs = analyse::delay_observations(
-        reader,
-        source_id,
-        snapshot_id,
-        (from, to),
-        grouping,
-        &config.analysis.age_bands,
-    )?;
-    if let Some(field) = compare_by {
-        return Ok(compare_groups(&obs, field));
-    }
-    let mut groups: std::collections::BTreeMap<String, Vec<crate::analysis::delay::DelayObs>> =
-        Default::default();
-    for (stratum, start, o) in obs {
-        let label = if args.by_week { week_of(start) } else { stratum };
-        groups.entry(label).or_default().push(o);
-    }
-    let mut table = Table::new(&[
-        "stratum",
-        "n",
-        "mean_observed",
-        "median_observed",
-        "p90_observed",
-        "p95_observed",
-        "share_negative",
-        "share_zero",
-        "family",
-        "rank",
-        "mean",
-        "mean_lo",
-        "mean_hi",
-        "median",
-        "median_lo",
-        "median_hi",
-        "p95",
-        "p95_lo",
-        "p95_hi",
-        "aic",
-        "identifiable",
-        "warnings",
-    ]);
-    let bootstrap = if args.by_week { 0 } else { config.analysis.bootstrap };
-    for (label, group) in &groups {
-        let seed = analyse::seed_for(snapshot_id, &analyse::TriangleKey::all(from), label);
-        let (summary, fits) = analyse::fit_delays(group, bootstrap, seed);
-        let chosen: Vec<_> = match family {
-            Some(f) => fits.iter().enumerate().filter(|(_, fit)| fit.family == f).collect(),
-            None => fits.iter().enumerate().take(1).collect(),
-        };
-        for (rank, fit) in chosen {
-            table.push(delay_row(label, &summary, fit, rank + 1));
-        }
-    }
-    let footer = format!(
-        "delays {from} -> {} as of snapshot {snapshot_id}; fits use daily interval censoring and right truncation at each record's horizon; negative delays are counted and left out of fits\n",
-        to.name()
-    );
-    Ok((table, footer))
-}
-
-fn delay_row(
-    label: &str,
-    s: &crate::analysis::delay::DelaySummary,
-    f: &crate::analysis::delay::DelayFit,
-    rank: usize,
-) -> Vec<Cell> {
-    let real = |x: f64| Cell::from(x.is_finite().then_some(x));
-    let bound = |i: &Option<crate::analysis::delay::Interval>, upper: bool| {
-        real(i.as_ref().map(|i| if upper { i.upper } else { i.lower }).unwrap_or(f64::NAN))
-    };
-    vec![
-        label.to_string().into(),
-        (s.n as i64).into(),
-        real(s.mean),
-        real(s.median),
-        real(s.p90),
-        real(s.p95),
-        real(s.share_negative),
-        real(s.share_zero),
-        f.family.name().into(),
-        (rank as i64).into(),
-        real(f.mean),
-        bound(&f.mean_interval, false),
-        bound(&f.mean_interval, true),
-        real(f.median),
-        bound(&f.median_interval, false),
-        bound(&f.median_interval, true),
-        real(f.p95),
-        bound(&f.p95_interval, false),
-        bound(&f.p95_interval, true),
-        real(f.aic),
-        (if f.identifiable { "yes" } else { "no" }).into(),
-        Cell::from((!f.warnings.is_empty()).then(|| f.warnings.join("; "))),
-    ]
-}
-
-/// The Monday of the ISO week of a date, as the label of a weekly group.
-fn week_of(date: NaiveDate) -> String {
-    use chrono::Datelike;
-    let monday = date - chrono::Days::new(date.weekday().num_days_from_monday() as u64);
-    format!("week of {monday}")
-}
-
-/// Mann-Whitney U between every pair of groups of the non-negative delays.
-fn compare_groups(
-    obs: &[(String, NaiveDate, crate::analysis::delay::DelayObs)],
-    field: Field,
-) -> (Table, String) {
-    let mut groups: std::collections::BTreeMap<&str, Vec<f64>> = Default::default();
-    for (stratum, _, o) in obs.iter().filter(|(_, _, o)| o.delay >= 0) {
-        groups.entry(stratum.as_str()).or_default().push(o.delay as f64);
-    }
-    let names: Vec<&str> = groups.keys().copied().collect();
-    let mut table =
-        Table::new(&["group", "other", "n_group", "n_other", "u_group", "u_other", "p_value", "method"]);
-    for (i, a) in names.iter().enumerate() {
-        for b in &names[i + 1..] {
-            let (x, y) = (&groups[a], &groups[b]);
-            if x.is_empty() || y.is_empty() {
-                continue;
-            }
-            let test = crate::analysis::mannwhitney::mann_whitney(x, y);
-            table.push(vec![
-                a.to_string().into(),
-                b.to_string().into(),
-                (x.len() as i64).into(),
-                (y.len() as i64).into(),
-                test.u1.into(),
-                test.u2.into(),
-                test.p_value.into(),
-                test.method.name().into(),
-            ]);
-        }
-    }
-    let footer = format!(
-        "two-sided Mann-Whitney U of delays by {field}: exact for small samples without ties, otherwise the normal approximation with tie and continuity corrections; delays are truncated at the snapshot, so compare groups with similar reporting windows\n"
-    );
-    (table, footer)
 }

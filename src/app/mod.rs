@@ -14,5 +14,6 @@ pub mod export;
 pub mod ingest;
 pub mod pipeline;
 pub mod quality;
+pub mod queries;
 pub mod signals;
 pub mod writer;

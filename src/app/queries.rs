@@ -1,0 +1,528 @@
+//! The analysts' questions, answered once for the CLI and the HTTP API: sources, snapshots,
+//! the epidemic curve, nowcasts, delays, quality measures and alerts, each as of a snapshot.
+//! A [`Question`] is the typed request (the CLI's parsed arguments and the API's query
+//! parameters both become one); [`answer`] returns an [`Answer`] (a table and the note
+//! printed under it) or a [`QueryError`] whose kind decides the CLI's exit code and the
+//! API's status code, never its message text. The CLI and the API only parse their input
+//! into a question and render the answer.
+
+use anyhow::Result;
+use chrono::{DateTime, NaiveDate, Utc};
+
+use super::errors::{NotFound, UsageError, not_found, usage};
+use super::ingest::end_of_day;
+use crate::analysis::delay::FamilyChoice;
+use crate::config::{Config, SourceConfig};
+use crate::model::{Field, MethodChoice, SnapshotStatus};
+use crate::store::Reader;
+use crate::table::{Cell, OutputFormat, Table};
+
+/// One of the analysts' questions.
+#[derive(Debug, Clone)]
+pub enum Question<'a> {
+    /// One row per configured source: kind, snapshots, the latest applied one.
+    Sources,
+    /// The snapshots of one source, or of all.
+    Snapshots { source: Option<&'a str> },
+    /// Counts per day of a date field as of a snapshot.
+    Curve(CurveArgs<'a>),
+    /// Backfill-corrected counts with prediction intervals.
+    Nowcast(NowcastArgs<'a>),
+    /// A delay's summary and fits.
+    Delays(DelaysArgs<'a>),
+    /// The quality measures of the snapshot current at `as_of` (RFC 3339 or a date).
+    Quality { source: Option<&'a str>, as_of: Option<&'a str> },
+    /// The alerts as of `as_of`.
+    Alerts { source: Option<&'a str>, as_of: Option<&'a str> },
+}
+
+/// What a question gets: the listing, and the note printed under it as text (how `auto`
+/// chose a method, a delay comparison), empty when there is none.
+#[derive(Debug, Clone)]
+pub struct Answer {
+    pub table: Table,
+    pub note: String,
+}
+
+/// Why a question has no answer, by kind: the CLI exits 2 for `BadRequest` and 1 otherwise;
+/// the API answers 400, 404, 503 or 500. Messages name sources, fields and times, never a
+/// cell value.
+#[derive(Debug, thiserror::Error)]
+pub enum QueryError {
+    /// The question is malformed: an unknown source, field or method, a bad time.
+    #[error("{0}")]
+    BadRequest(String),
+    /// What was asked for is not there (yet): no snapshots, no applied snapshot at that time.
+    #[error("{0}")]
+    NotFound(String),
+    /// This store cannot answer it (the tables it needs are missing).
+    #[error("{0}")]
+    Unavailable(String),
+    /// Anything else: the store failed, a computation failed.
+    #[error(transparent)]
+    Failed(anyhow::Error),
+}
+
+impl From<anyhow::Error> for QueryError {
+    /// Sorts an error raised on the way by the type it carries in its chain.
+    fn from(err: anyhow::Error) -> QueryError {
+        if err.chain().any(|c| c.is::<UsageError>()) {
+            QueryError::BadRequest(err.to_string())
+        } else if err.chain().any(|c| c.is::<NotFound>()) {
+            QueryError::NotFound(err.to_string())
+        } else {
+            QueryError::Failed(err)
+        }
+    }
+}
+
+impl From<crate::store::StoreError> for QueryError {
+    fn from(err: crate::store::StoreError) -> QueryError {
+        QueryError::Failed(err.into())
+    }
+}
+
+/// Answers one question on a read-only connection.
+pub fn answer(config: &Config, reader: &Reader, question: &Question<'_>) -> Result<Answer, QueryError> {
+    let listing = |table: Table| Answer { table, note: String::new() };
+    Ok(match question {
+        Question::Sources => listing(sources_table(config, reader)?),
+        Question::Snapshots { source: name } => {
+            if let Some(name) = name {
+                source(config, name)?;
+            }
+            listing(snapshots_table(reader, *name)?)
+        }
+        Question::Curve(args) => listing(curve_table(config, reader, args)?),
+        Question::Nowcast(args) => {
+            let (table, note) = nowcast_table(config, reader, args)?;
+            Answer { table, note }
+        }
+        Question::Delays(args) => {
+            let (table, note) = delays_table(config, reader, args)?;
+            Answer { table, note }
+        }
+        Question::Quality { source: name, as_of } | Question::Alerts { source: name, as_of } => {
+            if let Some(name) = name {
+                source(config, name)?;
+            }
+            let as_of = as_of.map(parse_time_arg).transpose()?;
+            let (what, table) = match question {
+                Question::Quality { .. } => ("quality", reader.quality(*name, as_of)?),
+                _ => ("alerts", reader.alerts_table(*name, as_of)?),
+            };
+            listing(table.ok_or_else(|| {
+                QueryError::Unavailable(format!(
+                    "{what} not available in this store (the quality and alerts tables are missing)"
+                ))
+            })?)
+        }
+    })
+}
+
+/// One row per configured source: kind, snapshots, and the latest applied snapshot.
+fn sources_table(config: &Config, reader: &Reader) -> Result<Table> {
+    let mut table =
+        Table::new(&["source", "kind", "snapshots", "applied", "latest_snapshot_id", "latest_as_of"]);
+    let snapshots = reader.snapshots(None)?;
+    for source in &config.sources {
+        let own: Vec<_> = snapshots.iter().filter(|s| s.source == source.name).collect();
+        let applied: Vec<_> = own.iter().filter(|s| s.status == SnapshotStatus::Applied).collect();
+        let latest = applied.last();
+        table.push(vec![
+            source.name.clone().into(),
+            source.kind_name().into(),
+            (own.len() as i64).into(),
+            (applied.len() as i64).into(),
+            latest.map(|s| s.snapshot_id).into(),
+            latest.map(|s| s.as_of.clone()).into(),
+        ]);
+    }
+    Ok(table)
+}
+
+/// Parses TIME: RFC 3339, or a plain date meaning the end of that day (UTC).
+pub fn parse_time_arg(text: &str) -> Result<DateTime<Utc>> {
+    if let Ok(time) = DateTime::parse_from_rfc3339(text) {
+        return Ok(time.with_timezone(&Utc));
+    }
+    match NaiveDate::parse_from_str(text, "%Y-%m-%d") {
+        Ok(date) => Ok(end_of_day(date)),
+        Err(_) => Err(usage(format!("{text:?} is not an RFC 3339 time or a YYYY-MM-DD date"))),
+    }
+}
+
+/// Parses FIELD: a canonical name or short form.
+pub fn parse_field_arg(text: &str) -> Result<Field> {
+    Field::parse(text).ok_or_else(|| {
+        let names: Vec<&str> = Field::ALL.iter().map(|f| f.name()).collect();
+        usage(format!("{text:?} is not a field; use one of {}", names.join(", ")))
+    })
+}
+
+pub(crate) fn source<'c>(config: &'c Config, name: &str) -> Result<&'c SourceConfig> {
+    config.source(name).ok_or_else(|| {
+        let names: Vec<&str> = config.sources.iter().map(|s| s.name.as_str()).collect();
+        usage(format!(
+            "no source named {name:?} in {} (sources: {})",
+            config.file.display(),
+            names.join(", ")
+        ))
+    })
+}
+
+/// The listing behind `tidemark snapshots` (and the API's `snapshots`).
+fn snapshots_table(reader: &Reader, source_name: Option<&str>) -> Result<Table> {
+    let mut table = Table::new(&[
+        "snapshot_id",
+        "source",
+        "seq",
+        "as_of",
+        "status",
+        "rows",
+        "accepted",
+        "rejected",
+        "new",
+        "changed",
+        "removed",
+        "note",
+    ]);
+    for s in reader.snapshots(source_name)? {
+        table.push(vec![
+            s.snapshot_id.into(),
+            s.source.into(),
+            s.seq.into(),
+            s.as_of.into(),
+            s.status.name().into(),
+            s.rows_total.into(),
+            s.rows_accepted.into(),
+            s.rows_rejected.into(),
+            s.rows_new.into(),
+            s.rows_changed.into(),
+            s.rows_removed.into(),
+            s.note.into(),
+        ]);
+    }
+    Ok(table)
+}
+
+/// Arguments of `tidemark curve`.
+#[derive(Debug, Clone)]
+pub struct CurveArgs<'a> {
+    pub source: &'a str,
+    pub by: &'a str,
+    pub as_of: Option<&'a str>,
+    pub stratify: Option<&'a str>,
+    pub format: OutputFormat,
+}
+
+/// The listing behind `tidemark curve` (and the API's `curve`); `args.format` is not used.
+fn curve_table(config: &Config, reader: &Reader, args: &CurveArgs<'_>) -> Result<Table> {
+    source(config, args.source)?;
+    let by = parse_field_arg(args.by)?;
+    if !by.is_date() {
+        return Err(usage(format!("--by {by}: a curve needs a date field")));
+    }
+    let stratify = args.stratify.map(parse_field_arg).transpose()?;
+    if let Some(field) =
+        stratify.filter(|f| f.is_date() || matches!(f, Field::CaseKey | Field::Symptoms | Field::Conditions))
+    {
+        return Err(usage(format!(
+            "--stratify {field}: choose jurisdiction, age, sex, outcome or hospitalised"
+        )));
+    }
+    let as_of = args.as_of.map(parse_time_arg).transpose()?;
+    let snapshot = reader
+        .source_id(args.source)?
+        .map(|id| Ok::<_, anyhow::Error>((id, reader.snapshot_as_of(id, as_of)?)))
+        .transpose()?;
+    let Some((source_id, Some(snapshot_id))) = snapshot else {
+        return Err(not_found(format!("source {:?} has no applied snapshot at that time", args.source)));
+    };
+    let mut columns = vec![by.name()];
+    if let Some(field) = stratify {
+        columns.push(field.name());
+    }
+    columns.extend(["count", "snapshot_id"]);
+    let mut table = Table::new(&columns);
+    for row in reader.curve(source_id, snapshot_id, by, stratify)? {
+        let mut cells = vec![Cell::from(row.date.map(|d| d.to_string()))];
+        if stratify.is_some() {
+            cells.push(row.stratum.into());
+        }
+        cells.extend([row.count.into(), snapshot_id.into()]);
+        table.push(cells);
+    }
+    Ok(table)
+}
+
+/// Arguments of `tidemark nowcast`.
+#[derive(Debug, Clone)]
+pub struct NowcastArgs<'a> {
+    pub source: &'a str,
+    pub by: &'a str,
+    pub as_of: Option<&'a str>,
+    pub method: MethodChoice,
+    pub stratify: Option<&'a str>,
+    pub format: OutputFormat,
+}
+
+/// The listing behind `tidemark nowcast` (and the API's `nowcast`), with the note saying how
+/// `auto` chose; `args.format` is not used.
+fn nowcast_table(config: &Config, reader: &Reader, args: &NowcastArgs<'_>) -> Result<(Table, String)> {
+    use super::analyse::{self, TriangleKey};
+    source(config, args.source)?;
+    let field = parse_field_arg(args.by)?;
+    if !config.analysis.reference_fields.contains(&field) {
+        return Err(usage(format!("--by {field}: not in analysis.reference_fields, so no triangle is kept")));
+    }
+    let as_of = args.as_of.map(parse_time_arg).transpose()?;
+    let source_id =
+        reader.source_id(args.source)?.ok_or_else(|| not_found("the source has no snapshots yet"))?;
+    let snapshot_id = reader
+        .snapshot_as_of(source_id, as_of)?
+        .ok_or_else(|| not_found("the source has no applied snapshot at that time"))?;
+    let (method, note) = analyse::resolve_method(reader, source_id, field, args.method)?;
+    let mut strata = vec![TriangleKey::all(field)];
+    if let Some(text) = args.stratify {
+        let stratum_field = parse_field_arg(text)?;
+        if !config.analysis.strata.contains(&stratum_field) {
+            return Err(usage(format!("--stratify {stratum_field}: not in analysis.strata")));
+        }
+        strata = reader
+            .triangle_strata(source_id, field, stratum_field.name())?
+            .into_iter()
+            .map(|stratum| TriangleKey { field, kind: stratum_field.name().to_string(), stratum })
+            .collect();
+    }
+    let mut table = Table::new(&[
+        "ref_date",
+        "stratum",
+        "horizon",
+        "observed",
+        "median",
+        "lower50",
+        "upper50",
+        "lower90",
+        "upper90",
+        "lower95",
+        "upper95",
+        "completeness",
+        "method",
+        "snapshot_id",
+    ]);
+    for key in &strata {
+        let stored = reader.nowcast(snapshot_id, (field.name(), &key.kind, &key.stratum, method.name()))?;
+        let rows = if stored.is_empty() {
+            let tri = analyse::load_triangle(reader, source_id, snapshot_id, key, &config.analysis, 0)?;
+            analyse::run_method(
+                method,
+                &tri,
+                &config.analysis,
+                analyse::seed_for(snapshot_id, key, method.name()),
+            )
+            .rows
+        } else {
+            stored
+        };
+        for r in rows.iter().filter(|r| r.horizon <= config.analysis.max_delay) {
+            table.push(vec![
+                r.date.to_string().into(),
+                key.stratum.clone().into(),
+                (r.horizon as i64).into(),
+                r.observed.into(),
+                r.median.into(),
+                r.lower50.into(),
+                r.upper50.into(),
+                r.lower90.into(),
+                r.upper90.into(),
+                r.lower95.into(),
+                r.upper95.into(),
+                r.completeness.into(),
+                method.name().into(),
+                snapshot_id.into(),
+            ]);
+        }
+    }
+    Ok((table, note))
+}
+
+/// Printed under every nowcast table.
+pub const NOWCAST_CAUTION: &str = "Nowcasts are estimates: the intervals are prediction intervals for the count that will \
+eventually be reported, assuming the recent reporting delay holds.\n";
+
+/// Arguments of `tidemark delays`.
+#[derive(Debug, Clone)]
+pub struct DelaysArgs<'a> {
+    pub source: &'a str,
+    pub from: &'a str,
+    pub to: &'a str,
+    pub family: FamilyChoice,
+    pub as_of: Option<&'a str>,
+    pub stratify: Option<&'a str>,
+    pub by_week: bool,
+    pub compare_by: Option<&'a str>,
+    pub format: OutputFormat,
+}
+
+/// The listing behind `tidemark delays` (and the API's `delays`) and the line printed under
+/// it as text; `args.format` is not used.
+fn delays_table(config: &Config, reader: &Reader, args: &DelaysArgs<'_>) -> Result<(Table, String)> {
+    use super::analyse;
+    use crate::config::DelayEnd;
+    source(config, args.source)?;
+    let from = parse_field_arg(args.from)?;
+    let to = DelayEnd::parse(args.to)
+        .ok_or_else(|| usage(format!("--to {}: a date field or first_seen", args.to)))?;
+    if !from.is_date() {
+        return Err(usage(format!("--from {from}: a delay starts at a date field")));
+    }
+    let family = args.family.family();
+    let stratify = args.stratify.map(parse_field_arg).transpose()?;
+    let compare_by = args.compare_by.map(parse_field_arg).transpose()?;
+    let as_of = args.as_of.map(parse_time_arg).transpose()?;
+    let source_id =
+        reader.source_id(args.source)?.ok_or_else(|| not_found("the source has no snapshots yet"))?;
+    let snapshot_id = reader
+        .snapshot_as_of(source_id, as_of)?
+        .ok_or_else(|| not_found("the source has no applied snapshot at that time"))?;
+    let grouping = compare_by.or(stratify);
+    let obs = analyse::delay_observations(
+        reader,
+        source_id,
+        snapshot_id,
+        (from, to),
+        grouping,
+        &config.analysis.age_bands,
+    )?;
+    if let Some(field) = compare_by {
+        return Ok(compare_groups(&obs, field));
+    }
+    let mut groups: std::collections::BTreeMap<String, Vec<crate::analysis::delay::DelayObs>> =
+        Default::default();
+    for (stratum, start, o) in obs {
+        let label = if args.by_week { week_of(start) } else { stratum };
+        groups.entry(label).or_default().push(o);
+    }
+    let mut table = Table::new(&[
+        "stratum",
+        "n",
+        "mean_observed",
+        "median_observed",
+        "p90_observed",
+        "p95_observed",
+        "share_negative",
+        "share_zero",
+        "family",
+        "rank",
+        "mean",
+        "mean_lo",
+        "mean_hi",
+        "median",
+        "median_lo",
+        "median_hi",
+        "p95",
+        "p95_lo",
+        "p95_hi",
+        "aic",
+        "identifiable",
+        "warnings",
+    ]);
+    let bootstrap = if args.by_week { 0 } else { config.analysis.bootstrap };
+    for (label, group) in &groups {
+        let seed = analyse::seed_for(snapshot_id, &analyse::TriangleKey::all(from), label);
+        let (summary, fits) = analyse::fit_delays(group, bootstrap, seed);
+        let chosen: Vec<_> = match family {
+            Some(f) => fits.iter().enumerate().filter(|(_, fit)| fit.family == f).collect(),
+            None => fits.iter().enumerate().take(1).collect(),
+        };
+        for (rank, fit) in chosen {
+            table.push(delay_row(label, &summary, fit, rank + 1));
+        }
+    }
+    let footer = format!(
+        "delays {from} -> {} as of snapshot {snapshot_id}; fits use daily interval censoring and right truncation at each record's horizon; negative delays are counted and left out of fits\n",
+        to.name()
+    );
+    Ok((table, footer))
+}
+
+fn delay_row(
+    label: &str,
+    s: &crate::analysis::delay::DelaySummary,
+    f: &crate::analysis::delay::DelayFit,
+    rank: usize,
+) -> Vec<Cell> {
+    let real = |x: f64| Cell::from(x.is_finite().then_some(x));
+    let bound = |i: &Option<crate::analysis::delay::Interval>, upper: bool| {
+        real(i.as_ref().map(|i| if upper { i.upper } else { i.lower }).unwrap_or(f64::NAN))
+    };
+    vec![
+        label.to_string().into(),
+        (s.n as i64).into(),
+        real(s.mean),
+        real(s.median),
+        real(s.p90),
+        real(s.p95),
+        real(s.share_negative),
+        real(s.share_zero),
+        f.family.name().into(),
+        (rank as i64).into(),
+        real(f.mean),
+        bound(&f.mean_interval, false),
+        bound(&f.mean_interval, true),
+        real(f.median),
+        bound(&f.median_interval, false),
+        bound(&f.median_interval, true),
+        real(f.p95),
+        bound(&f.p95_interval, false),
+        bound(&f.p95_interval, true),
+        real(f.aic),
+        (if f.identifiable { "yes" } else { "no" }).into(),
+        Cell::from((!f.warnings.is_empty()).then(|| f.warnings.join("; "))),
+    ]
+}
+
+/// The Monday of the ISO week of a date, as the label of a weekly group.
+fn week_of(date: NaiveDate) -> String {
+    use chrono::Datelike;
+    let monday = date - chrono::Days::new(date.weekday().num_days_from_monday() as u64);
+    format!("week of {monday}")
+}
+
+/// Mann-Whitney U between every pair of groups of the non-negative delays.
+fn compare_groups(
+    obs: &[(String, NaiveDate, crate::analysis::delay::DelayObs)],
+    field: Field,
+) -> (Table, String) {
+    let mut groups: std::collections::BTreeMap<&str, Vec<f64>> = Default::default();
+    for (stratum, _, o) in obs.iter().filter(|(_, _, o)| o.delay >= 0) {
+        groups.entry(stratum.as_str()).or_default().push(o.delay as f64);
+    }
+    let names: Vec<&str> = groups.keys().copied().collect();
+    let mut table =
+        Table::new(&["group", "other", "n_group", "n_other", "u_group", "u_other", "p_value", "method"]);
+    for (i, a) in names.iter().enumerate() {
+        for b in &names[i + 1..] {
+            let (x, y) = (&groups[a], &groups[b]);
+            if x.is_empty() || y.is_empty() {
+                continue;
+            }
+            let test = crate::analysis::mannwhitney::mann_whitney(x, y);
+            table.push(vec![
+                a.to_string().into(),
+                b.to_string().into(),
+                (x.len() as i64).into(),
+                (y.len() as i64).into(),
+                test.u1.into(),
+                test.u2.into(),
+                test.p_value.into(),
+                test.method.name().into(),
+            ]);
+        }
+    }
+    let footer = format!(
+        "two-sided Mann-Whitney U of delays by {field}: exact for small samples without ties, otherwise the normal approximation with tie and continuity corrections; delays are truncated at the snapshot, so compare groups with similar reporting windows\n"
+    );
+    (table, footer)
+}
