@@ -14,7 +14,7 @@ use tidemark::app::commands::{self, CurveArgs, QueryError, UsageError};
 use tidemark::app::demo::{self, DemoOptions};
 use tidemark::config::{Config, ConfigError};
 use tidemark::demo::DEFAULT_DAYS;
-use tidemark::model::{MethodChoice, TokenScope};
+use tidemark::model::{MethodChoice, SnapshotId, TokenScope};
 use tidemark::table::OutputFormat;
 
 /// mimalloc instead of the system allocator: an ingest allocates on the parsing thread and
@@ -174,7 +174,7 @@ enum Command {
         source: String,
         /// Snapshot id (default: the latest measured one).
         #[arg(long)]
-        snapshot: Option<i64>,
+        snapshot: Option<SnapshotId>,
         #[command(flatten)]
         listing: Listing,
     },
@@ -291,10 +291,10 @@ enum AlertAction {
 #[derive(Debug, Subcommand)]
 enum SnapshotAction {
     /// Apply a held snapshot.
-    Release { id: i64 },
+    Release { id: SnapshotId },
     /// Discard a held snapshot (it stays listed as rejected).
     Reject {
-        id: i64,
+        id: SnapshotId,
         #[arg(long)]
         note: Option<String>,
     },

@@ -139,7 +139,7 @@ mod tests {
             severity: crate::model::Severity::Warning,
             summary: "onset_date missing in 31% of new records, baseline 4%".into(),
             figures: r#"{"share":0.31,"baseline":0.04,"records":412}"#.into(),
-            snapshot_id: Some(40),
+            snapshot_id: Some(crate::model::SnapshotId(40)),
             snapshot_as_of: Some("2026-03-10T23:59:59Z".into()),
             opened_at: "2026-03-11T00:01:00Z".into(),
             at: "2026-03-11T00:01:00Z".into(),

@@ -21,6 +21,7 @@ use crate::alert::rules::{
 use crate::alert::{self, DeliveryError, Outcome, Rule, Severity, Signal, email, message, webhook};
 use crate::config::{Config, SourceConfig};
 use crate::model::SnapshotStatus;
+use crate::model::{SnapshotId, SourceId};
 use crate::store::alerts::{Delivery, EvalOutcome, Finding, Lifecycle, MessageFacts, OutboxItem};
 use crate::store::{OwedAnalysis, Reader, Store};
 use crate::table::{OutputFormat, Table};
@@ -38,7 +39,14 @@ pub struct Pass {
 }
 
 impl Pass {
-    fn add(&mut self, rule: Rule, source: &str, subject: &str, outcome: Outcome, snapshot_id: Option<i64>) {
+    fn add(
+        &mut self,
+        rule: Rule,
+        source: &str,
+        subject: &str,
+        outcome: Outcome,
+        snapshot_id: Option<SnapshotId>,
+    ) {
         match outcome {
             Outcome::Signal(signal) => self.findings.push(finding(&signal, snapshot_id)),
             Outcome::Clear => self.clear.push(alert::fingerprint(rule, source, subject)),
@@ -47,7 +55,7 @@ impl Pass {
     }
 }
 
-fn finding(signal: &Signal, snapshot_id: Option<i64>) -> Finding {
+fn finding(signal: &Signal, snapshot_id: Option<SnapshotId>) -> Finding {
     let mut figures = serde_json::Map::new();
     figures.insert(signal.measure.to_string(), serde_json::json!(signal.observed));
     figures.insert("threshold".into(), serde_json::json!(signal.threshold));
@@ -156,14 +164,14 @@ pub fn snapshot_pass(config: &Config, source: &SourceConfig, outcome: &OwedAnaly
 
 fn missingness(
     reader: &Reader,
-    source_id: i64,
-    snapshot_id: i64,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
     source: &str,
     config: &Config,
     pass: &mut Pass,
 ) -> Result<()> {
     let rows = reader.quality_history(source_id, snapshot_id, "new_changed", "all")?;
-    let mut by_field: BTreeMap<String, Vec<(i64, MissingCount)>> = BTreeMap::new();
+    let mut by_field: BTreeMap<String, Vec<(SnapshotId, MissingCount)>> = BTreeMap::new();
     for r in rows {
         let count = MissingCount { missing: r.missing as u64, records: r.records as u64 };
         by_field.entry(r.field).or_default().push((r.snapshot_id, count));
@@ -192,8 +200,8 @@ fn days(first: NaiveDate, last: NaiveDate) -> Vec<String> {
 
 fn lags(
     reader: &Reader,
-    source_id: i64,
-    snapshot_id: i64,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
     source: &str,
     day: NaiveDate,
     config: &Config,
@@ -221,8 +229,8 @@ fn lags(
 
 fn counts(
     reader: &Reader,
-    source_id: i64,
-    snapshot_id: i64,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
     source: &str,
     day: NaiveDate,
     config: &Config,

@@ -12,6 +12,7 @@ use crate::analysis::nowcast::{Nowcast, NowcastRow, hazard, smooth};
 use crate::analysis::triangle::{self, Triangle};
 use crate::config::{AnalysisConfig, Config, DelayEnd, SourceConfig};
 use crate::model::{Field, MethodChoice, NowcastMethod};
+use crate::model::{SnapshotId, SourceId};
 use crate::store::{DelayRow, NowcastKey, Reader, Store};
 
 /// Horizons over which `auto` compares methods (the horizons the published figures use).
@@ -32,7 +33,7 @@ impl TriangleKey {
 }
 
 /// The day a snapshot describes (its as-of date).
-pub fn snapshot_day(reader: &Reader, snapshot_id: i64) -> Result<NaiveDate> {
+pub fn snapshot_day(reader: &Reader, snapshot_id: SnapshotId) -> Result<NaiveDate> {
     reader.snapshot_day(snapshot_id)?.ok_or_else(|| not_found(format!("no snapshot {snapshot_id}")))
 }
 
@@ -40,8 +41,8 @@ pub fn snapshot_day(reader: &Reader, snapshot_id: i64) -> Result<NaiveDate> {
 /// nowcast needs (the estimation window plus the maximum delay).
 pub fn load_triangle(
     reader: &Reader,
-    source_id: i64,
-    snapshot_id: i64,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
     key: &TriangleKey,
     analysis: &AnalysisConfig,
     extra_days: usize,
@@ -75,7 +76,7 @@ pub fn run_method(method: NowcastMethod, tri: &Triangle, analysis: &AnalysisConf
 /// source's latest stored backtest of this field; `hazard` when there is none.
 pub fn resolve_method(
     reader: &Reader,
-    source_id: i64,
+    source_id: SourceId,
     field: Field,
     requested: MethodChoice,
 ) -> Result<(NowcastMethod, String)> {
@@ -97,7 +98,7 @@ pub fn resolve_method(
 }
 
 /// A seed derived from what is being computed, so a figure is reproduced exactly.
-pub fn seed_for(snapshot_id: i64, key: &TriangleKey, label: &str) -> u64 {
+pub fn seed_for(snapshot_id: SnapshotId, key: &TriangleKey, label: &str) -> u64 {
     let text = format!("{snapshot_id}/{}/{}/{}/{label}", key.field.name(), key.kind, key.stratum);
     text.bytes().fold(0xcbf2_9ce4_8422_2325u64, |h, b| (h ^ b as u64).wrapping_mul(0x0100_0000_01b3))
 }
@@ -110,8 +111,8 @@ pub type SnapshotNowcasts = Vec<(NowcastKey, Vec<NowcastRow>)>;
 pub fn nowcast_snapshot(
     reader: &Reader,
     config: &Config,
-    source_id: i64,
-    snapshot_id: i64,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
 ) -> Result<SnapshotNowcasts> {
     let analysis = &config.analysis;
     let mut results = Vec::new();
@@ -146,8 +147,8 @@ pub fn nowcast_snapshot(
 /// many pairs were written.
 pub fn write_delay_fits(
     store: &mut Store,
-    source_id: i64,
-    snapshot_id: i64,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
     fits: &PairFits,
 ) -> Result<usize> {
     for ((from, to), fits) in fits {
@@ -174,7 +175,7 @@ pub fn backtest(
     config: &Config,
     source: &SourceConfig,
     request: &BacktestRequest,
-) -> Result<(i64, Vec<BacktestCell>, NaiveDate, NaiveDate)> {
+) -> Result<(SnapshotId, Vec<BacktestCell>, NaiveDate, NaiveDate)> {
     let reader = Reader::open(&config.store.path)?;
     let source_id =
         reader.source_id(&source.name)?.ok_or_else(|| not_found("the source has no snapshots yet"))?;
@@ -219,8 +220,8 @@ fn trim_rows(tri: &Triangle, start: usize) -> Triangle {
 
 fn store_backtest(
     store: &mut Store,
-    source_id: i64,
-    snapshot_id: i64,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
     request: &BacktestRequest,
     cells: &[BacktestCell],
     (from, to): (NaiveDate, NaiveDate),
@@ -234,8 +235,8 @@ fn store_backtest(
 /// horizon (the snapshot day minus the start date).
 pub fn delay_observations(
     reader: &Reader,
-    source_id: i64,
-    snapshot_id: i64,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
     (from, to): (Field, DelayEnd),
     stratum: Option<Field>,
     age_edges: &[u32],
@@ -275,13 +276,22 @@ pub type PairFits = Vec<((Field, DelayEnd), Vec<DelayFit>)>;
 /// of the records for all pairs, in configuration order; pairs without observations are
 /// left out. The pairs are fitted on up to two threads (each fit is pure and seeded, so the
 /// results do not depend on the order).
-pub fn delay_fits(reader: &Reader, config: &Config, source_id: i64, snapshot_id: i64) -> Result<PairFits> {
+pub fn delay_fits(
+    reader: &Reader,
+    config: &Config,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
+) -> Result<PairFits> {
     let pairs: Vec<(Field, Option<Field>)> =
         config.analysis.delays.iter().map(|&(from, to)| (from, to.field())).collect();
     let day = snapshot_day(reader, snapshot_id)?;
     let started = std::time::Instant::now();
     let counted = reader.delay_rows_of_pairs(source_id, snapshot_id, &pairs)?;
-    tracing::debug!(snapshot_id, ms = started.elapsed().as_millis() as u64, "delay observations read");
+    tracing::debug!(
+        snapshot_id = snapshot_id.0,
+        ms = started.elapsed().as_millis() as u64,
+        "delay observations read"
+    );
     let jobs: Vec<((Field, DelayEnd), Vec<DelayRow>)> =
         config.analysis.delays.iter().copied().zip(counted).collect();
     let bootstrap = config.analysis.bootstrap;

@@ -13,7 +13,7 @@ use chrono::NaiveDate;
 use super::ingest::{self, IngestOutcome};
 use super::pipeline;
 use crate::config::{self, Config, SourceConfig};
-use crate::model::{Field, SnapshotStatus};
+use crate::model::SnapshotStatus;
 use crate::store::{Reader, Store};
 use crate::table::{Cell, OutputFormat, Table};
 use crate::text::escape_path;
@@ -25,6 +25,7 @@ pub use super::queries::{
     Answer, CurveArgs, DelaysArgs, NOWCAST_CAUTION, NowcastArgs, QueryError, Question, answer,
     parse_field_arg, parse_time_arg,
 };
+use crate::model::SnapshotId;
 
 /// Mode of the folders `init` creates: owner only (they will hold extracts and the store).
 const PRIVATE_DIR: u32 = 0o700;
@@ -120,7 +121,7 @@ fn analyse_owed(store: &mut Store, config: &Config, source: &SourceConfig) -> Op
 }
 
 /// Up to `max` problems of a snapshot, for printing after an ingest.
-pub fn problem_lines(config: &Config, snapshot_id: i64, max: usize) -> Result<Vec<String>> {
+pub fn problem_lines(config: &Config, snapshot_id: SnapshotId, max: usize) -> Result<Vec<String>> {
     let reader = Reader::open(&config.store.path)?;
     Ok(reader
         .problem_lines(snapshot_id, max)?
@@ -142,7 +143,7 @@ pub fn snapshots(config: &Config, source_name: Option<&str>, format: OutputForma
 }
 
 /// `tidemark snapshots release ID`
-pub fn release(config: &Config, snapshot_id: i64) -> Result<String> {
+pub fn release(config: &Config, snapshot_id: SnapshotId) -> Result<String> {
     let mut store = Store::open(&config.store.path)?;
     let outcome = ingest::release(&mut store, config, snapshot_id)?;
     let (name, _, _) = store.snapshot_origin(snapshot_id)?;
@@ -154,52 +155,17 @@ pub fn release(config: &Config, snapshot_id: i64) -> Result<String> {
 }
 
 /// `tidemark snapshots reject ID`
-pub fn reject(config: &Config, snapshot_id: i64, note: Option<&str>) -> Result<String> {
+pub fn reject(config: &Config, snapshot_id: SnapshotId, note: Option<&str>) -> Result<String> {
     let mut store = Store::open(&config.store.path)?;
     store.reject_held(snapshot_id, note.unwrap_or("rejected by operator"))?;
     Ok(format!("snapshot {snapshot_id}: rejected; nothing of it was applied\n"))
 }
 
-/// `tidemark history CASE_KEY --source NAME`
+/// `tidemark history KEY --source NAME`: every version of one record.
 pub fn history(config: &Config, case_key: &str, source_name: &str, format: OutputFormat) -> Result<String> {
-    source(config, source_name)?;
     let reader = Reader::open(&config.store.path)?;
-    let Some(source_id) = reader.source_id(source_name)? else {
-        return Err(not_found(format!("source {source_name:?} has no snapshots yet")));
-    };
-    let versions = reader.history(source_id, case_key)?;
-    if versions.is_empty() {
-        bail!("no record with that key in source {source_name:?}");
-    }
-    let mut columns = vec!["version_id", "valid_from", "valid_to", "from_as_of"];
-    columns.extend(Field::ALL.iter().skip(1).map(|f| f.name()));
-    columns.push("invalid");
-    let mut table = Table::new(&columns);
-    for v in versions {
-        let mut row: Vec<Cell> =
-            vec![v.version_id.into(), v.valid_from.into(), v.valid_to.into(), v.from_as_of.into()];
-        row.extend(record_cells(&v.record));
-        table.push(row);
-    }
-    Ok(table.render(format))
-}
-
-/// The canonical fields of a record (without the key) as cells, plus its invalid fields.
-pub fn record_cells(r: &crate::model::CaseRecord) -> Vec<Cell> {
-    let list = |items: &Option<Vec<String>>| Cell::from(items.as_ref().map(|i| i.join(";")));
-    let mut cells: Vec<Cell> = vec![r.jurisdiction.clone().into()];
-    cells.extend(Field::DATES.iter().map(|f| Cell::from(r.date(*f).map(|d| d.to_string()))));
-    cells.push(r.outcome.clone().into());
-    cells.push(Cell::from(
-        r.age.map(|a| if a.lo == a.hi { format!("{}", a.lo) } else { format!("[{}, {})", a.lo, a.hi) }),
-    ));
-    cells.push(r.sex.clone().into());
-    cells.push(Cell::from(r.hospitalised.map(|h| if h { "yes" } else { "no" })));
-    cells.push(list(&r.symptoms));
-    cells.push(list(&r.conditions));
-    let invalid: Vec<&str> = r.invalid.iter().map(|f| f.name()).collect();
-    cells.push(Cell::from((!invalid.is_empty()).then(|| invalid.join(","))));
-    cells
+    let question = Question::History { source: source_name, case_key };
+    Ok(answer(config, &reader, &question)?.table.render(format))
 }
 
 /// `tidemark curve --source NAME --by FIELD [--as-of TIME] [--stratify FIELD]`

@@ -27,6 +27,7 @@ use super::writer::{self, Writer};
 use crate::config::{AsOfRule, Config, FolderSettings, Location, SourceConfig, UrlSettings};
 use crate::metrics::Metrics;
 use crate::model::{ExtractMeta, SnapshotStatus};
+use crate::model::{SnapshotId, SourceId};
 use crate::serve::{self, ops};
 use crate::source::folder::{self, SeenFile};
 use crate::source::http::{self, Fetched, Validators};
@@ -41,7 +42,7 @@ const HEARTBEAT_EVERY: Duration = Duration::from_secs(30);
 pub struct PollEvent {
     pub source: String,
     pub started: Instant,
-    pub snapshots: Vec<(i64, SnapshotStatus)>,
+    pub snapshots: Vec<(SnapshotId, SnapshotStatus)>,
     pub error: Option<String>,
 }
 
@@ -171,10 +172,10 @@ pub async fn run(
     Ok(())
 }
 
-async fn register_sources(writer: &Writer, config: &Arc<Config>) -> Result<Vec<i64>> {
+async fn register_sources(writer: &Writer, config: &Arc<Config>) -> Result<Vec<SourceId>> {
     let config = config.clone();
     writer
-        .run(move |store| -> Result<Vec<i64>> {
+        .run(move |store| -> Result<Vec<SourceId>> {
             let ids = config
                 .sources
                 .iter()
@@ -276,7 +277,7 @@ fn analyse_owed(shared: &Shared, source: &SourceConfig) {
 async fn source_loop(
     shared: Arc<Shared>,
     source: SourceConfig,
-    source_id: i64,
+    source_id: SourceId,
     nudge: Arc<Notify>,
     committed: Arc<Notify>,
 ) {
@@ -303,7 +304,7 @@ async fn source_loop(
     }
 }
 
-async fn initial_state(config: &Config, source: &SourceConfig, source_id: i64) -> Result<PollState> {
+async fn initial_state(config: &Config, source: &SourceConfig, source_id: SourceId) -> Result<PollState> {
     let path = config.store.path.clone();
     match &source.location {
         Location::Folder(_) => {
@@ -334,7 +335,7 @@ type PollResult = (Vec<IngestOutcome>, Option<String>);
 async fn poll(
     shared: &Arc<Shared>,
     source: &SourceConfig,
-    source_id: i64,
+    source_id: SourceId,
     state: &mut PollState,
 ) -> PollResult {
     match (&source.location, state) {
@@ -354,7 +355,7 @@ async fn poll(
 async fn finish_poll(
     shared: &Arc<Shared>,
     source: &SourceConfig,
-    source_id: i64,
+    source_id: SourceId,
     started: Instant,
     outcomes: Vec<IngestOutcome>,
     error: Option<String>,
@@ -429,7 +430,7 @@ async fn check_staleness(shared: &Arc<Shared>, source: &SourceConfig) {
 async fn poll_folder(
     shared: &Arc<Shared>,
     source: &SourceConfig,
-    source_id: i64,
+    source_id: SourceId,
     folder: &FolderSettings,
     known: &mut HashSet<(String, u64, i64)>,
 ) -> PollResult {
@@ -518,7 +519,7 @@ fn stat(path: &Path) -> Option<(u64, i64)> {
 async fn take_file(
     shared: &Arc<Shared>,
     source: &SourceConfig,
-    source_id: i64,
+    source_id: SourceId,
     file: &SeenFile,
     as_of: DateTime<Utc>,
 ) -> Result<Taken> {
@@ -574,14 +575,14 @@ async fn take_file(
 #[derive(Debug, Clone)]
 struct FailedBody {
     sha256: String,
-    snapshot_id: i64,
+    snapshot_id: SnapshotId,
     note: String,
 }
 
 async fn poll_url(
     shared: &Arc<Shared>,
     source: &SourceConfig,
-    source_id: i64,
+    source_id: SourceId,
     settings: &UrlSettings,
     client: &reqwest::Client,
     validators: &mut Validators,

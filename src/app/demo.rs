@@ -24,6 +24,7 @@ use crate::analysis::nowcast::NowcastRow;
 use crate::config::Config;
 use crate::demo::{self, COUNTY_SOURCE, LAB_SOURCE, Scenario};
 use crate::model::{Field, MethodChoice, SnapshotStatus};
+use crate::model::{SnapshotId, SourceId};
 use crate::serve::feed::{self, Feed};
 use crate::serve::{self};
 use crate::store::{Reader, Store};
@@ -198,7 +199,7 @@ fn drop_file(from: &Path, inbox: &Path) -> Result<()> {
 /// so that each day's alerts are decided before the next day's extracts arrive.
 async fn wait_for_analyses(
     analysed: &mut mpsc::UnboundedReceiver<Analysed>,
-    mut owed: Vec<i64>,
+    mut owed: Vec<SnapshotId>,
 ) -> Result<()> {
     while !owed.is_empty() {
         let analysis = tokio::time::timeout(POLL_WAIT, analysed.recv())
@@ -218,7 +219,7 @@ async fn wait_for_analyses(
 async fn wait_for_polls(
     events: &mut mpsc::UnboundedReceiver<PollEvent>,
     mark: Instant,
-) -> Result<(Vec<String>, Vec<i64>)> {
+) -> Result<(Vec<String>, Vec<SnapshotId>)> {
     let mut owed = Vec::new();
     let mut done: BTreeMap<String, String> = BTreeMap::new();
     while done.len() < 2 {
@@ -317,8 +318,8 @@ type NowcastSummary = (Vec<(NowcastRow, u32, u32)>, String, String);
 fn nowcast_against_truth(
     config: &Config,
     scenario: &Scenario,
-    county_id: i64,
-    last: i64,
+    county_id: SourceId,
+    last: SnapshotId,
 ) -> Result<NowcastSummary> {
     let source = config.source(COUNTY_SOURCE).context("county source missing")?;
     let request = BacktestRequest {

@@ -10,6 +10,7 @@ use anyhow::Result;
 use super::commands::{UsageError, parse_time_arg};
 use crate::config::Config;
 use crate::export::{ExportFormat, ExportWriter};
+use crate::model::SnapshotId;
 use crate::store::{ExportTable, Reader, time_text};
 use crate::text::escape_path;
 
@@ -29,7 +30,7 @@ pub struct ExportArgs<'a> {
 pub struct ExportOutcome {
     pub path: PathBuf,
     pub rows: u64,
-    pub snapshot_id: i64,
+    pub snapshot_id: SnapshotId,
     pub as_of: String,
     pub table: ExportTable,
 }

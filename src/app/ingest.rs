@@ -14,6 +14,7 @@ use chrono::{DateTime, NaiveDate, NaiveTime, Utc};
 use crate::config::{AsOfRule, Config, HOLD_REMOVED_MIN, SourceConfig};
 use crate::extract::{self, ParseError, ParseSummary};
 use crate::model::{ExtractKind, ExtractMeta, RowCounts, SnapshotStatus};
+use crate::model::{SnapshotId, SourceId};
 use crate::store::{Ingest, LastApplied, Plan, Store, StoreError, archive};
 use crate::text::{escape_outside, escape_path};
 
@@ -26,7 +27,7 @@ const PROGRESS_EVERY: u64 = 250_000;
 /// What became of one extract.
 #[derive(Debug, Clone)]
 pub struct IngestOutcome {
-    pub snapshot_id: i64,
+    pub snapshot_id: SnapshotId,
     pub status: SnapshotStatus,
     pub counts: RowCounts,
     pub field_problems: u64,
@@ -137,7 +138,7 @@ fn as_of_in_future(as_of: DateTime<Utc>, now: DateTime<Utc>, source: &SourceConf
 
 /// Parses a held snapshot again from the archive and applies it, without the guard (its
 /// analysis is owed again, as an applied snapshot).
-pub fn release(store: &mut Store, config: &Config, snapshot_id: i64) -> Result<IngestOutcome> {
+pub fn release(store: &mut Store, config: &Config, snapshot_id: SnapshotId) -> Result<IngestOutcome> {
     let (name, sha256, as_of) = store.snapshot_origin(snapshot_id)?;
     let Some(source) = config.source(&name) else {
         bail!("snapshot {snapshot_id} belongs to source {name:?}, which is not in the config");
@@ -204,7 +205,7 @@ fn finish(
         }
     };
     tracing::info!(
-        source = %source.name, snapshot_id, status = status.name(),
+        source = %source.name, snapshot_id = snapshot_id.0, status = status.name(),
         rows = counts.total, rejected = counts.rejected,
         new = counts.new, changed = counts.changed, removed = counts.removed,
         "extract ingested"
@@ -255,7 +256,7 @@ pub fn truncation_guard(
 
 fn unapplied(
     store: &mut Store,
-    source_id: i64,
+    source_id: SourceId,
     meta: &ExtractMeta,
     status: SnapshotStatus,
     note: String,
@@ -340,7 +341,7 @@ mod tests {
 
     #[test]
     fn guard_holds_truncated_full_extracts() {
-        let last = LastApplied { snapshot_id: 3, as_of: Utc::now(), rows_accepted: 1000 };
+        let last = LastApplied { snapshot_id: SnapshotId(3), as_of: Utc::now(), rows_accepted: 1000 };
         let plan = |accepted, removed| Plan { accepted, removed, current_before: 1000, ..Plan::default() };
         let guard = |plan: &Plan, last| truncation_guard(plan, last, 0.2, 0.05);
         assert!(guard(&plan(800, 0), Some(&last)).is_none());
@@ -349,10 +350,10 @@ mod tests {
         assert!(guard(&plan(1000, 51), Some(&last)).unwrap().contains("would remove 51"));
         assert!(guard(&plan(10, 990), None).is_none(), "first snapshot is never held");
         let small = Plan { accepted: 40, removed: 10, current_before: 50, ..Plan::default() };
-        let last_small = LastApplied { snapshot_id: 3, as_of: Utc::now(), rows_accepted: 45 };
+        let last_small = LastApplied { snapshot_id: SnapshotId(3), as_of: Utc::now(), rows_accepted: 45 };
         assert!(guard(&small, Some(&last_small)).is_none(), "ten removals (20%) are under both guards");
         let small_cut = Plan { accepted: 7, removed: 3, current_before: 10, ..Plan::default() };
-        let last_ten = LastApplied { snapshot_id: 3, as_of: Utc::now(), rows_accepted: 7 };
+        let last_ten = LastApplied { snapshot_id: SnapshotId(3), as_of: Utc::now(), rows_accepted: 7 };
         assert!(
             guard(&small_cut, Some(&last_ten))
                 .unwrap()
@@ -361,7 +362,7 @@ mod tests {
         // A writer that paused at 92% of a 3,000-record file: 241 removed, 8% of the records,
         // under the row-count guard's 20% but over the removal guard's 5%.
         let cut = Plan { accepted: 2759, removed: 241, current_before: 3000, ..Plan::default() };
-        let last_full = LastApplied { snapshot_id: 3, as_of: Utc::now(), rows_accepted: 3000 };
+        let last_full = LastApplied { snapshot_id: SnapshotId(3), as_of: Utc::now(), rows_accepted: 3000 };
         assert!(guard(&cut, Some(&last_full)).unwrap().contains("would remove 241 of 3000"));
     }
 }

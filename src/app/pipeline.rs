@@ -20,6 +20,7 @@ use super::ingest::{IngestOutcome, commit_file};
 use super::writer::Writer;
 use super::{alerting, analyse, quality};
 use crate::config::{Config, SourceConfig};
+use crate::model::SnapshotId;
 use crate::model::SnapshotStatus;
 use crate::store::{OwedAnalysis, Reader, Store};
 
@@ -99,9 +100,9 @@ pub struct StepReport {
 #[derive(Debug, Clone)]
 pub struct Analysed {
     pub source: String,
-    pub snapshot_id: i64,
+    pub snapshot_id: SnapshotId,
     /// Earlier owed snapshots of the source this analysis stands for (not analysed).
-    pub superseded: Vec<i64>,
+    pub superseded: Vec<SnapshotId>,
     pub steps: Vec<StepReport>,
 }
 
@@ -141,7 +142,7 @@ pub fn run_owed<W: Writes>(
             let (ids, by) = (superseded.clone(), kept.snapshot_id);
             writes.write(move |store| Ok(store.supersede_analyses(&ids, by)?))?;
             tracing::info!(
-                source = %source.name, snapshot_id = kept.snapshot_id, superseded = ?superseded,
+                source = %source.name, snapshot_id = kept.snapshot_id.0, superseded = ?superseded,
                 "earlier snapshots' analysis superseded by a later snapshot's"
             );
         }
@@ -161,10 +162,10 @@ pub fn run_owed<W: Writes>(
 /// owed is superseded: a later applied snapshot's nowcasts, fits, quality and alert rules
 /// describe the source as it is now, and a later snapshot's alert rules re-decide every
 /// alert the earlier ones would have raised or resolved.
-fn coalesce(owed: Vec<OwedAnalysis>) -> Vec<(OwedAnalysis, Vec<i64>)> {
+fn coalesce(owed: Vec<OwedAnalysis>) -> Vec<(OwedAnalysis, Vec<SnapshotId>)> {
     let last_applied = owed.iter().rposition(|o| o.status == SnapshotStatus::Applied);
     let last = owed.len().checked_sub(1);
-    let mut kept: Vec<(OwedAnalysis, Vec<i64>)> = Vec::new();
+    let mut kept: Vec<(OwedAnalysis, Vec<SnapshotId>)> = Vec::new();
     let mut pending_superseded = Vec::new();
     for (at, entry) in owed.into_iter().enumerate() {
         if Some(at) == last_applied || (Some(at) == last && last_applied.is_none_or(|a| at > a)) {
@@ -278,12 +279,19 @@ fn report(step: Step, started: Instant, result: Result<impl Sized>) -> StepRepor
     StepReport { step, took: started.elapsed(), error: result.err().map(|err| format!("{err:#}")) }
 }
 
-fn log_step(source: &str, snapshot_id: i64, report: &StepReport) {
+fn log_step(source: &str, snapshot_id: SnapshotId, report: &StepReport) {
     let (step, ms) = (report.step.name(), report.took.as_millis() as u64);
     match &report.error {
-        None => tracing::info!(source, snapshot_id, step, ms, outcome = "ok", "post-snapshot step"),
+        None => tracing::info!(
+            source,
+            snapshot_id = snapshot_id.0,
+            step,
+            ms,
+            outcome = "ok",
+            "post-snapshot step"
+        ),
         Some(error) => {
-            tracing::warn!(source, snapshot_id, step, ms, outcome = "failed", error = %error, "post-snapshot step")
+            tracing::warn!(source, snapshot_id = snapshot_id.0, step, ms, outcome = "failed", error = %error, "post-snapshot step")
         }
     }
 }
@@ -315,12 +323,13 @@ pub fn ingest_file(
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::model::SourceId;
     use crate::store::OwedState;
 
     fn owed(snapshot_id: i64, status: SnapshotStatus) -> OwedAnalysis {
         OwedAnalysis {
-            snapshot_id,
-            source_id: 1,
+            snapshot_id: SnapshotId(snapshot_id),
+            source_id: SourceId(1),
             status,
             rows_accepted: 0,
             rows_new: 0,
@@ -336,8 +345,10 @@ mod tests {
     fn check(entries: &[(i64, bool)], expected: &[(i64, &[i64])]) {
         let status = |applied: bool| if applied { SnapshotStatus::Applied } else { SnapshotStatus::Held };
         let input = entries.iter().map(|&(id, applied)| owed(id, status(applied))).collect();
-        let got: Vec<(i64, Vec<i64>)> =
-            coalesce(input).into_iter().map(|(kept, superseded)| (kept.snapshot_id, superseded)).collect();
+        let got: Vec<(i64, Vec<i64>)> = coalesce(input)
+            .into_iter()
+            .map(|(kept, superseded)| (kept.snapshot_id.0, superseded.iter().map(|s| s.0).collect()))
+            .collect();
         let expected: Vec<(i64, Vec<i64>)> = expected.iter().map(|(id, s)| (*id, s.to_vec())).collect();
         assert_eq!(got, expected, "{entries:?}");
     }

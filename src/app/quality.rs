@@ -8,6 +8,7 @@ use anyhow::Result;
 
 use crate::config::{Config, SourceConfig};
 use crate::model::{Field, SnapshotStatus};
+use crate::model::{SnapshotId, SourceId};
 use crate::store::quality::{LagRow, QualityRow, QualitySpec, VolumeRow};
 use crate::store::{OwedAnalysis, OwedState, Reader, Store};
 use crate::table::{Cell, OutputFormat, Table};
@@ -28,14 +29,14 @@ pub fn measure_snapshot(
     store: &mut Store,
     config: &Config,
     source: &SourceConfig,
-    snapshot_id: i64,
+    snapshot_id: SnapshotId,
 ) -> Result<usize> {
     let source_id = store.source_id(&source.name, source.kind_name(), &source.config_hash)?;
     Ok(store.write_quality(source_id, snapshot_id, &spec_for(config, source))?)
 }
 
 /// Why a snapshot has no quality measures, from where its analysis stands.
-fn unmeasured(reader: &Reader, snapshot_id: i64) -> Result<String> {
+fn unmeasured(reader: &Reader, snapshot_id: SnapshotId) -> Result<String> {
     let why = match reader.analysis_of(snapshot_id)? {
         Some(OwedAnalysis { state: OwedState::Superseded, superseded_by: Some(by), .. }) => {
             format!("its analysis was superseded by snapshot {by}, analysed in its place")
@@ -51,7 +52,7 @@ fn unmeasured(reader: &Reader, snapshot_id: i64) -> Result<String> {
 
 /// "; the analysis of snapshot N is owed ..." when the source's latest owed analysis has not
 /// run, else nothing.
-fn owed_note(reader: &Reader, source_id: i64) -> Result<String> {
+fn owed_note(reader: &Reader, source_id: SourceId) -> Result<String> {
     Ok(match reader.owed_analyses(source_id)?.last() {
         Some(owed) => format!(
             "; the analysis of snapshot {} {}",
@@ -78,7 +79,7 @@ fn owed_text(owed: &OwedAnalysis) -> String {
 pub fn quality(
     config: &Config,
     source_name: &str,
-    snapshot: Option<i64>,
+    snapshot: Option<SnapshotId>,
     format: OutputFormat,
 ) -> Result<String> {
     let reader = Reader::open(&config.store.path)?;

@@ -34,6 +34,8 @@ pub enum Question<'a> {
     Quality { source: Option<&'a str>, as_of: Option<&'a str> },
     /// The alerts as of `as_of`.
     Alerts { source: Option<&'a str>, as_of: Option<&'a str> },
+    /// Every version of one record.
+    History { source: &'a str, case_key: &'a str },
 }
 
 /// What a question gets: the listing, and the note printed under it as text (how `auto`
@@ -102,6 +104,9 @@ pub fn answer(config: &Config, reader: &Reader, question: &Question<'_>) -> Resu
             let (table, note) = delays_table(config, reader, args)?;
             Answer { table, note }
         }
+        Question::History { source: name, case_key } => {
+            listing(history_table(config, reader, name, case_key)?)
+        }
         Question::Quality { source: name, as_of } | Question::Alerts { source: name, as_of } => {
             if let Some(name) = name {
                 source(config, name)?;
@@ -118,6 +123,47 @@ pub fn answer(config: &Config, reader: &Reader, question: &Question<'_>) -> Resu
             })?)
         }
     })
+}
+
+/// Every version of one record of one source, oldest first.
+fn history_table(config: &Config, reader: &Reader, source_name: &str, case_key: &str) -> Result<Table> {
+    source(config, source_name)?;
+    let Some(source_id) = reader.source_id(source_name)? else {
+        return Err(not_found(format!("source {source_name:?} has no snapshots yet")));
+    };
+    let versions = reader.history(source_id, case_key)?;
+    if versions.is_empty() {
+        return Err(not_found(format!("no record with that key in source {source_name:?}")));
+    }
+    let mut columns = vec!["version_id", "valid_from", "valid_to", "from_as_of"];
+    columns.extend(Field::ALL.iter().skip(1).map(|f| f.name()));
+    columns.push("invalid");
+    let mut table = Table::new(&columns);
+    for v in versions {
+        let mut row: Vec<Cell> =
+            vec![v.version_id.into(), v.valid_from.into(), v.valid_to.into(), v.from_as_of.into()];
+        row.extend(record_cells(&v.record));
+        table.push(row);
+    }
+    Ok(table)
+}
+
+/// The canonical fields of a record (without the key) as cells, plus its invalid fields.
+pub fn record_cells(r: &crate::model::CaseRecord) -> Vec<Cell> {
+    let list = |items: &Option<Vec<String>>| Cell::from(items.as_ref().map(|i| i.join(";")));
+    let mut cells: Vec<Cell> = vec![r.jurisdiction.clone().into()];
+    cells.extend(Field::DATES.iter().map(|f| Cell::from(r.date(*f).map(|d| d.to_string()))));
+    cells.push(r.outcome.clone().into());
+    cells.push(Cell::from(
+        r.age.map(|a| if a.lo == a.hi { format!("{}", a.lo) } else { format!("[{}, {})", a.lo, a.hi) }),
+    ));
+    cells.push(r.sex.clone().into());
+    cells.push(Cell::from(r.hospitalised.map(|h| if h { "yes" } else { "no" })));
+    cells.push(list(&r.symptoms));
+    cells.push(list(&r.conditions));
+    let invalid: Vec<&str> = r.invalid.iter().map(|f| f.name()).collect();
+    cells.push(Cell::from((!invalid.is_empty()).then(|| invalid.join(","))));
+    cells
 }
 
 /// One row per configured source: kind, snapshots, and the latest applied snapshot.

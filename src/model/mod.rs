@@ -9,7 +9,10 @@ use std::io::Write as _;
 use chrono::{DateTime, Datelike, NaiveDate, Utc};
 use sha2::{Digest, Sha256};
 
+pub mod ids;
 pub mod vocabulary;
+
+pub use ids::{SnapshotId, SourceId};
 
 pub use vocabulary::{
     ExtractKind, Format, MethodChoice, NowcastMethod, OwedState, Rule, Severity, SnapshotStatus, TokenScope,

@@ -15,6 +15,7 @@ use rusqlite::{OptionalExtension, Transaction, params};
 
 use super::{Reader, Store, StoreError, time_text};
 use crate::model::{Rule, Severity};
+use crate::model::{SnapshotId, SourceId};
 
 /// What one rule found for one subject at one evaluation: aggregates only.
 #[derive(Debug, Clone, PartialEq)]
@@ -28,7 +29,7 @@ pub struct Finding {
     /// JSON object of the figures that tripped the rule (and its baseline).
     pub figures: String,
     /// The snapshot evaluated; an alert keeps the one that opened it.
-    pub snapshot_id: Option<i64>,
+    pub snapshot_id: Option<SnapshotId>,
 }
 
 /// Lifecycle settings of one evaluation.
@@ -53,7 +54,7 @@ pub struct MessageFacts {
     pub severity: Severity,
     pub summary: String,
     pub figures: String,
-    pub snapshot_id: Option<i64>,
+    pub snapshot_id: Option<SnapshotId>,
     pub snapshot_as_of: Option<String>,
     pub opened_at: String,
     pub at: String,
@@ -432,7 +433,7 @@ fn enqueue(tx: &Transaction<'_>, event_id: i64, channel: &str, at: &str) -> Resu
 impl Reader {
     /// When the source's latest applied snapshot was received (the staleness rule's clock:
     /// arrival, not the extract's own as-of time).
-    pub fn last_received(&self, source_id: i64) -> Result<Option<DateTime<Utc>>, StoreError> {
+    pub fn last_received(&self, source_id: SourceId) -> Result<Option<DateTime<Utc>>, StoreError> {
         let text: Option<String> = self.conn.query_row(
             "SELECT max(received_at) FROM snapshot WHERE source_id = ?1 AND status = 'applied'",
             [source_id],

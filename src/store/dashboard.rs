@@ -13,6 +13,7 @@ use rusqlite::{OptionalExtension, params};
 use super::read::cell;
 use super::{Reader, StoreError};
 use crate::model::Field;
+use crate::model::{SnapshotId, SourceId};
 use crate::table::Table;
 
 /// One line of the dashboard's list of sources.
@@ -42,7 +43,7 @@ pub struct StoredDelayFit {
 /// snapshot's day, and days from onset to that day.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct FirstSeenLag {
-    pub snapshot_id: i64,
+    pub snapshot_id: SnapshotId,
     pub day: chrono::NaiveDate,
     pub lag_days: i64,
 }
@@ -51,7 +52,7 @@ pub struct FirstSeenLag {
 /// [`MISSINGNESS_FIELDS`].
 #[derive(Debug, Clone, PartialEq)]
 pub struct SnapshotMissing {
-    pub snapshot_id: i64,
+    pub snapshot_id: SnapshotId,
     pub as_of: String,
     pub records: i64,
     pub missing: Vec<i64>,
@@ -101,8 +102,8 @@ impl Reader {
     /// that field (methods without a score last, then by name).
     pub fn nowcast_methods_ranked(
         &self,
-        source_id: i64,
-        snapshot_id: i64,
+        source_id: SourceId,
+        snapshot_id: SnapshotId,
         ref_field: Field,
         horizons: usize,
     ) -> Result<Vec<String>, StoreError> {
@@ -123,7 +124,7 @@ impl Reader {
     /// The rank-1 (lowest AIC) whole-source fit of the delay `from -> to` at `snapshot_id`.
     pub fn best_delay_fit(
         &self,
-        snapshot_id: i64,
+        snapshot_id: SnapshotId,
         from: &str,
         to: &str,
     ) -> Result<Option<StoredDelayFit>, StoreError> {
@@ -156,8 +157,8 @@ impl Reader {
     /// had an onset date then: the days from onset to that snapshot's day.
     pub fn first_seen_lags(
         &self,
-        source_id: i64,
-        until_snapshot: i64,
+        source_id: SourceId,
+        until_snapshot: SnapshotId,
     ) -> Result<Vec<FirstSeenLag>, StoreError> {
         let mut stmt = self.conn.prepare(
             "SELECT v.valid_from, substr(n.as_of, 1, 10), v.onset_date
@@ -176,13 +177,21 @@ impl Reader {
             else {
                 continue;
             };
-            out.push(FirstSeenLag { snapshot_id, day, lag_days: (day - onset).num_days() });
+            out.push(FirstSeenLag {
+                snapshot_id: SnapshotId(snapshot_id),
+                day,
+                lag_days: (day - onset).num_days(),
+            });
         }
         Ok(out)
     }
 
     /// Missing values per field among the records valid as of each of `snapshots`.
-    pub fn missingness(&self, source_id: i64, snapshots: &[i64]) -> Result<Vec<SnapshotMissing>, StoreError> {
+    pub fn missingness(
+        &self,
+        source_id: SourceId,
+        snapshots: &[SnapshotId],
+    ) -> Result<Vec<SnapshotMissing>, StoreError> {
         let counts: Vec<String> =
             MISSINGNESS_FIELDS.iter().map(|f| format!("count(*) - count({})", missing_column(*f))).collect();
         let mut stmt = self.conn.prepare(&format!(

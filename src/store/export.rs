@@ -6,6 +6,7 @@
 
 use super::read::cell;
 use super::{Reader, StoreError};
+use crate::model::{SnapshotId, SourceId};
 use crate::table::Cell;
 
 /// Which table to export.
@@ -147,8 +148,8 @@ impl Reader {
     pub fn export_rows<E: From<StoreError>>(
         &self,
         table: ExportTable,
-        source_id: i64,
-        snapshot_id: i64,
+        source_id: SourceId,
+        snapshot_id: SnapshotId,
         mut sink: impl FnMut(Vec<Cell>) -> Result<(), E>,
     ) -> Result<u64, E> {
         let mut stmt = self.conn.prepare(&table.sql()).map_err(StoreError::from)?;

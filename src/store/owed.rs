@@ -8,14 +8,15 @@ use rusqlite::{OptionalExtension, Transaction, params};
 
 use super::{Reader, Store, StoreError, time_text};
 use crate::model::SnapshotStatus;
+use crate::model::{SnapshotId, SourceId};
 
 pub use crate::model::OwedState;
 
 /// One snapshot's entry, with the snapshot's counts the alert rules read.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct OwedAnalysis {
-    pub snapshot_id: i64,
-    pub source_id: i64,
+    pub snapshot_id: SnapshotId,
+    pub source_id: SourceId,
     /// The snapshot's status now (a held snapshot may have been released since).
     pub status: SnapshotStatus,
     pub rows_accepted: u64,
@@ -23,7 +24,7 @@ pub struct OwedAnalysis {
     pub state: OwedState,
     pub attempts: i64,
     pub error: Option<String>,
-    pub superseded_by: Option<i64>,
+    pub superseded_by: Option<SnapshotId>,
 }
 
 const OWED_SELECT: &str = "SELECT o.snapshot_id, o.source_id, n.status, n.rows_accepted, n.rows_new, o.state,
@@ -46,7 +47,11 @@ fn owed_row(row: &rusqlite::Row<'_>) -> rusqlite::Result<OwedAnalysis> {
 
 /// Enters `snapshot_id` as owed, inside the transaction that commits it (again pending if it
 /// was entered before: a held snapshot that is released).
-pub(super) fn mark_pending(tx: &Transaction<'_>, source_id: i64, snapshot_id: i64) -> Result<(), StoreError> {
+pub(super) fn mark_pending(
+    tx: &Transaction<'_>,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
+) -> Result<(), StoreError> {
     tx.execute(
         "INSERT INTO analysis_owed (snapshot_id, source_id, state, updated_at) VALUES (?1, ?2, 'pending', ?3)
          ON CONFLICT (snapshot_id) DO UPDATE SET state = 'pending', error = NULL, superseded_by = NULL,
@@ -59,7 +64,7 @@ pub(super) fn mark_pending(tx: &Transaction<'_>, source_id: i64, snapshot_id: i6
 impl Reader {
     /// The snapshots of a source whose analysis is still owed (pending or failed), oldest
     /// first.
-    pub fn owed_analyses(&self, source_id: i64) -> Result<Vec<OwedAnalysis>, StoreError> {
+    pub fn owed_analyses(&self, source_id: SourceId) -> Result<Vec<OwedAnalysis>, StoreError> {
         let mut stmt = self.conn.prepare(&format!(
             "{OWED_SELECT} WHERE o.source_id = ?1 AND o.state IN ('pending', 'failed') ORDER BY o.snapshot_id"
         ))?;
@@ -69,7 +74,7 @@ impl Reader {
 
     /// Where one snapshot's analysis stands; `None` for a snapshot that owes none (failed,
     /// duplicate, or analysed before the store recorded this).
-    pub fn analysis_of(&self, snapshot_id: i64) -> Result<Option<OwedAnalysis>, StoreError> {
+    pub fn analysis_of(&self, snapshot_id: SnapshotId) -> Result<Option<OwedAnalysis>, StoreError> {
         let sql = format!("{OWED_SELECT} WHERE o.snapshot_id = ?1");
         Ok(self.conn.query_row(&sql, [snapshot_id], owed_row).optional()?)
     }
@@ -77,7 +82,7 @@ impl Reader {
 
 impl Store {
     /// Marks `snapshots` superseded by `by`, whose analysis covers them.
-    pub fn supersede_analyses(&mut self, snapshots: &[i64], by: i64) -> Result<(), StoreError> {
+    pub fn supersede_analyses(&mut self, snapshots: &[SnapshotId], by: SnapshotId) -> Result<(), StoreError> {
         let tx = self.conn.transaction()?;
         {
             let mut stmt = tx.prepare(
@@ -95,7 +100,11 @@ impl Store {
 
     /// Records the end of a snapshot's analysis: done, or failed with the reason (an error
     /// text, never a cell value) and one more attempt counted.
-    pub fn finish_analysis(&mut self, snapshot_id: i64, error: Option<&str>) -> Result<(), StoreError> {
+    pub fn finish_analysis(
+        &mut self,
+        snapshot_id: SnapshotId,
+        error: Option<&str>,
+    ) -> Result<(), StoreError> {
         let state = if error.is_some() { OwedState::Failed } else { OwedState::Done };
         self.conn.execute(
             "UPDATE analysis_owed SET state = ?2, error = ?3, attempts = attempts + 1, updated_at = ?4

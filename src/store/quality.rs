@@ -14,6 +14,7 @@ use rusqlite::{Transaction, params};
 use super::{Reader, Store, StoreError};
 use crate::analysis::quantile::quantile_of_counts;
 use crate::model::{Field, SnapshotStatus};
+use crate::model::{SnapshotId, SourceId};
 
 /// The stratum a record without a jurisdiction is counted in.
 pub const NO_JURISDICTION: &str = "(missing)";
@@ -30,7 +31,7 @@ pub struct QualitySpec {
 /// One stored quality row.
 #[derive(Debug, Clone, PartialEq)]
 pub struct QualityRow {
-    pub snapshot_id: i64,
+    pub snapshot_id: SnapshotId,
     pub scope: String,
     pub stratum_kind: String,
     pub stratum: String,
@@ -45,7 +46,7 @@ pub struct QualityRow {
 /// One stored lag row.
 #[derive(Debug, Clone, PartialEq)]
 pub struct LagRow {
-    pub snapshot_id: i64,
+    pub snapshot_id: SnapshotId,
     pub stratum_kind: String,
     pub stratum: String,
     pub ref_fields: String,
@@ -58,7 +59,7 @@ pub struct LagRow {
 /// The volume of one snapshot, from the snapshot table.
 #[derive(Debug, Clone, PartialEq)]
 pub struct VolumeRow {
-    pub snapshot_id: i64,
+    pub snapshot_id: SnapshotId,
     pub as_of: String,
     pub status: SnapshotStatus,
     pub rows_total: i64,
@@ -103,8 +104,8 @@ impl Store {
     /// the same snapshot) in one transaction. Returns the number of quality rows.
     pub fn write_quality(
         &mut self,
-        source_id: i64,
-        snapshot_id: i64,
+        source_id: SourceId,
+        snapshot_id: SnapshotId,
         spec: &QualitySpec,
     ) -> Result<usize, StoreError> {
         let tx = self.conn.transaction()?;
@@ -152,8 +153,8 @@ const CLOSED_SINCE_BASE: &str = "valid_to > ?3 AND valid_to <= ?2 AND valid_from
 /// versions current at the snapshot; both ways give the same cells (tests/it/quality.rs).
 fn field_counts(
     tx: &Transaction<'_>,
-    source_id: i64,
-    snapshot_id: i64,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
     fields: &[Field],
 ) -> Result<BTreeMap<CellKey, Counts>, StoreError> {
     if fields.is_empty() {
@@ -161,7 +162,7 @@ fn field_counts(
     }
     let Some((base_id, mut cells)) = base_counts(tx, source_id, snapshot_id, fields)? else {
         let mut cells = BTreeMap::new();
-        add_grouped(tx, (source_id, snapshot_id, 0), fields, CURRENT_AT, 1, &mut cells)?;
+        add_grouped(tx, (source_id, snapshot_id, SnapshotId(0)), fields, CURRENT_AT, 1, &mut cells)?;
         return Ok(cells);
     };
     let ids = (source_id, snapshot_id, base_id);
@@ -176,11 +177,11 @@ fn field_counts(
 /// that snapshot was measured for exactly `fields`.
 fn base_counts(
     tx: &Transaction<'_>,
-    source_id: i64,
-    snapshot_id: i64,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
     fields: &[Field],
-) -> Result<Option<(i64, Cells)>, StoreError> {
-    let base: Option<i64> = tx.query_row(
+) -> Result<Option<(SnapshotId, Cells)>, StoreError> {
+    let base: Option<SnapshotId> = tx.query_row(
         "SELECT max(snapshot_id) FROM snapshot WHERE source_id = ?1 AND status = 'applied' AND snapshot_id < ?2",
         params![source_id, snapshot_id],
         |r| r.get(0),
@@ -211,7 +212,7 @@ fn base_counts(
 /// million rows on a first snapshot only to produce a few dozen groups.
 fn add_grouped(
     tx: &Transaction<'_>,
-    (source_id, snapshot_id, base_id): (i64, i64, i64),
+    (source_id, snapshot_id, base_id): (SourceId, SnapshotId, SnapshotId),
     fields: &[Field],
     filter: &str,
     sign: i64,
@@ -288,8 +289,8 @@ fn scan_columns(fields: &[Field]) -> Vec<String> {
 
 fn insert_quality(
     tx: &Transaction<'_>,
-    source_id: i64,
-    snapshot_id: i64,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
     cells: &BTreeMap<CellKey, Counts>,
 ) -> Result<usize, StoreError> {
     let mut insert = tx.prepare(
@@ -322,8 +323,8 @@ fn insert_quality(
 /// version), grouped by jurisdiction and lag in days; quantiles are taken from the counts.
 fn write_lag(
     tx: &Transaction<'_>,
-    source_id: i64,
-    snapshot_id: i64,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
     lag_from: &[Field],
 ) -> Result<(), StoreError> {
     let names: Vec<String> = lag_from.iter().map(|f| format!("c.{}", f.name())).collect();
@@ -390,7 +391,7 @@ fn write_lag(
 
 impl Reader {
     /// The latest snapshot of a source that has quality rows.
-    pub fn latest_quality_snapshot(&self, source_id: i64) -> Result<Option<i64>, StoreError> {
+    pub fn latest_quality_snapshot(&self, source_id: SourceId) -> Result<Option<SnapshotId>, StoreError> {
         Ok(self.conn.query_row(
             "SELECT max(snapshot_id) FROM quality WHERE source_id = ?1",
             [source_id],
@@ -399,7 +400,7 @@ impl Reader {
     }
 
     /// Quality rows of one snapshot, in a stable order.
-    pub fn quality_rows(&self, snapshot_id: i64) -> Result<Vec<QualityRow>, StoreError> {
+    pub fn quality_rows(&self, snapshot_id: SnapshotId) -> Result<Vec<QualityRow>, StoreError> {
         let mut stmt = self.conn.prepare(
             "SELECT snapshot_id, scope, stratum_kind, stratum, field, records, missing, invalid,
                     share_missing, share_invalid
@@ -414,8 +415,8 @@ impl Reader {
     /// including `upto`, oldest first.
     pub fn quality_history(
         &self,
-        source_id: i64,
-        upto: i64,
+        source_id: SourceId,
+        upto: SnapshotId,
         scope: &str,
         stratum_kind: &str,
     ) -> Result<Vec<QualityRow>, StoreError> {
@@ -430,7 +431,12 @@ impl Reader {
     }
 
     /// Lag rows of one snapshot, or (with `history`) of every snapshot up to it, oldest first.
-    pub fn lag_rows(&self, source_id: i64, upto: i64, history: bool) -> Result<Vec<LagRow>, StoreError> {
+    pub fn lag_rows(
+        &self,
+        source_id: SourceId,
+        upto: SnapshotId,
+        history: bool,
+    ) -> Result<Vec<LagRow>, StoreError> {
         let mut stmt = self.conn.prepare(
             "SELECT snapshot_id, stratum_kind, stratum, ref_fields, new_records, n, median_days, p90_days
              FROM quality_lag
@@ -454,7 +460,7 @@ impl Reader {
 
     /// Volume of every snapshot of a source (any status) up to and including `upto`,
     /// oldest first.
-    pub fn volumes(&self, source_id: i64, upto: i64) -> Result<Vec<VolumeRow>, StoreError> {
+    pub fn volumes(&self, source_id: SourceId, upto: SnapshotId) -> Result<Vec<VolumeRow>, StoreError> {
         let mut stmt = self.conn.prepare(
             "SELECT snapshot_id, as_of, status, rows_total, rows_accepted, rows_new, rows_changed, rows_removed,
                     rows_rejected
@@ -482,8 +488,8 @@ impl Reader {
     /// (ISO date) up to snapshot `upto`: (as-of day, stratum kind, stratum, lag days, count).
     pub fn lag_histograms(
         &self,
-        source_id: i64,
-        upto: i64,
+        source_id: SourceId,
+        upto: SnapshotId,
         from_day: &str,
     ) -> Result<Vec<LagBin>, StoreError> {
         let mut stmt = self.conn.prepare(
@@ -502,8 +508,8 @@ impl Reader {
     /// (stratum kind, stratum, report date, count) for dates on or after `from_day`.
     pub fn report_counts(
         &self,
-        source_id: i64,
-        upto: i64,
+        source_id: SourceId,
+        upto: SnapshotId,
         from_day: &str,
     ) -> Result<Vec<(String, String, String, i64)>, StoreError> {
         let mut stmt = self.conn.prepare(

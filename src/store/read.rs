@@ -11,6 +11,7 @@ use rusqlite::{Connection, OptionalExtension, Row, params};
 
 use super::{StoreError, open_reader, parse_time, time_text};
 use crate::model::{AgeRange, CaseRecord, Field, SnapshotStatus};
+use crate::model::{SnapshotId, SourceId};
 use crate::table::Cell;
 
 pub use crate::config::AGE_BAND_EDGES;
@@ -24,7 +25,7 @@ pub struct Reader {
 /// One row of `tidemark snapshots`.
 #[derive(Debug, Clone, PartialEq)]
 pub struct SnapshotRow {
-    pub snapshot_id: i64,
+    pub snapshot_id: SnapshotId,
     pub source: String,
     pub seq: i64,
     pub as_of: String,
@@ -42,8 +43,8 @@ pub struct SnapshotRow {
 #[derive(Debug, Clone, PartialEq)]
 pub struct VersionRow {
     pub version_id: i64,
-    pub valid_from: i64,
-    pub valid_to: Option<i64>,
+    pub valid_from: SnapshotId,
+    pub valid_to: Option<SnapshotId>,
     pub from_as_of: String,
     pub record: CaseRecord,
 }
@@ -65,7 +66,7 @@ impl Reader {
         Ok(Reader { conn: open_reader(path)? })
     }
 
-    pub fn source_id(&self, name: &str) -> Result<Option<i64>, StoreError> {
+    pub fn source_id(&self, name: &str) -> Result<Option<SourceId>, StoreError> {
         Ok(self
             .conn
             .query_row("SELECT source_id FROM source WHERE name = ?1", [name], |r| r.get(0))
@@ -75,9 +76,9 @@ impl Reader {
     /// The applied snapshot that was current at `time` (the latest one when `None`).
     pub fn snapshot_as_of(
         &self,
-        source_id: i64,
+        source_id: SourceId,
         time: Option<DateTime<Utc>>,
-    ) -> Result<Option<i64>, StoreError> {
+    ) -> Result<Option<SnapshotId>, StoreError> {
         let time = time.map(time_text).unwrap_or_else(|| "9999".into());
         Ok(self
             .conn
@@ -92,7 +93,10 @@ impl Reader {
     }
 
     /// Applied snapshots of a source, oldest first: (snapshot id, as-of time).
-    pub fn applied_snapshots(&self, source_id: i64) -> Result<Vec<(i64, DateTime<Utc>)>, StoreError> {
+    pub fn applied_snapshots(
+        &self,
+        source_id: SourceId,
+    ) -> Result<Vec<(SnapshotId, DateTime<Utc>)>, StoreError> {
         let mut stmt = self.conn.prepare(
             "SELECT snapshot_id, as_of FROM snapshot WHERE source_id = ?1 AND status = 'applied'
              ORDER BY snapshot_id",
@@ -134,7 +138,7 @@ impl Reader {
     }
 
     /// Every version of one record, oldest first.
-    pub fn history(&self, source_id: i64, case_key: &str) -> Result<Vec<VersionRow>, StoreError> {
+    pub fn history(&self, source_id: SourceId, case_key: &str) -> Result<Vec<VersionRow>, StoreError> {
         let mut stmt = self.conn.prepare(&format!(
             "SELECT v.version_id, v.valid_from, v.valid_to, n.as_of, {RECORD_COLUMNS}
              FROM case_version v JOIN snapshot n ON n.snapshot_id = v.valid_from
@@ -153,7 +157,11 @@ impl Reader {
     }
 
     /// The line list of a source as it stood at snapshot `snapshot_id`, ordered by key.
-    pub fn line_list(&self, source_id: i64, snapshot_id: i64) -> Result<Vec<CaseRecord>, StoreError> {
+    pub fn line_list(
+        &self,
+        source_id: SourceId,
+        snapshot_id: SnapshotId,
+    ) -> Result<Vec<CaseRecord>, StoreError> {
         let mut stmt = self.conn.prepare(&format!(
             "SELECT {RECORD_COLUMNS} FROM case_version
              WHERE source_id = ?1 AND valid_from <= ?2 AND (valid_to IS NULL OR valid_to > ?2)
@@ -167,8 +175,8 @@ impl Reader {
     /// stratum. Days between the first and last date with no records are filled with zero.
     pub fn curve(
         &self,
-        source_id: i64,
-        snapshot_id: i64,
+        source_id: SourceId,
+        snapshot_id: SnapshotId,
         by: Field,
         stratify: Option<Field>,
     ) -> Result<Vec<CurveRow>, StoreError> {
@@ -194,7 +202,7 @@ impl Reader {
     }
 
     /// Rejected rows of a source by kind: (kind, rows).
-    pub fn reject_kinds(&self, source_id: i64) -> Result<Vec<(String, i64)>, StoreError> {
+    pub fn reject_kinds(&self, source_id: SourceId) -> Result<Vec<(String, i64)>, StoreError> {
         let mut stmt = self.conn.prepare(
             "SELECT r.kind, count(*) FROM reject r JOIN snapshot n USING (snapshot_id)
              WHERE n.source_id = ?1 GROUP BY r.kind ORDER BY count(*) DESC, r.kind",
@@ -204,7 +212,7 @@ impl Reader {
     }
 
     /// Counts of versions and current records of a source.
-    pub fn version_counts(&self, source_id: i64) -> Result<(i64, i64), StoreError> {
+    pub fn version_counts(&self, source_id: SourceId) -> Result<(i64, i64), StoreError> {
         Ok(self.conn.query_row(
             "SELECT count(*), count(*) FILTER (WHERE valid_to IS NULL) FROM case_version WHERE source_id = ?1",
             [source_id],

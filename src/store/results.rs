@@ -7,6 +7,7 @@ use rusqlite::OptionalExtension;
 
 use super::{Reader, StoreError, time_text};
 use crate::model::NowcastMethod;
+use crate::model::{SnapshotId, SourceId};
 use crate::table::Table;
 
 impl Reader {
@@ -112,7 +113,7 @@ pub struct AlertLine {
 
 impl Reader {
     /// The first `max` problems of a snapshot by line: rejects and field problems together.
-    pub fn problem_lines(&self, snapshot_id: i64, max: usize) -> Result<Vec<ProblemLine>, StoreError> {
+    pub fn problem_lines(&self, snapshot_id: SnapshotId, max: usize) -> Result<Vec<ProblemLine>, StoreError> {
         let mut stmt = self.conn.prepare(
             "SELECT line, field, kind, reason FROM (
                  SELECT line, field, kind, reason FROM reject WHERE snapshot_id = ?1
@@ -148,7 +149,7 @@ impl Reader {
     }
 
     /// The day a snapshot describes (the date of its as-of time); `None` for no such snapshot.
-    pub fn snapshot_day(&self, snapshot_id: i64) -> Result<Option<chrono::NaiveDate>, StoreError> {
+    pub fn snapshot_day(&self, snapshot_id: SnapshotId) -> Result<Option<chrono::NaiveDate>, StoreError> {
         let day: Option<String> = self
             .conn
             .query_row(
@@ -168,7 +169,7 @@ impl Reader {
     /// 0..=`max_horizon` in the source's latest backtest of `ref_field`, with that mean.
     pub fn best_backtest_method(
         &self,
-        source_id: i64,
+        source_id: SourceId,
         ref_field: &str,
         exclude: &str,
         max_horizon: usize,

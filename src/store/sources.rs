@@ -8,6 +8,7 @@ use chrono::{DateTime, Utc};
 use rusqlite::{OptionalExtension, params};
 
 use super::{Reader, Store, StoreError, time_text};
+use crate::model::{SnapshotId, SourceId};
 
 /// A file a folder source has taken (or refused to take again).
 #[derive(Debug, Clone)]
@@ -16,7 +17,7 @@ pub struct FileRecord {
     pub size: u64,
     pub mtime_ns: i64,
     pub sha256: String,
-    pub snapshot_id: Option<i64>,
+    pub snapshot_id: Option<SnapshotId>,
 }
 
 /// The end of one poll.
@@ -25,7 +26,7 @@ pub struct PollRecord {
     pub at: DateTime<Utc>,
     /// `None` on success.
     pub error: Option<String>,
-    pub snapshot_id: Option<i64>,
+    pub snapshot_id: Option<SnapshotId>,
     /// New HTTP validators after a 200, if any.
     pub validators: Option<(Option<String>, Option<String>)>,
 }
@@ -39,12 +40,12 @@ pub struct SourceStatus {
     pub last_success: Option<String>,
     pub consecutive_failures: i64,
     pub last_error: Option<String>,
-    pub last_snapshot_id: Option<i64>,
+    pub last_snapshot_id: Option<SnapshotId>,
     pub last_applied_as_of: Option<String>,
 }
 
 impl Store {
-    pub fn record_file(&mut self, source_id: i64, file: &FileRecord) -> Result<(), StoreError> {
+    pub fn record_file(&mut self, source_id: SourceId, file: &FileRecord) -> Result<(), StoreError> {
         self.conn.execute(
             "INSERT OR IGNORE INTO source_file (source_id, path, size, mtime_ns, sha256, snapshot_id, seen_at)
              VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
@@ -61,7 +62,7 @@ impl Store {
         Ok(())
     }
 
-    pub fn record_poll(&mut self, source_id: i64, poll: &PollRecord) -> Result<(), StoreError> {
+    pub fn record_poll(&mut self, source_id: SourceId, poll: &PollRecord) -> Result<(), StoreError> {
         let at = time_text(poll.at);
         self.conn.execute("INSERT OR IGNORE INTO source_health (source_id) VALUES (?1)", [source_id])?;
         match &poll.error {
@@ -102,7 +103,7 @@ impl Store {
     /// health (the poll's outcome is recorded once, by `record_poll`).
     pub fn remember_validators(
         &mut self,
-        source_id: i64,
+        source_id: SourceId,
         etag: Option<&str>,
         last_modified: Option<&str>,
     ) -> Result<(), StoreError> {
@@ -117,7 +118,7 @@ impl Store {
 
 impl Reader {
     /// Fingerprints (path, size, mtime) of every file a folder source has taken.
-    pub fn known_files(&self, source_id: i64) -> Result<HashSet<(String, u64, i64)>, StoreError> {
+    pub fn known_files(&self, source_id: SourceId) -> Result<HashSet<(String, u64, i64)>, StoreError> {
         let mut stmt =
             self.conn.prepare("SELECT path, size, mtime_ns FROM source_file WHERE source_id = ?1")?;
         let rows = stmt.query_map([source_id], |r| Ok((r.get(0)?, r.get::<_, i64>(1)? as u64, r.get(2)?)))?;
@@ -125,7 +126,7 @@ impl Reader {
     }
 
     /// The HTTP validators remembered for a URL source.
-    pub fn validators(&self, source_id: i64) -> Result<(Option<String>, Option<String>), StoreError> {
+    pub fn validators(&self, source_id: SourceId) -> Result<(Option<String>, Option<String>), StoreError> {
         Ok(self
             .conn
             .query_row(

@@ -17,6 +17,7 @@ use crate::analysis::delay::DelayFit;
 use crate::analysis::nowcast::NowcastRow;
 pub use crate::config::TriangleSpec;
 use crate::model::Field;
+use crate::model::{SnapshotId, SourceId};
 
 /// A stored nowcast's key: (ref_field, stratum_kind, stratum, method).
 pub type NowcastKey = (String, String, String, String);
@@ -51,8 +52,8 @@ pub struct DelayRow {
 /// about 12 s; this takes under one.)
 pub(super) fn record_deltas(
     conn: &Connection,
-    source_id: i64,
-    snapshot_id: i64,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
     spec: &TriangleSpec,
 ) -> rusqlite::Result<usize> {
     let kinds = spec.kinds();
@@ -195,10 +196,14 @@ impl Texts {
 impl Store {
     /// Recomputes a source's triangle from its version history (after a config change, or
     /// for a store written before triangles existed), one applied snapshot at a time.
-    pub fn rebuild_triangle(&mut self, source_id: i64, spec: &TriangleSpec) -> Result<usize, StoreError> {
+    pub fn rebuild_triangle(
+        &mut self,
+        source_id: SourceId,
+        spec: &TriangleSpec,
+    ) -> Result<usize, StoreError> {
         let tx = self.conn.transaction()?;
         tx.execute("DELETE FROM triangle WHERE source_id = ?1", [source_id])?;
-        let ids: Vec<i64> = {
+        let ids: Vec<SnapshotId> = {
             let mut stmt = tx.prepare(
                 "SELECT snapshot_id FROM snapshot WHERE source_id = ?1 AND status = 'applied' ORDER BY snapshot_id",
             )?;
@@ -217,8 +222,8 @@ impl Store {
     /// earlier one of the same key `(ref_field, stratum_kind, stratum, method)`.
     pub fn write_nowcasts(
         &mut self,
-        snapshot_id: i64,
-        source_id: i64,
+        snapshot_id: SnapshotId,
+        source_id: SourceId,
         nowcasts: &[(NowcastKey, Vec<NowcastRow>)],
     ) -> Result<(), StoreError> {
         let tx = self.conn.transaction()?;
@@ -265,8 +270,8 @@ impl Store {
     /// `snapshot_id`, ranked by AIC in the order given.
     pub fn write_delay_fits(
         &mut self,
-        snapshot_id: i64,
-        source_id: i64,
+        snapshot_id: SnapshotId,
+        source_id: SourceId,
         (from, to, kind, stratum): (&str, &str, &str, &str),
         fits: &[DelayFit],
     ) -> Result<(), StoreError> {
@@ -325,8 +330,8 @@ impl Store {
     /// Stores a backtest computed at `snapshot_id`, replacing an earlier one of that field.
     pub fn write_backtest(
         &mut self,
-        snapshot_id: i64,
-        source_id: i64,
+        snapshot_id: SnapshotId,
+        source_id: SourceId,
         ref_field: &str,
         cells: &[BacktestCell],
         (from, to, lag): (NaiveDate, NaiveDate, usize),
@@ -372,12 +377,12 @@ impl Reader {
     /// `from_ref` and the snapshots up to `until_snapshot` (the triangle as known then).
     pub fn triangle_deltas(
         &self,
-        source_id: i64,
+        source_id: SourceId,
         ref_field: Field,
         kind: &str,
         stratum: &str,
         from_ref: NaiveDate,
-        until_snapshot: i64,
+        until_snapshot: SnapshotId,
     ) -> Result<Vec<(NaiveDate, NaiveDate, f64)>, StoreError> {
         let mut stmt = self.conn.prepare_cached(
             "SELECT ref_date, snapshot_day, sum(delta) FROM triangle
@@ -402,7 +407,7 @@ impl Reader {
     /// The strata of one kind that have any count in a source's triangle.
     pub fn triangle_strata(
         &self,
-        source_id: i64,
+        source_id: SourceId,
         ref_field: Field,
         kind: &str,
     ) -> Result<Vec<String>, StoreError> {
@@ -415,7 +420,7 @@ impl Reader {
     }
 
     /// Whether a source has triangle rows at all.
-    pub fn has_triangle(&self, source_id: i64) -> Result<bool, StoreError> {
+    pub fn has_triangle(&self, source_id: SourceId) -> Result<bool, StoreError> {
         Ok(self.conn.query_row(
             "SELECT EXISTS (SELECT 1 FROM triangle WHERE source_id = ?1)",
             [source_id],
@@ -428,8 +433,8 @@ impl Reader {
     /// first appeared in the store.
     pub fn delay_rows(
         &self,
-        source_id: i64,
-        snapshot_id: i64,
+        source_id: SourceId,
+        snapshot_id: SnapshotId,
         from: Field,
         to: Option<Field>,
         stratum: Option<Field>,
@@ -484,8 +489,8 @@ impl Reader {
     /// rather than by `GROUP BY`, which sorts every record.
     pub fn delay_rows_of_pairs(
         &self,
-        source_id: i64,
-        snapshot_id: i64,
+        source_id: SourceId,
+        snapshot_id: SnapshotId,
         pairs: &[(Field, Option<Field>)],
     ) -> Result<Vec<Vec<DelayRow>>, StoreError> {
         let mut columns: Vec<Field> = Vec::new();
@@ -537,7 +542,7 @@ impl Reader {
     }
 
     /// The as-of day of every snapshot of a source, by id.
-    fn snapshot_days(&self, source_id: i64) -> Result<HashMap<i64, NaiveDate>, StoreError> {
+    fn snapshot_days(&self, source_id: SourceId) -> Result<HashMap<i64, NaiveDate>, StoreError> {
         let mut stmt = self
             .conn
             .prepare("SELECT snapshot_id, substr(as_of, 1, 10) FROM snapshot WHERE source_id = ?1")?;
@@ -555,7 +560,7 @@ impl Reader {
     /// A stored nowcast.
     pub fn nowcast(
         &self,
-        snapshot_id: i64,
+        snapshot_id: SnapshotId,
         key: (&str, &str, &str, &str),
     ) -> Result<Vec<NowcastRow>, StoreError> {
         let (ref_field, kind, stratum, method) = key;
@@ -593,8 +598,8 @@ mod tests {
     /// stratum kind. The test oracle.
     fn record_deltas_grouped(
         conn: &Connection,
-        source_id: i64,
-        snapshot_id: i64,
+        source_id: SourceId,
+        snapshot_id: SnapshotId,
         spec: &TriangleSpec,
     ) -> usize {
         let mut written = 0;
@@ -696,10 +701,10 @@ mod tests {
         for snapshot in [1, 2, 3] {
             let source = if snapshot == 3 { 2 } else { 1 };
             conn.execute("DELETE FROM triangle", []).unwrap();
-            let n_expected = record_deltas_grouped(conn, source, snapshot, &spec);
+            let n_expected = record_deltas_grouped(conn, SourceId(source), SnapshotId(snapshot), &spec);
             expected.push((n_expected, triangle(conn)));
             conn.execute("DELETE FROM triangle", []).unwrap();
-            let n_got = record_deltas(conn, source, snapshot, &spec).unwrap();
+            let n_got = record_deltas(conn, SourceId(source), SnapshotId(snapshot), &spec).unwrap();
             got.push((n_got, triangle(conn)));
         }
         assert!(expected.iter().all(|(n, rows)| *n > 0 && !rows.is_empty()));

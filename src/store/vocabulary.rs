@@ -1,11 +1,15 @@
 //! The domain vocabularies (`model::vocabulary`, the delay families) as SQL text: each is
 //! stored under its stable name, and a stored name that no longer parses is a conversion
-//! error naming the vocabulary, never a silent default.
+//! error naming the vocabulary, never a silent default. The row ids (`model::ids`) are SQL
+//! integers.
 
 use rusqlite::types::{FromSql, FromSqlError, FromSqlResult, ToSql, ToSqlOutput, ValueRef};
 
 use crate::analysis::delay::Family;
-use crate::model::{ExtractKind, NowcastMethod, OwedState, Rule, Severity, SnapshotStatus, TokenScope};
+use crate::model::{
+    ExtractKind, NowcastMethod, OwedState, Rule, Severity, SnapshotId, SnapshotStatus, SourceId, TokenScope,
+};
+use crate::table::Cell;
 
 macro_rules! stored_as_name {
     ($($name:ty),+ $(,)?) => {
@@ -25,6 +29,41 @@ macro_rules! stored_as_name {
         )+
     };
 }
+
+macro_rules! stored_as_integer {
+    ($($name:ident),+ $(,)?) => {
+        $(
+            impl ToSql for $name {
+                fn to_sql(&self) -> rusqlite::Result<ToSqlOutput<'_>> {
+                    Ok(ToSqlOutput::from(self.0))
+                }
+            }
+
+            impl FromSql for $name {
+                fn column_result(value: ValueRef<'_>) -> FromSqlResult<$name> {
+                    value.as_i64().map($name)
+                }
+            }
+        )+
+    };
+}
+
+stored_as_integer!(SnapshotId, SourceId);
+
+/// Ids in listings are plain integers.
+macro_rules! listed_as_integer {
+    ($($name:ident),+) => {
+        $(
+            impl From<$name> for Cell {
+                fn from(id: $name) -> Cell {
+                    Cell::from(id.0)
+                }
+            }
+        )+
+    };
+}
+
+listed_as_integer!(SnapshotId, SourceId);
 
 stored_as_name!(ExtractKind, NowcastMethod, OwedState, Rule, Severity, SnapshotStatus, TokenScope, Family);
 

@@ -25,6 +25,7 @@ use super::triangle::{TriangleSpec, record_deltas};
 use super::{StoreError, open_writer, parse_time, time_text};
 use crate::extract::{Problem, Row};
 use crate::model::{CaseRecord, ExtractKind, ExtractMeta, Field, RowCounts, SnapshotStatus};
+use crate::model::{SnapshotId, SourceId};
 
 /// The writer connection.
 #[derive(Debug)]
@@ -38,7 +39,7 @@ pub struct Store {
 /// The latest applied snapshot of a source, for the truncated-feed guard and ordering.
 #[derive(Debug, Clone)]
 pub struct LastApplied {
-    pub snapshot_id: i64,
+    pub snapshot_id: SnapshotId,
     pub as_of: DateTime<Utc>,
     pub rows_accepted: u64,
 }
@@ -57,8 +58,8 @@ pub struct Plan {
 /// One extract being written; see the module docs.
 pub struct Ingest<'s> {
     tx: Transaction<'s>,
-    source_id: i64,
-    snapshot_id: i64,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
     kind: ExtractKind,
     key_column: String,
     rejected: u64,
@@ -145,7 +146,7 @@ impl Store {
     }
 
     /// The id of a source, registering it (or updating its kind and config hash).
-    pub fn source_id(&mut self, name: &str, kind: &str, config_hash: &str) -> Result<i64, StoreError> {
+    pub fn source_id(&mut self, name: &str, kind: &str, config_hash: &str) -> Result<SourceId, StoreError> {
         self.conn.execute(
             "INSERT INTO source (name, kind, config_hash) VALUES (?1, ?2, ?3)
              ON CONFLICT(name) DO UPDATE SET kind = excluded.kind, config_hash = excluded.config_hash",
@@ -154,7 +155,7 @@ impl Store {
         Ok(self.conn.query_row("SELECT source_id FROM source WHERE name = ?1", [name], |r| r.get(0))?)
     }
 
-    pub fn last_applied(&self, source_id: i64) -> Result<Option<LastApplied>, StoreError> {
+    pub fn last_applied(&self, source_id: SourceId) -> Result<Option<LastApplied>, StoreError> {
         last_applied(&self.conn, source_id)
     }
 
@@ -162,7 +163,7 @@ impl Store {
     /// rejected one after it: nothing new. The same bytes as an *older*, superseded snapshot
     /// are a real full extract that restores that state, and are applied; a failed one may be
     /// retried after a mapping fix.
-    pub fn duplicate_of(&self, source_id: i64, sha256: &str) -> Result<Option<i64>, StoreError> {
+    pub fn duplicate_of(&self, source_id: SourceId, sha256: &str) -> Result<Option<SnapshotId>, StoreError> {
         Ok(self
             .conn
             .query_row(
@@ -180,11 +181,11 @@ impl Store {
     /// Records a snapshot that writes no versions (failed or duplicate).
     pub fn record_unapplied(
         &mut self,
-        source_id: i64,
+        source_id: SourceId,
         meta: &ExtractMeta,
         status: SnapshotStatus,
         note: &str,
-    ) -> Result<i64, StoreError> {
+    ) -> Result<SnapshotId, StoreError> {
         let tx = self.conn.transaction_with_behavior(TransactionBehavior::Immediate)?;
         let snapshot_id = insert_snapshot(&tx, source_id, meta, status, note)?;
         tx.commit()?;
@@ -194,7 +195,7 @@ impl Store {
     /// Starts writing a new extract: a snapshot row and an empty stage, in one transaction.
     pub fn begin(
         &mut self,
-        source_id: i64,
+        source_id: SourceId,
         meta: &ExtractMeta,
         key_column: &str,
     ) -> Result<Ingest<'_>, StoreError> {
@@ -206,7 +207,11 @@ impl Store {
     /// Starts re-applying a held snapshot (its bytes are parsed again by the caller). Refused
     /// unless it is held and no later snapshot of its source has been applied: applying it
     /// after newer data would rewrite history.
-    pub fn begin_release(&mut self, snapshot_id: i64, key_column: &str) -> Result<Ingest<'_>, StoreError> {
+    pub fn begin_release(
+        &mut self,
+        snapshot_id: SnapshotId,
+        key_column: &str,
+    ) -> Result<Ingest<'_>, StoreError> {
         let tx = self.conn.transaction_with_behavior(TransactionBehavior::Immediate)?;
         let (source_id, kind) = held_snapshot(&tx, snapshot_id)?;
         if let Some(last) = last_applied(&tx, source_id)?.filter(|l| l.snapshot_id > snapshot_id) {
@@ -221,7 +226,7 @@ impl Store {
     }
 
     /// Discards a held snapshot: it stays listed with status `rejected`, nothing is applied.
-    pub fn reject_held(&mut self, snapshot_id: i64, note: &str) -> Result<(), StoreError> {
+    pub fn reject_held(&mut self, snapshot_id: SnapshotId, note: &str) -> Result<(), StoreError> {
         let tx = self.conn.transaction_with_behavior(TransactionBehavior::Immediate)?;
         held_snapshot(&tx, snapshot_id)?;
         tx.execute(
@@ -234,7 +239,10 @@ impl Store {
     }
 
     /// The source name and SHA-256 of a snapshot (to find its archived bytes).
-    pub fn snapshot_origin(&self, snapshot_id: i64) -> Result<(String, String, DateTime<Utc>), StoreError> {
+    pub fn snapshot_origin(
+        &self,
+        snapshot_id: SnapshotId,
+    ) -> Result<(String, String, DateTime<Utc>), StoreError> {
         let found = self
             .conn
             .query_row(
@@ -254,8 +262,8 @@ impl<'s> Ingest<'s> {
     fn start(
         tx: Transaction<'s>,
         spill_dir: PathBuf,
-        source_id: i64,
-        snapshot_id: i64,
+        source_id: SourceId,
+        snapshot_id: SnapshotId,
         kind: ExtractKind,
         key_column: &str,
     ) -> Result<Ingest<'s>, StoreError> {
@@ -275,7 +283,7 @@ impl<'s> Ingest<'s> {
         })
     }
 
-    pub fn snapshot_id(&self) -> i64 {
+    pub fn snapshot_id(&self) -> SnapshotId {
         self.snapshot_id
     }
 
@@ -439,7 +447,7 @@ fn planned() -> StoreError {
 /// goes on reading (and then parsing).
 fn current_versions(
     tx: &Transaction<'_>,
-    source_id: i64,
+    source_id: SourceId,
     spill_dir: PathBuf,
 ) -> Result<Pipeline, StoreError> {
     // The last applied snapshot's size sizes the map, so it rarely grows while rows stream in.
@@ -473,7 +481,7 @@ fn current_versions(
     }
     current += chunk.len();
     pipeline.add_current(chunk)?;
-    tracing::debug!(source_id, current, "current versions read");
+    tracing::debug!(source_id = source_id.0, current, "current versions read");
     Ok(pipeline)
 }
 
@@ -486,8 +494,8 @@ const KEY_HEADROOM_DIVISOR: usize = 16;
 /// Executes one batch of the sorter's decisions, in order.
 fn execute(
     tx: &Transaction<'_>,
-    source_id: i64,
-    snapshot_id: i64,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
     scratch: &mut Scratch,
     actions: &[Action],
 ) -> Result<(), StoreError> {
@@ -543,8 +551,8 @@ fn execute(
 
 /// One version to insert.
 struct VersionRow<'r> {
-    source_id: i64,
-    snapshot_id: i64,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
     line: u64,
     record: &'r CaseRecord,
     hash: i64,
@@ -643,7 +651,7 @@ impl IsoDate {
     }
 }
 
-fn add_reject(tx: &Transaction<'_>, snapshot_id: i64, problem: &Problem) -> Result<(), StoreError> {
+fn add_reject(tx: &Transaction<'_>, snapshot_id: SnapshotId, problem: &Problem) -> Result<(), StoreError> {
     let mut stmt = tx.prepare_cached(
         "INSERT INTO reject (snapshot_id, line, field, kind, reason, raw) VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
     )?;
@@ -660,7 +668,7 @@ fn add_reject(tx: &Transaction<'_>, snapshot_id: i64, problem: &Problem) -> Resu
 
 fn add_field_problem(
     tx: &Transaction<'_>,
-    snapshot_id: i64,
+    snapshot_id: SnapshotId,
     case_key: &str,
     problem: &Problem,
 ) -> Result<(), StoreError> {
@@ -683,7 +691,11 @@ fn add_field_problem(
 /// `snapshot_id` wrote for records that had versions before: changed records, and removed
 /// ones that came back. On a source's first snapshot there are none, and the per-version
 /// look at the history is skipped. Returns the number of versions marked.
-fn mark_first_seen(tx: &Transaction<'_>, source_id: i64, snapshot_id: i64) -> Result<usize, StoreError> {
+fn mark_first_seen(
+    tx: &Transaction<'_>,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
+) -> Result<usize, StoreError> {
     let history: bool = tx.query_row(
         "SELECT EXISTS (SELECT 1 FROM snapshot WHERE source_id = ?1 AND status = 'applied' AND snapshot_id < ?2)",
         params![source_id, snapshot_id],
@@ -715,11 +727,11 @@ fn spill_dir(store: &Path) -> PathBuf {
 
 fn insert_snapshot(
     tx: &Transaction<'_>,
-    source_id: i64,
+    source_id: SourceId,
     meta: &ExtractMeta,
     status: SnapshotStatus,
     note: &str,
-) -> Result<i64, StoreError> {
+) -> Result<SnapshotId, StoreError> {
     let seq: i64 = tx.query_row(
         "SELECT coalesce(max(seq), 0) + 1 FROM snapshot WHERE source_id = ?1",
         [source_id],
@@ -741,10 +753,10 @@ fn insert_snapshot(
             note,
         ],
     )?;
-    Ok(tx.last_insert_rowid())
+    Ok(SnapshotId(tx.last_insert_rowid()))
 }
 
-fn last_applied(conn: &Connection, source_id: i64) -> Result<Option<LastApplied>, StoreError> {
+fn last_applied(conn: &Connection, source_id: SourceId) -> Result<Option<LastApplied>, StoreError> {
     Ok(conn
         .query_row(
             "SELECT snapshot_id, as_of, rows_accepted FROM snapshot
@@ -761,8 +773,11 @@ fn last_applied(conn: &Connection, source_id: i64) -> Result<Option<LastApplied>
         .optional()?)
 }
 
-fn held_snapshot(tx: &Transaction<'_>, snapshot_id: i64) -> Result<(i64, ExtractKind), StoreError> {
-    let found: Option<(i64, SnapshotStatus, ExtractKind)> = tx
+fn held_snapshot(
+    tx: &Transaction<'_>,
+    snapshot_id: SnapshotId,
+) -> Result<(SourceId, ExtractKind), StoreError> {
+    let found: Option<(SourceId, SnapshotStatus, ExtractKind)> = tx
         .query_row(
             "SELECT source_id, status, extract_kind FROM snapshot WHERE snapshot_id = ?1",
             [snapshot_id],

@@ -417,7 +417,7 @@ fn check_case(conn: &Connection, case: &Case, outcome: &IngestOutcome) -> Result
         }
     }
     if let Some(extra) = case.extra {
-        extra(conn, source_id, s)?;
+        extra(conn, source_id, s.0)?;
     }
     Ok(())
 }

@@ -1,7 +1,7 @@
 //! Delay observations read from the store: the one-scan counts the post-snapshot fits use
 //! agree with the per-pair query behind `tidemark delays`, first-seen days included.
 
-use tidemark::model::Field;
+use tidemark::model::{Field, SnapshotId};
 use tidemark::store::Reader;
 
 use crate::support::{Env, csv, day};
@@ -66,7 +66,7 @@ fn delta_days() -> Vec<Vec<String>> {
 
 /// Ingests `days` into `source` and compares, at every snapshot, the one-scan counts with
 /// the per-pair query; returns the store and the snapshot ids.
-fn compare_pairs_over(source: &str, days: &[Vec<String>]) -> (Env, Vec<i64>) {
+fn compare_pairs_over(source: &str, days: &[Vec<String>]) -> (Env, Vec<SnapshotId>) {
     let mut env = Env::new();
     let mut snapshots = Vec::new();
     for (d, rows) in days.iter().enumerate() {

@@ -14,7 +14,7 @@ use tidemark::app::daemon::{self, AnalysisGate, Hooks, PollEvent};
 use tidemark::app::ingest::commit_file;
 use tidemark::app::pipeline::Analysed;
 use tidemark::config::Config;
-use tidemark::model::SnapshotStatus;
+use tidemark::model::{SnapshotId, SnapshotStatus};
 use tidemark::store::{OwedState, Reader};
 use tokio::sync::{Notify, mpsc};
 
@@ -112,7 +112,7 @@ fn start(config: Arc<Config>, gate: Option<AnalysisGate>) -> Daemon {
 
 impl Daemon {
     /// Polls `source` now and returns the snapshots committed by polls that ended since.
-    async fn poll(&mut self, source: &str) -> Vec<(i64, SnapshotStatus)> {
+    async fn poll(&mut self, source: &str) -> Vec<(SnapshotId, SnapshotStatus)> {
         let mark = Instant::now();
         self.nudges[source].notify_one();
         let mut snapshots = Vec::new();
@@ -145,17 +145,17 @@ impl Daemon {
     }
 }
 
-fn state(config: &Config, snapshot_id: i64) -> (OwedState, Option<i64>) {
+fn state(config: &Config, snapshot_id: SnapshotId) -> (OwedState, Option<SnapshotId>) {
     let analysis = Reader::open(&config.store.path).unwrap().analysis_of(snapshot_id).unwrap().unwrap();
     (analysis.state, analysis.superseded_by)
 }
 
-fn quality_rows(config: &Config, snapshot_id: i64) -> i64 {
+fn quality_rows(config: &Config, snapshot_id: SnapshotId) -> i64 {
     let db = rusqlite::Connection::open(&config.store.path).unwrap();
     count(&db, &format!("SELECT count(*) FROM quality WHERE snapshot_id = {snapshot_id}"))
 }
 
-fn applied(snapshots: &[(i64, SnapshotStatus)]) -> Vec<i64> {
+fn applied(snapshots: &[(SnapshotId, SnapshotStatus)]) -> Vec<SnapshotId> {
     snapshots.iter().filter(|(_, s)| *s == SnapshotStatus::Applied).map(|(id, _)| *id).collect()
 }
 

@@ -101,7 +101,13 @@ fn incremental_quality_cells_equal_a_whole_scan_of_every_snapshot() {
         assert!(!incremental.is_empty(), "snapshot {snapshot_id} was measured at ingest");
         writable.execute("DELETE FROM quality WHERE snapshot_id = ?1", [snapshot_id - 1]).unwrap();
         let mut store = crate::support::open_store(&env.store_path());
-        tidemark::app::quality::measure_snapshot(&mut store, &env.config, &source, snapshot_id).unwrap();
+        tidemark::app::quality::measure_snapshot(
+            &mut store,
+            &env.config,
+            &source,
+            tidemark::model::SnapshotId(snapshot_id),
+        )
+        .unwrap();
         drop(store);
         assert_eq!(incremental, &quality_cells(&env.db(), snapshot_id), "snapshot {snapshot_id}");
         checked += incremental.len();

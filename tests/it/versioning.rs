@@ -14,19 +14,19 @@ use chrono::NaiveDate;
 
 use tidemark::app::commands;
 use tidemark::extract::{self, Row};
-use tidemark::model::{CaseRecord, Field, SnapshotStatus};
+use tidemark::model::{CaseRecord, Field, SnapshotId, SnapshotStatus, SourceId};
 use tidemark::store::{Reader, SnapshotRow, archive};
 
 use crate::support::{
     Env, TestResult, count, csv, day, integrity_check, mode, open_store, retry_locked, source_toml,
 };
 
-fn snapshot(env: &Env, snapshot_id: i64) -> SnapshotRow {
+fn snapshot(env: &Env, snapshot_id: SnapshotId) -> SnapshotRow {
     let reader = Reader::open(&env.store_path()).unwrap();
     reader.snapshots(None).unwrap().into_iter().find(|s| s.snapshot_id == snapshot_id).unwrap()
 }
 
-fn source_id(env: &Env, name: &str) -> i64 {
+fn source_id(env: &Env, name: &str) -> SourceId {
     Reader::open(&env.store_path()).unwrap().source_id(name).unwrap().unwrap()
 }
 
@@ -290,7 +290,7 @@ fn duplicate_keys_far_apart_rewrite_or_undo_the_earlier_version_exactly() -> Tes
             |r| {
                 Ok((
                     r.get::<_, i64>(0)?,
-                    r.get::<_, i64>(1)?,
+                    r.get::<_, SnapshotId>(1)?,
                     r.get::<_, i64>(2)?,
                     r.get::<_, String>(3)?,
                     r.get::<_, String>(4)?,
@@ -419,7 +419,7 @@ fn releasing_a_held_snapshot_applies_it_and_rejecting_discards_it() -> TestResul
     let held = env.ingest("full", &csv_of(&short_rows), day(4));
     assert_eq!(held.status, SnapshotStatus::Held);
     let rejects_of =
-        |id: i64| count(&env.db(), &format!("SELECT count(*) FROM reject WHERE snapshot_id = {id}"));
+        |id: SnapshotId| count(&env.db(), &format!("SELECT count(*) FROM reject WHERE snapshot_id = {id}"));
     assert_eq!(rejects_of(held.snapshot_id), 1);
 
     let text = retry_locked(|| commands::release(&env.config, held.snapshot_id))?;
@@ -467,7 +467,7 @@ fn releasing_a_held_snapshot_applies_it_and_rejecting_discards_it() -> TestResul
             .contains("not held")
     );
     assert!(
-        format!("{:#}", retry_locked(|| commands::release(&env.config, 999)).unwrap_err())
+        format!("{:#}", retry_locked(|| commands::release(&env.config, SnapshotId(999))).unwrap_err())
             .contains("no snapshot 999")
     );
     // The same bytes as the rejected extract come again: a duplicate, still not applied.
@@ -586,14 +586,15 @@ fn as_of_reads_give_what_each_snapshot_contained() -> TestResult {
     assert_eq!(reader.snapshot_as_of(id, Some(day(-1)))?, None, "nothing was known before the first");
 
     // The onset curve as of day 0 gives day 0's counts, not today's.
-    let curve = |snapshot_id: i64, stratify: Option<Field>| -> Vec<(Option<String>, Option<String>, i64)> {
-        reader
-            .curve(id, snapshot_id, Field::OnsetDate, stratify)
-            .unwrap()
-            .into_iter()
-            .map(|r| (r.date.map(|d| d.to_string()), r.stratum, r.count))
-            .collect()
-    };
+    let curve =
+        |snapshot_id: SnapshotId, stratify: Option<Field>| -> Vec<(Option<String>, Option<String>, i64)> {
+            reader
+                .curve(id, snapshot_id, Field::OnsetDate, stratify)
+                .unwrap()
+                .into_iter()
+                .map(|r| (r.date.map(|d| d.to_string()), r.stratum, r.count))
+                .collect()
+        };
     let d = |date: &str| Some(date.to_string());
     assert_eq!(
         curve(snapshots[0], None),
@@ -627,10 +628,12 @@ fn as_of_reads_give_what_each_snapshot_contained() -> TestResult {
 
     // History lists every version, each closing where the next opens.
     let history = reader.history(id, "C-0002")?;
-    let spans: Vec<(i64, Option<i64>)> = history.iter().map(|v| (v.valid_from, v.valid_to)).collect();
+    let spans: Vec<(SnapshotId, Option<SnapshotId>)> =
+        history.iter().map(|v| (v.valid_from, v.valid_to)).collect();
     assert_eq!(spans, [(snapshots[0], Some(snapshots[2])), (snapshots[3], None)]);
     let history = reader.history(id, "C-0006")?;
-    let spans: Vec<(i64, Option<i64>)> = history.iter().map(|v| (v.valid_from, v.valid_to)).collect();
+    let spans: Vec<(SnapshotId, Option<SnapshotId>)> =
+        history.iter().map(|v| (v.valid_from, v.valid_to)).collect();
     assert_eq!(spans, [(snapshots[1], Some(snapshots[2])), (snapshots[2], None)]);
     assert_eq!(history[0].from_as_of, "2026-03-02T23:59:59Z");
     for key in ["C-0001", "C-0003", "C-0004", "C-0006"] {

@@ -27,6 +27,7 @@ pub use self::page::CAUTION;
 use self::page::SourcePage;
 use self::panels::Panel;
 use crate::model::Field;
+use crate::model::{SnapshotId, SourceId};
 use crate::store::{Reader, StoreError, time_text};
 
 /// Nowcast horizons over which methods are compared when choosing the one to draw (the same
@@ -133,12 +134,12 @@ pub fn load_source_page(
     let reader = Reader::open(store)?;
     let Some(source_id) = reader.source_id(name)? else { return Ok(None) };
     let applied = reader.applied_snapshots(source_id)?;
-    let snapshots: Vec<(i64, String)> = applied.iter().map(|(id, t)| (*id, time_text(*t))).collect();
+    let snapshots: Vec<(SnapshotId, String)> = applied.iter().map(|(id, t)| (*id, time_text(*t))).collect();
     let selected = reader.snapshot_as_of(source_id, as_of)?;
     let selected = selected.and_then(|id| snapshots.iter().find(|(s, _)| *s == id).cloned());
     let (panels, alerts) = match &selected {
         Some((id, _)) => {
-            let ids: Vec<i64> = snapshots.iter().map(|(id, _)| *id).collect();
+            let ids: Vec<SnapshotId> = snapshots.iter().map(|(id, _)| *id).collect();
             (build_panels(&reader, source_id, *id, &ids)?, reader.open_alerts(name, MAX_ALERTS)?)
         }
         None => (Vec::new(), None),
@@ -155,9 +156,9 @@ pub fn load_source_page(
 
 fn build_panels(
     reader: &Reader,
-    source_id: i64,
-    snapshot_id: i64,
-    applied: &[i64],
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
+    applied: &[SnapshotId],
 ) -> Result<Vec<Panel>, DashboardError> {
     let onset =
         shape::day_counts(&reader.curve(source_id, snapshot_id, Field::OnsetDate, None)?, shape::CURVE_DAYS);

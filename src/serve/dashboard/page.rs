@@ -6,6 +6,7 @@
 use std::fmt::Write as _;
 
 use super::panels::{NumbersTable, Panel};
+use crate::model::SnapshotId;
 use crate::store::{SnapshotRow, SourceOverview};
 use crate::table::{Cell, Table};
 
@@ -20,9 +21,9 @@ department's network. Follow your jurisdiction's own protocols, case definitions
 pub struct SourcePage {
     pub name: String,
     /// Applied snapshots for the as-of selector: (id, as-of time), oldest first.
-    pub snapshots: Vec<(i64, String)>,
+    pub snapshots: Vec<(SnapshotId, String)>,
     /// The snapshot drawn: (id, as-of time).
-    pub selected: Option<(i64, String)>,
+    pub selected: Option<(SnapshotId, String)>,
     pub panels: Vec<Panel>,
     /// Open alerts; `None` when the store has no alert tables.
     pub alerts: Option<Table>,
@@ -211,7 +212,7 @@ fn cell_text(cell: &Cell) -> String {
     }
 }
 
-fn snapshots_html(rows: &[SnapshotRow], selected: Option<i64>) -> String {
+fn snapshots_html(rows: &[SnapshotRow], selected: Option<SnapshotId>) -> String {
     let mut out = String::from(
         "<section id=\"panel-snapshots\"><h2>Snapshots</h2>\n<p>Every extract received, newest first, with row counts.</p>\
          <table><thead><tr><th>snapshot</th><th>seq</th><th>as of</th><th>status</th><th>rows</th>\
@@ -260,8 +261,11 @@ mod tests {
     fn a_source_page_escapes_names_and_carries_the_caution_and_selector() {
         let page = SourcePage {
             name: "<script>x</script>".into(),
-            snapshots: vec![(1, "2026-03-01T23:59:59Z".into()), (2, "2026-03-02T23:59:59Z".into())],
-            selected: Some((1, "2026-03-01T23:59:59Z".into())),
+            snapshots: vec![
+                (SnapshotId(1), "2026-03-01T23:59:59Z".into()),
+                (SnapshotId(2), "2026-03-02T23:59:59Z".into()),
+            ],
+            selected: Some((SnapshotId(1), "2026-03-01T23:59:59Z".into())),
             panels: Vec::new(),
             alerts: None,
             snapshot_rows: Vec::new(),

@@ -7,6 +7,7 @@ use chrono::NaiveDate;
 
 use crate::analysis::delay::{self, Dist};
 use crate::analysis::nowcast::NowcastRow;
+use crate::model::SnapshotId;
 use crate::store::{CurveRow, FirstSeenLag, SnapshotMissing};
 
 /// Longest stretch of days an epidemic curve shows: the most recent ones.
@@ -44,7 +45,7 @@ pub struct Histogram {
 /// Lag percentiles of the records one snapshot brought.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct LagPoint {
-    pub snapshot_id: i64,
+    pub snapshot_id: SnapshotId,
     pub day: NaiveDate,
     pub n: usize,
     pub median: f64,
@@ -123,7 +124,7 @@ pub fn fitted_counts(dist: &Dist, hist: &Histogram) -> Vec<f64> {
 /// Median and 90th percentile of the non-negative lags of each snapshot's new records, for
 /// the last `max_points` snapshots that brought any (oldest first).
 pub fn lag_trend(lags: &[FirstSeenLag], max_points: usize) -> Vec<LagPoint> {
-    let mut groups: std::collections::BTreeMap<(i64, NaiveDate), Vec<i64>> = Default::default();
+    let mut groups: std::collections::BTreeMap<(SnapshotId, NaiveDate), Vec<i64>> = Default::default();
     for lag in lags {
         groups.entry((lag.snapshot_id, lag.day)).or_default().push(lag.lag_days);
     }
@@ -145,8 +146,8 @@ pub fn lag_trend(lags: &[FirstSeenLag], max_points: usize) -> Vec<LagPoint> {
 }
 
 /// The last `max` of `snapshots` (ids, oldest first) up to and including `selected`.
-pub fn snapshot_window(snapshots: &[i64], selected: i64, max: usize) -> Vec<i64> {
-    let upto: Vec<i64> = snapshots.iter().copied().filter(|id| *id <= selected).collect();
+pub fn snapshot_window(snapshots: &[SnapshotId], selected: SnapshotId, max: usize) -> Vec<SnapshotId> {
+    let upto: Vec<SnapshotId> = snapshots.iter().copied().filter(|id| *id <= selected).collect();
     let skip = upto.len().saturating_sub(max);
     upto[skip..].to_vec()
 }
@@ -251,7 +252,7 @@ mod tests {
     #[test]
     fn lag_trend_groups_by_snapshot_and_keeps_the_last_ones() {
         let lag = |snapshot_id: i64, day: u32, lag_days: i64| FirstSeenLag {
-            snapshot_id,
+            snapshot_id: SnapshotId(snapshot_id),
             day: date(day),
             lag_days,
         };
@@ -259,23 +260,37 @@ mod tests {
         let trend = lag_trend(&lags, 10);
         // Snapshot 3 brought only a negative lag: no point.
         assert_eq!(trend.len(), 2);
-        assert_eq!((trend[0].snapshot_id, trend[0].n, trend[0].median), (1, 2, 3.0));
+        assert_eq!((trend[0].snapshot_id, trend[0].n, trend[0].median), (SnapshotId(1), 2, 3.0));
         assert!((trend[0].p90 - 3.8).abs() < 1e-9, "type-7 p90 of [2, 4]");
-        assert_eq!(lag_trend(&lags, 1).iter().map(|p| p.snapshot_id).collect::<Vec<_>>(), vec![2]);
+        assert_eq!(lag_trend(&lags, 1).iter().map(|p| p.snapshot_id.0).collect::<Vec<_>>(), vec![2]);
     }
 
     #[test]
     fn snapshot_window_ends_at_the_selected_snapshot() {
-        assert_eq!(snapshot_window(&[1, 3, 5, 7, 9], 7, 2), vec![5, 7]);
-        assert_eq!(snapshot_window(&[1, 3], 9, 5), vec![1, 3]);
-        assert_eq!(snapshot_window(&[4, 5], 2, 5), Vec::<i64>::new());
+        let window = |ids: &[i64], selected: i64, max: usize| -> Vec<i64> {
+            let ids: Vec<SnapshotId> = ids.iter().map(|&id| SnapshotId(id)).collect();
+            snapshot_window(&ids, SnapshotId(selected), max).into_iter().map(|id| id.0).collect()
+        };
+        assert_eq!(window(&[1, 3, 5, 7, 9], 7, 2), vec![5, 7]);
+        assert_eq!(window(&[1, 3], 9, 5), vec![1, 3]);
+        assert_eq!(window(&[4, 5], 2, 5), Vec::<i64>::new());
     }
 
     #[test]
     fn missing_shares_and_their_colours() {
         let rows = [
-            SnapshotMissing { snapshot_id: 1, as_of: "a".into(), records: 4, missing: vec![0, 1, 4] },
-            SnapshotMissing { snapshot_id: 2, as_of: "b".into(), records: 0, missing: vec![0, 0, 0] },
+            SnapshotMissing {
+                snapshot_id: SnapshotId(1),
+                as_of: "a".into(),
+                records: 4,
+                missing: vec![0, 1, 4],
+            },
+            SnapshotMissing {
+                snapshot_id: SnapshotId(2),
+                as_of: "b".into(),
+                records: 0,
+                missing: vec![0, 0, 0],
+            },
         ];
         let shares = missing_shares(&rows);
         assert_eq!(shares[0], vec![Some(0.0), Some(0.25), Some(1.0)]);
