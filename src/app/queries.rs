@@ -206,14 +206,12 @@ pub fn parse_field_arg(text: &str) -> Result<Field> {
     })
 }
 
+/// The configured source called `name`; an unknown name is a usage error listing the
+/// configured ones (not the config file's path: the API answers with this message too).
 pub(crate) fn source<'c>(config: &'c Config, name: &str) -> Result<&'c SourceConfig> {
     config.source(name).ok_or_else(|| {
         let names: Vec<&str> = config.sources.iter().map(|s| s.name.as_str()).collect();
-        usage(format!(
-            "no source named {name:?} in {} (sources: {})",
-            config.file.display(),
-            names.join(", ")
-        ))
+        usage(format!("no source named {name:?} (configured sources: {})", names.join(", ")))
     })
 }
 
