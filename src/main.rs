@@ -404,7 +404,15 @@ fn run(cli: Cli) -> Result<u8> {
             let config = load(flag)?;
             match action {
                 None => commands::snapshots(&config, source.as_deref(), listing.output())?,
-                Some(SnapshotAction::Release { id }) => commands::release(&config, id)?,
+                Some(SnapshotAction::Release { id }) => {
+                    let report = commands::release(&config, id)?;
+                    print!("{}", report.text);
+                    let Some(failure) = &report.analysis_failure else { return Ok(0) };
+                    eprintln!(
+                        "error: the snapshot is released, but its analysis failed and stays owed: {failure}"
+                    );
+                    return Ok(commands::EXIT_ANALYSIS_FAILED as u8);
+                }
                 Some(SnapshotAction::Reject { id, note }) => commands::reject(&config, id, note.as_deref())?,
             }
         }

@@ -143,15 +143,21 @@ pub fn snapshots(config: &Config, source_name: Option<&str>, format: OutputForma
 }
 
 /// `tidemark snapshots release ID`
-pub fn release(config: &Config, snapshot_id: SnapshotId) -> Result<String> {
+pub fn release(config: &Config, snapshot_id: SnapshotId) -> Result<ReleaseReport> {
     let mut store = Store::open(&config.store.path)?;
     let outcome = ingest::release(&mut store, config, snapshot_id)?;
     let (name, _, _) = store.snapshot_origin(snapshot_id)?;
-    let mut text = format!("{}\n", outcome.summary(&name));
-    if let Some(failure) = config.source(&name).and_then(|source| analyse_owed(&mut store, config, source)) {
-        text.push_str(&format!("the analysis of snapshot {snapshot_id} failed and stays owed: {failure}\n"));
-    }
-    Ok(text)
+    let text = format!("{}\n", outcome.summary(&name));
+    let analysis_failure = config.source(&name).and_then(|source| analyse_owed(&mut store, config, source));
+    Ok(ReleaseReport { text, analysis_failure })
+}
+
+/// What `tidemark snapshots release` did: the line to print, and why the released snapshot's
+/// analysis failed if it did (the snapshot stays released and its analysis owed; exit 3).
+#[derive(Debug)]
+pub struct ReleaseReport {
+    pub text: String,
+    pub analysis_failure: Option<String>,
 }
 
 /// `tidemark snapshots reject ID`

@@ -282,4 +282,20 @@ fn ingest_without_analysis_leaves_it_owed_and_a_failed_analysis_exits_3() {
         run(tidemark().arg("--config").arg(&config_path).args(["status", "--format", "csv"]));
     assert_eq!(code, 0);
     assert!(stdout.contains(&format!("{third} (failed 1x)")), "status shows the owed analysis: {stdout}");
+
+    // A held snapshot released while the table is still damaged: released, and exit 3.
+    let short = dir.path().join("slow-2026-03-04.csv");
+    fs::write(&short, extract(5, 4)).unwrap();
+    let (code, stdout, stderr) = ingest(&short, &["--no-analysis"]);
+    assert_eq!(code, 0, "{stdout}{stderr}");
+    assert!(stdout.contains("held"), "35 of 40 records removed: held; {stdout}");
+    let held = reader.snapshots(Some(SLOW)).unwrap().iter().map(|s| s.snapshot_id).max().unwrap();
+    let (code, stdout, stderr) = run(tidemark()
+        .arg("--config")
+        .arg(&config_path)
+        .args(["snapshots", "release"])
+        .arg(held.to_string()));
+    assert_eq!(code, 3, "{stdout}{stderr}");
+    assert!(stdout.contains("applied") && stderr.contains("analysis failed"), "{stdout}{stderr}");
+    assert_eq!(reader.snapshots(Some(SLOW)).unwrap().last().unwrap().status, SnapshotStatus::Applied);
 }

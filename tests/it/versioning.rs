@@ -422,7 +422,7 @@ fn releasing_a_held_snapshot_applies_it_and_rejecting_discards_it() -> TestResul
         |id: SnapshotId| count(&env.db(), &format!("SELECT count(*) FROM reject WHERE snapshot_id = {id}"));
     assert_eq!(rejects_of(held.snapshot_id), 1);
 
-    let text = retry_locked(|| commands::release(&env.config, held.snapshot_id))?;
+    let text = retry_locked(|| commands::release(&env.config, held.snapshot_id))?.text;
     assert!(text.contains(&format!("snapshot {} of full: applied", held.snapshot_id)), "{text}");
     let row = snapshot(&env, held.snapshot_id);
     assert_eq!(row.status.name(), "applied");
