@@ -2,7 +2,6 @@
 //! (mixed date and age formats, sex codes, symptom lists with temperatures, an ignored and an
 //! unmapped column, a few bad dates and duplicate keys), and the next day's revision of them.
 
-#[allow(unused_imports)]
 use super::*;
 
 /// SplitMix64 (Steele, Lea and Flood 2014): tiny, fast, and good enough to vary test data.

@@ -2,7 +2,6 @@
 //! process of this binary (so its peak RSS is its own), checks the counts, and measures the
 //! cost of duplicate keys.
 
-#[allow(unused_imports)]
 use super::*;
 
 /// What one child phase reported.

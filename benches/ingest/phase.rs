@@ -2,7 +2,6 @@
 //! analysis (two timed calls), or store it the naive way (a new table per snapshot) for
 //! comparison; with the load average and peak RSS.
 
-#[allow(unused_imports)]
 use super::*;
 
 pub(crate) fn run_phase(phase: &str, args: &Args) -> Result<()> {

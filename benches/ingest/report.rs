@@ -1,7 +1,6 @@
 //! The ingest benchmark's report: the results table against the performance targets, store and
 //! archive sizes, and the facts of the machine it ran on.
 
-#[allow(unused_imports)]
 use super::*;
 
 pub(crate) fn table(lines: &[Line]) -> String {

@@ -1,6 +1,6 @@
-//! Alerts: what a detector reports. This module owns the signal vocabulary (rules,
-//! severities, the figures that tripped a rule) and, in [`rules`], the pure rule logic that
-//! turns measured inputs into signals. It does no IO and reads no clock; storing, deduplicating
+//! Alerts: what a detector reports. This module owns signals (the rule, severity and figures
+//! that tripped it; `Rule` and `Severity` themselves are vocabularies in `model`, re-exported
+//! here) and, in [`rules`], the pure rule logic that turns measured inputs into signals. It does no IO and reads no clock; storing, deduplicating
 //! and delivering alerts belong to the store and the outbox: `message` words a message,
 //! `outbox` is the retry policy, `email` and `webhook` are the channels (the lifecycle's SQL is
 //! in `store::alerts`, evaluation and the delivery loop in `app::alerting`). A signal is a prompt to

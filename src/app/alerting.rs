@@ -20,8 +20,7 @@ use crate::alert::rules::{
 };
 use crate::alert::{self, DeliveryError, Outcome, Rule, Severity, Signal, email, message, webhook};
 use crate::config::{Config, SourceConfig};
-use crate::model::SnapshotStatus;
-use crate::model::{SnapshotId, SourceId};
+use crate::model::{SnapshotId, SnapshotStatus, SourceId};
 use crate::store::alerts::{Delivery, EvalOutcome, Finding, Lifecycle, MessageFacts, OutboxItem};
 use crate::store::{OwedAnalysis, Reader, Store};
 use crate::table::{OutputFormat, Table};

@@ -11,8 +11,7 @@ use crate::analysis::delay::{self, DelayFit, DelayObs, DelaySummary, FitOptions}
 use crate::analysis::nowcast::{Nowcast, NowcastRow, hazard, smooth};
 use crate::analysis::triangle::{self, Triangle};
 use crate::config::{AnalysisConfig, Config, DelayEnd, SourceConfig};
-use crate::model::{Field, MethodChoice, NowcastMethod};
-use crate::model::{SnapshotId, SourceId};
+use crate::model::{Field, MethodChoice, NowcastMethod, SnapshotId, SourceId};
 use crate::store::{DelayRow, NowcastKey, Reader, Store};
 
 /// Horizons over which `auto` compares methods (the horizons the published figures use).

@@ -13,7 +13,7 @@ use chrono::NaiveDate;
 use super::ingest::{self, IngestOutcome};
 use super::pipeline;
 use crate::config::{self, Config, SourceConfig};
-use crate::model::SnapshotStatus;
+use crate::model::{SnapshotId, SnapshotStatus};
 use crate::store::{Reader, Store};
 use crate::table::{Cell, OutputFormat, Table};
 use crate::text::escape_path;
@@ -25,7 +25,6 @@ pub use super::queries::{
     Answer, CurveArgs, DelaysArgs, NOWCAST_CAUTION, NowcastArgs, QueryError, Question, answer,
     parse_field_arg, parse_time_arg,
 };
-use crate::model::SnapshotId;
 
 /// Mode of the folders `init` creates: owner only (they will hold extracts and the store).
 const PRIVATE_DIR: u32 = 0o700;

@@ -13,8 +13,7 @@ use chrono::{DateTime, NaiveDate, NaiveTime, Utc};
 
 use crate::config::{AsOfRule, Config, HOLD_REMOVED_MIN, SourceConfig};
 use crate::extract::{self, ParseError, ParseSummary};
-use crate::model::{ExtractKind, ExtractMeta, RowCounts, SnapshotStatus};
-use crate::model::{SnapshotId, SourceId};
+use crate::model::{ExtractKind, ExtractMeta, RowCounts, SnapshotId, SnapshotStatus, SourceId};
 use crate::store::{Ingest, LastApplied, Plan, Store, StoreError, archive};
 use crate::text::{escape_outside, escape_path};
 

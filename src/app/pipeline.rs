@@ -20,8 +20,7 @@ use super::ingest::{IngestOutcome, commit_file};
 use super::writer::Writer;
 use super::{alerting, analyse, quality};
 use crate::config::{Config, SourceConfig};
-use crate::model::SnapshotId;
-use crate::model::SnapshotStatus;
+use crate::model::{SnapshotId, SnapshotStatus};
 use crate::store::{OwedAnalysis, Reader, Store};
 
 /// Where the pipeline's writes go: each job is one short write on the writer connection.

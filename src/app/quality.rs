@@ -7,8 +7,7 @@ use super::errors::not_found;
 use anyhow::Result;
 
 use crate::config::{Config, SourceConfig};
-use crate::model::{Field, SnapshotStatus};
-use crate::model::{SnapshotId, SourceId};
+use crate::model::{Field, SnapshotId, SnapshotStatus, SourceId};
 use crate::store::quality::{LagRow, QualityRow, QualitySpec, VolumeRow};
 use crate::store::{OwedAnalysis, OwedState, Reader, Store};
 use crate::table::{Cell, OutputFormat, Table};

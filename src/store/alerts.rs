@@ -14,8 +14,7 @@ use chrono::{DateTime, Utc};
 use rusqlite::{OptionalExtension, Transaction, params};
 
 use super::{Reader, Store, StoreError, time_text};
-use crate::model::{Rule, Severity};
-use crate::model::{SnapshotId, SourceId};
+use crate::model::{Rule, Severity, SnapshotId, SourceId};
 
 /// What one rule found for one subject at one evaluation: aggregates only.
 #[derive(Debug, Clone, PartialEq)]

@@ -12,8 +12,7 @@ use rusqlite::{OptionalExtension, params};
 
 use super::read::cell;
 use super::{Reader, StoreError};
-use crate::model::Field;
-use crate::model::{SnapshotId, SourceId};
+use crate::model::{Field, SnapshotId, SourceId};
 use crate::table::Table;
 
 /// One line of the dashboard's list of sources.

@@ -7,8 +7,7 @@ use chrono::Utc;
 use rusqlite::{OptionalExtension, Transaction, params};
 
 use super::{Reader, Store, StoreError, time_text};
-use crate::model::SnapshotStatus;
-use crate::model::{SnapshotId, SourceId};
+use crate::model::{SnapshotId, SnapshotStatus, SourceId};
 
 pub use crate::model::OwedState;
 

@@ -13,8 +13,7 @@ use rusqlite::{Transaction, params};
 
 use super::{Reader, Store, StoreError};
 use crate::analysis::quantile::quantile_of_counts;
-use crate::model::{Field, SnapshotStatus};
-use crate::model::{SnapshotId, SourceId};
+use crate::model::{Field, SnapshotId, SnapshotStatus, SourceId};
 
 /// The stratum a record without a jurisdiction is counted in.
 pub const NO_JURISDICTION: &str = "(missing)";

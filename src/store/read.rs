@@ -10,8 +10,7 @@ use rusqlite::types::ValueRef;
 use rusqlite::{Connection, OptionalExtension, Row, params};
 
 use super::{StoreError, open_reader, parse_time, time_text};
-use crate::model::{AgeRange, CaseRecord, Field, SnapshotStatus};
-use crate::model::{SnapshotId, SourceId};
+use crate::model::{AgeRange, CaseRecord, Field, SnapshotId, SnapshotStatus, SourceId};
 use crate::table::Cell;
 
 pub use crate::config::AGE_BAND_EDGES;

@@ -6,8 +6,7 @@ use chrono::{DateTime, Utc};
 use rusqlite::OptionalExtension;
 
 use super::{Reader, StoreError, time_text};
-use crate::model::NowcastMethod;
-use crate::model::{SnapshotId, SourceId};
+use crate::model::{NowcastMethod, SnapshotId, SourceId};
 use crate::table::Table;
 
 impl Reader {

@@ -16,8 +16,7 @@ use crate::analysis::backtest::BacktestCell;
 use crate::analysis::delay::DelayFit;
 use crate::analysis::nowcast::NowcastRow;
 pub use crate::config::TriangleSpec;
-use crate::model::Field;
-use crate::model::{SnapshotId, SourceId};
+use crate::model::{Field, SnapshotId, SourceId};
 
 /// A stored nowcast's key: (ref_field, stratum_kind, stratum, method).
 pub type NowcastKey = (String, String, String, String);

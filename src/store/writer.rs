@@ -24,8 +24,9 @@ use super::lock::{self, WriterLock};
 use super::triangle::{TriangleSpec, record_deltas};
 use super::{StoreError, open_writer, parse_time, time_text};
 use crate::extract::{Problem, Row};
-use crate::model::{CaseRecord, ExtractKind, ExtractMeta, Field, RowCounts, SnapshotStatus};
-use crate::model::{SnapshotId, SourceId};
+use crate::model::{
+    CaseRecord, ExtractKind, ExtractMeta, Field, RowCounts, SnapshotId, SnapshotStatus, SourceId,
+};
 
 /// The writer connection.
 #[derive(Debug)]

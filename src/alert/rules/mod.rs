@@ -1,6 +1,7 @@
-//! The alert rules: measured aggregates in, an [`Outcome`] out. One input type and one
-//! parameter type per rule, plain numbers and vectors so the caller can fill them from SQL;
-//! each default is documented with its reason. Pure: no IO, no clock (the current time is an
+//! The alert rules: measured aggregates in, an [`Outcome`] out, one file per rule family.
+//! One input type and one parameter type per rule, plain numbers and vectors so the caller can
+//! fill them from SQL; the parameter types, each default documented with its reason, live in
+//! `config::rules` (the config reads them) and are re-exported here. Pure: no IO, no clock (the current time is an
 //! argument), no store types. Summaries carry aggregates only, never a patient-level value.
 //!
 //! Severity mapping (see [`Severity`]):

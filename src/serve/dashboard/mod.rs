@@ -26,8 +26,7 @@ use chrono::{DateTime, NaiveDate, Utc};
 pub use self::page::CAUTION;
 use self::page::SourcePage;
 use self::panels::Panel;
-use crate::model::Field;
-use crate::model::{SnapshotId, SourceId};
+use crate::model::{Field, SnapshotId, SourceId};
 use crate::store::{Reader, StoreError, time_text};
 
 /// Nowcast horizons over which methods are compared when choosing the one to draw (the same
