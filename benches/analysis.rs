@@ -39,6 +39,7 @@ fn triangles(strata: usize) -> Vec<tidemark::analysis::triangle::Triangle> {
                 delay_after: delay,
                 shift_day: None,
                 dispersion: None,
+                calendar: None,
             };
             simulate::simulate(&scenario, 100 + k as u64).0
         })

@@ -114,7 +114,7 @@ enum Command {
         by: String,
         #[arg(long, value_name = "TIME")]
         as_of: Option<String>,
-        /// hazard, smooth, or auto (the better one in the source's latest backtest).
+        /// auto (the best matured rolling score; see `tidemark scores`), hazard, smooth or ensemble.
         #[arg(long, value_enum, default_value_t = MethodChoice::Auto)]
         method: MethodChoice,
         /// jurisdiction, age or sex (one nowcast per stratum).
@@ -123,7 +123,19 @@ enum Command {
         #[command(flatten)]
         listing: Listing,
     },
-    /// Score past nowcasts against what arrived later.
+    /// Rolling scores of the stored nowcasts whose truth has matured (they drive `auto`).
+    Scores {
+        #[arg(long)]
+        source: String,
+        #[arg(long, value_name = "FIELD")]
+        by: String,
+        /// Scores matured by the snapshot current at this time (default: the latest).
+        #[arg(long, value_name = "TIME")]
+        as_of: Option<String>,
+        #[command(flatten)]
+        listing: Listing,
+    },
+    /// Score past nowcasts against what arrived later (ad hoc; never changes what `auto` chooses).
     Backtest {
         #[arg(long)]
         source: String,
@@ -439,6 +451,10 @@ fn run(cli: Cli) -> Result<u8> {
                 format: listing.output(),
             };
             commands::nowcast(&load(flag)?, &args)?
+        }
+        Command::Scores { source, by, as_of, listing } => {
+            let args = commands::ScoresArgs { source: &source, by: &by, as_of: as_of.as_deref() };
+            commands::scores(&load(flag)?, &args, listing.output())?
         }
         Command::Backtest { source, by, from, to, lag, listing } => {
             let args = commands::BacktestArgs {

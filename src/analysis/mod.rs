@@ -13,5 +13,6 @@ pub mod nowcast;
 mod numeric;
 pub mod quantile;
 pub mod score;
+pub mod scoring;
 pub mod simulate;
 pub mod triangle;

@@ -6,7 +6,7 @@
 //! known on each snapshot day; the returned truth is the eventual count of each reference day
 //! (everything reported by delay D). Deterministic for a seed; no IO, no clock.
 
-use chrono::{Days, NaiveDate};
+use chrono::{Datelike, Days, NaiveDate};
 use rand::rngs::StdRng;
 use rand::{Rng, SeedableRng};
 use rand_distr::{Binomial, Distribution, Gamma, Poisson};
@@ -37,6 +37,31 @@ pub struct Scenario {
     pub shift_day: Option<usize>,
     /// Negative-binomial size k of the daily counts (variance mu + mu^2 / k); `None`: Poisson.
     pub dispersion: Option<f64>,
+    /// When reports can be made (weekends, holidays); `None`: every day alike.
+    pub calendar: Option<ReportCalendar>,
+}
+
+/// The reporting calendar: a case due to be reported on a day is reported then with that
+/// day's probability, and otherwise carried to the next day (a weekend lull and a catch-up
+/// on the first working day). Cases never go past the maximum delay.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ReportCalendar {
+    /// Probability of reporting on each weekday, Monday first.
+    pub weekday: [f64; 7],
+    /// Days (as offsets from the first reference day) on which nothing is reported.
+    pub closed: Vec<usize>,
+}
+
+impl ReportCalendar {
+    /// Probability that a case due on day `day` (offset from the first reference day) is
+    /// reported that day.
+    pub fn share(&self, day: usize) -> f64 {
+        if self.closed.contains(&day) {
+            return 0.0;
+        }
+        let date = SIMULATION_START + Days::new(day as u64);
+        self.weekday[date.weekday().num_days_from_monday() as usize].clamp(0.0, 1.0)
+    }
 }
 
 impl Scenario {
@@ -50,6 +75,7 @@ impl Scenario {
             delay_after: delay,
             shift_day: None,
             dispersion: None,
+            calendar: None,
         }
     }
 
@@ -70,6 +96,7 @@ impl Scenario {
             delay_after: after,
             shift_day: Some(shift_day),
             dispersion: None,
+            calendar: None,
         }
     }
 
@@ -88,7 +115,11 @@ pub fn simulate(s: &Scenario, seed: u64) -> (Triangle, Vec<f64>) {
         .map(|t| {
             let mean = s.incidence.get(t).copied().unwrap_or(0.0);
             let total = draw_count(&mut rng, mean, s.dispersion);
-            draw_multinomial(&mut rng, total, &s.delay_pmf(t))
+            let due = draw_multinomial(&mut rng, total, &s.delay_pmf(t));
+            match &s.calendar {
+                Some(calendar) => postpone(&mut rng, due, |d| calendar.share(t + d)),
+                None => due,
+            }
         })
         .collect();
     let truth = increments.iter().map(|row| row.iter().sum::<u64>() as f64).collect();
@@ -153,6 +184,18 @@ fn draw_multinomial(rng: &mut impl Rng, total: u64, pmf: &[f64]) -> Vec<u64> {
         mass_left -= p;
     }
     counts
+}
+
+/// Cases due at each delay, after carrying those not reported on their due day to the next
+/// day (`share(d)`: the probability of reporting at delay d); the last delay keeps them all.
+fn postpone(rng: &mut impl Rng, mut due: Vec<u64>, share: impl Fn(usize) -> f64) -> Vec<u64> {
+    let last = due.len().saturating_sub(1);
+    for d in 0..last {
+        let reported = Binomial::new(due[d], share(d)).map(|b| b.sample(rng)).unwrap_or(due[d]);
+        due[d + 1] += due[d] - reported;
+        due[d] = reported;
+    }
+    due
 }
 
 /// A pmf cut or padded to 0..=max_delay and normalised; negative or non-finite weights count
@@ -259,6 +302,26 @@ mod tests {
             let mean = truth.iter().sum::<f64>() / 400.0;
             let variance = 50.0 + dispersion.map_or(0.0, |k| 2500.0 / k);
             assert!((mean - 50.0).abs() < 4.0 * (variance / 400.0).sqrt(), "{dispersion:?}: mean {mean}");
+        }
+    }
+
+    #[test]
+    fn a_closed_day_carries_its_reports_to_the_next_day() {
+        // Check (construction): with day 3 closed and weekends at 0, nothing is reported on
+        // those days and no case is lost.
+        let mut s = Scenario::constant_delay(vec![40.0; 20], 6, vec![0.3, 0.3, 0.2, 0.1, 0.1]);
+        s.calendar = Some(ReportCalendar { weekday: [1.0, 1.0, 1.0, 1.0, 1.0, 0.0, 0.0], closed: vec![3] });
+        let (tri, truth) = simulate(&s, 5);
+        let increments = tri.increments().n;
+        for (t, row) in increments.iter().enumerate() {
+            for (d, &n) in row.iter().enumerate().take(6) {
+                if s.calendar.as_ref().unwrap().share(t + d) == 0.0 {
+                    assert_eq!(n, 0.0, "reference day {t}, delay {d}");
+                }
+            }
+        }
+        for (t, &eventual) in truth.iter().enumerate().take(14) {
+            assert_eq!(tri.latest(t), eventual, "reference day {t}");
         }
     }
 

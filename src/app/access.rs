@@ -12,7 +12,7 @@ use tokio::net::TcpListener;
 use tokio_util::sync::CancellationToken;
 
 use super::errors::UsageError;
-use super::queries::{self, CurveArgs, DelaysArgs, NowcastArgs, QueryError, Question};
+use super::queries::{self, CurveArgs, DelaysArgs, NowcastArgs, QueryError, Question, ScoresArgs};
 use crate::analysis::delay::FamilyChoice;
 use crate::config::Config;
 use crate::metrics::Metrics;
@@ -97,7 +97,7 @@ pub fn app_router(config: &Arc<Config>, ops_state: Option<ops::OpsState>) -> axu
         scheduler_running: Arc::new(AtomicBool::new(true)),
         store: config.store.path.clone(),
     });
-    let dashboard = serve::dashboard::DashboardState { store: config.store.path.clone() };
+    let dashboard = serve::dashboard::DashboardState::new(config.store.path.clone(), &config.analysis);
     serve::app_router(api_state(config), ops_state, dashboard)
 }
 
@@ -144,6 +144,11 @@ fn question<'p>(endpoint: Endpoint, p: &'p Params) -> Result<Question<'p>, Listi
             method: p.vocabulary("method")?.unwrap_or(MethodChoice::Auto),
             stratify: p.get("stratify"),
             format,
+        }),
+        Endpoint::Scores => Question::Scores(ScoresArgs {
+            source: p.required("source")?,
+            by: p.required("by")?,
+            as_of: p.get("as_of"),
         }),
         Endpoint::Delays => Question::Delays(DelaysArgs {
             source: p.required("source")?,

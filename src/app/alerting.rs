@@ -157,8 +157,48 @@ pub fn snapshot_pass(config: &Config, source: &SourceConfig, outcome: &OwedAnaly
         if params.enabled("count") {
             counts(&reader, source_id, snapshot_id, &source.name, day, config, &mut pass)?;
         }
+        if params.enabled("nowcast_calibration") {
+            calibration(&reader, source_id, snapshot_id, &source.name, config, &mut pass)?;
+        }
     }
     Ok(pass)
+}
+
+/// The calibration of the nowcast `auto` chooses, per reference field (whole source), from
+/// the scores matured by this snapshot.
+fn calibration(
+    reader: &Reader,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
+    source: &str,
+    config: &Config,
+    pass: &mut Pass,
+) -> Result<()> {
+    use super::analyse::{TriangleKey, resolve_method};
+    for &field in &config.analysis.reference_fields {
+        let key = TriangleKey::all(field);
+        let choice =
+            resolve_method(reader, config, source_id, snapshot_id, &key, crate::model::MethodChoice::Auto)?;
+        let score = match choice.score {
+            Some(score) => Some(score),
+            None => {
+                let series = (field.name(), "all", "");
+                let scores =
+                    reader.rolling_scores(source_id, series, snapshot_id, config.analysis.score_window)?;
+                scores.into_iter().find(|s| s.method == choice.method)
+            }
+        };
+        let input =
+            rules::CalibrationInput { source: source.to_string(), subject: field.name().to_string(), score };
+        pass.add(
+            Rule::NowcastCalibration,
+            source,
+            field.name(),
+            rules::nowcast_calibration(&input),
+            Some(snapshot_id),
+        );
+    }
+    Ok(())
 }
 
 fn missingness(

@@ -6,16 +6,14 @@ use super::errors::not_found;
 use anyhow::Result;
 use chrono::{Days, NaiveDate};
 
-use crate::analysis::backtest::{self, BacktestCell, NAIVE};
+use crate::analysis::backtest::{self, BacktestCell};
 use crate::analysis::delay::{self, DelayFit, DelayObs, DelaySummary, FitOptions};
-use crate::analysis::nowcast::{Nowcast, NowcastRow, hazard, smooth};
+use crate::analysis::nowcast::{Nowcast, NowcastRow, ensemble, hazard, smooth};
+use crate::analysis::scoring::{self, AutoChoice, RowScore};
 use crate::analysis::triangle::{self, Triangle};
 use crate::config::{AnalysisConfig, Config, DelayEnd, SourceConfig};
 use crate::model::{Field, MethodChoice, NowcastMethod, SnapshotId, SourceId};
-use crate::store::{DelayRow, NowcastKey, Reader, Store};
-
-/// Horizons over which `auto` compares methods (the horizons the published figures use).
-pub const AUTO_HORIZONS: usize = 7;
+use crate::store::{DelayRow, MaturedNowcast, NowcastKey, Reader, Store};
 
 /// Which triangle: a reference field and a stratum (`("all", "")` for the whole source).
 #[derive(Debug, Clone, PartialEq, Eq)]
@@ -68,32 +66,36 @@ pub fn run_method(method: NowcastMethod, tri: &Triangle, analysis: &AnalysisConf
             };
             hazard::nowcast(tri, &params, seed)
         }
+        NowcastMethod::Ensemble => {
+            let members =
+                [NowcastMethod::Hazard, NowcastMethod::Smooth].map(|m| run_method(m, tri, analysis, seed));
+            ensemble::combine(&members)
+        }
     }
 }
 
-/// Resolves `auto`: the configured method with the lower mean WIS over horizons 0..7 in the
-/// source's latest stored backtest of this field; `hazard` when there is none.
+/// Resolves a requested method for one series as of a snapshot. `auto` chooses from the
+/// scores matured by that snapshot (`analysis::scoring::choose`); a named method is taken as
+/// asked. Either way the choice carries a warning when the method's matured scores show it
+/// miscalibrated. The dashboard reads the same `Reader::auto_method`, so they agree.
 pub fn resolve_method(
     reader: &Reader,
+    config: &Config,
     source_id: SourceId,
-    field: Field,
+    snapshot_id: SnapshotId,
+    key: &TriangleKey,
     requested: MethodChoice,
-) -> Result<(NowcastMethod, String)> {
-    if let Some(method) = requested.method() {
-        return Ok((method, String::new()));
-    }
-    Ok(match reader.best_backtest_method(source_id, field.name(), NAIVE, AUTO_HORIZONS)? {
-        Some((method, wis)) => {
-            let why = format!(
-                "auto chose {method} (mean WIS {wis:.2} over horizons 0-{AUTO_HORIZONS} in the latest backtest)"
-            );
-            (method, why)
-        }
-        None => (
-            NowcastMethod::Hazard,
-            "auto chose hazard: no backtest stored yet (run `tidemark backtest`)".to_string(),
-        ),
-    })
+) -> Result<AutoChoice> {
+    let series = (key.field.name(), key.kind.as_str(), key.stratum.as_str());
+    let window = config.analysis.score_window;
+    let configured = &config.analysis.nowcast_methods;
+    let Some(method) = requested.method() else {
+        return Ok(reader.auto_method(source_id, snapshot_id, series, window, configured)?);
+    };
+    let scores = reader.rolling_scores(source_id, series, snapshot_id, window)?;
+    let score = scores.into_iter().find(|s| s.method == method);
+    let warning = score.as_ref().and_then(scoring::calibration_warning);
+    Ok(AutoChoice { method, reason: String::new(), score, warning })
 }
 
 /// A seed derived from what is being computed, so a figure is reproduced exactly.
@@ -125,21 +127,68 @@ pub fn nowcast_snapshot(
         }
         for (key, methods) in keys {
             let tri = load_triangle(reader, source_id, snapshot_id, &key, analysis, 0)?;
-            for method in methods {
-                let nowcast = run_method(method, &tri, analysis, seed_for(snapshot_id, &key, method.name()));
+            for nowcast in
+                nowcast_methods(&methods, &tri, analysis, |m| seed_for(snapshot_id, &key, m.name()))
+            {
                 let recent: Vec<_> =
                     nowcast.rows.into_iter().filter(|r| r.horizon <= analysis.max_delay).collect();
                 let id = (
                     field.name().to_string(),
                     key.kind.clone(),
                     key.stratum.clone(),
-                    method.name().to_string(),
+                    nowcast.method.name().to_string(),
                 );
                 results.push((id, recent));
             }
         }
     }
     Ok(results)
+}
+
+/// The stored nowcasts of the source whose truth has matured by `snapshot_id`, each with its
+/// scores (`analysis::scoring`), and the snapshot's day; for `Store::write_scores`.
+pub fn score_matured(
+    reader: &Reader,
+    config: &Config,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
+) -> Result<(NaiveDate, Vec<(MaturedNowcast, RowScore)>)> {
+    let day = snapshot_day(reader, snapshot_id)?;
+    let analysis = &config.analysis;
+    let matured =
+        reader.matured_nowcasts(source_id, snapshot_id, analysis.backtest_lag, analysis.max_delay)?;
+    let scored = matured
+        .into_iter()
+        .map(|m| {
+            let score = scoring::score_row(&m.row, m.truth);
+            (m, score)
+        })
+        .collect();
+    Ok((day, scored))
+}
+
+/// Nowcasts of one triangle with each of `methods`, in that order; the ensemble is combined
+/// from its members' nowcasts (computed once even when they are not asked for themselves).
+fn nowcast_methods(
+    methods: &[NowcastMethod],
+    tri: &Triangle,
+    analysis: &AnalysisConfig,
+    seed: impl Fn(NowcastMethod) -> u64,
+) -> Vec<Nowcast> {
+    let members = [NowcastMethod::Hazard, NowcastMethod::Smooth];
+    let wants_ensemble = methods.contains(&NowcastMethod::Ensemble);
+    let computed: Vec<Nowcast> = members
+        .iter()
+        .filter(|m| methods.contains(m) || wants_ensemble)
+        .map(|&m| run_method(m, tri, analysis, seed(m)))
+        .collect();
+    methods
+        .iter()
+        .filter_map(|&method| match method {
+            NowcastMethod::Ensemble => Some(ensemble::combine(&computed)),
+            _ => computed.iter().find(|n| n.method == method).cloned(),
+        })
+        .collect()
 }
 
 /// Stores a snapshot's delay fits, one row set per (start field, end) pair; returns how
@@ -185,6 +234,11 @@ pub fn backtest(
     let last_day = snapshot_day(&reader, latest)?;
     let to = request.to.unwrap_or(last_day - Days::new(request.lag as u64)).min(last_day);
     let from = request.from.unwrap_or(to - Days::new(27));
+    if from > to {
+        return Err(super::errors::usage(format!(
+            "the backtest range starts ({from}) after it ends ({to}); nothing was scored or stored"
+        )));
+    }
     let key = TriangleKey::all(request.field);
     let extra = (last_day - from).num_days().max(0) as usize;
     let full = load_triangle(&reader, source_id, latest, &key, analysis, extra)?;
@@ -194,11 +248,13 @@ pub fn backtest(
         let known = full.as_of(day);
         let start = known.rows().saturating_sub(analysis.window + analysis.max_delay);
         let known = trim_rows(&known, start);
-        for &method in &request.methods {
-            let seed = seed_for(latest, &key, method.name())
+        let seed = |method: NowcastMethod| {
+            seed_for(latest, &key, method.name())
                 ^ day.to_string().len() as u64
-                ^ (day - from).num_days() as u64;
-            nowcasts.push((day, run_method(method, &known, analysis, seed)));
+                ^ (day - from).num_days() as u64
+        };
+        for nowcast in nowcast_methods(&request.methods, &known, analysis, seed) {
+            nowcasts.push((day, nowcast));
         }
         day = day + Days::new(1);
     }

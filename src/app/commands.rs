@@ -22,7 +22,7 @@ use super::errors::usage;
 pub use super::errors::{NotFound, UsageError, not_found};
 use super::queries::source;
 pub use super::queries::{
-    Answer, CurveArgs, DelaysArgs, NOWCAST_CAUTION, NowcastArgs, QueryError, Question, answer,
+    Answer, CurveArgs, DelaysArgs, NOWCAST_CAUTION, NowcastArgs, QueryError, Question, ScoresArgs, answer,
     parse_field_arg, parse_time_arg,
 };
 
@@ -317,6 +317,17 @@ pub fn nowcast(config: &Config, args: &NowcastArgs<'_>) -> Result<String> {
     Ok(out)
 }
 
+/// `tidemark scores`: the rolling scores of the stored nowcasts whose truth has matured.
+pub fn scores(config: &Config, args: &ScoresArgs<'_>, format: OutputFormat) -> Result<String> {
+    let reader = Reader::open(&config.store.path)?;
+    let Answer { table, note } = answer(config, &reader, &Question::Scores(args.clone()))?;
+    let mut out = table.render(format);
+    if format == OutputFormat::Table {
+        out.push_str(&note);
+    }
+    Ok(out)
+}
+
 /// Arguments of `tidemark backtest`.
 #[derive(Debug, Clone)]
 pub struct BacktestArgs<'a> {
@@ -329,7 +340,9 @@ pub struct BacktestArgs<'a> {
 }
 
 /// `tidemark backtest`: nowcast each past day with what was known then, score against the
-/// count known `lag` days later, store and print the scores by method and horizon.
+/// count known `lag` days later, store (with its range and lag) and print the scores by
+/// method and horizon. An ad hoc backtest never changes what `auto` chooses: that reads the
+/// rolling scores of the stored nowcasts.
 pub fn backtest(config: &Config, args: &BacktestArgs<'_>) -> Result<String> {
     use super::analyse::{self, BacktestRequest};
     let source = source(config, args.source)?;
@@ -343,10 +356,16 @@ pub fn backtest(config: &Config, args: &BacktestArgs<'_>) -> Result<String> {
         })
         .transpose()
     };
+    let (from, to) = (day(args.from)?, day(args.to)?);
+    if let (Some(from), Some(to)) = (from, to)
+        && from > to
+    {
+        return Err(usage(format!("--from {from} is after --to {to}: the range is empty")));
+    }
     let request = BacktestRequest {
         field,
-        from: day(args.from)?,
-        to: day(args.to)?,
+        from,
+        to,
         lag: args.lag.unwrap_or(config.analysis.backtest_lag),
         max_horizon: 14,
         methods: config::analysis::NOWCAST_METHODS.to_vec(),
@@ -411,8 +430,32 @@ pub fn backtest_summary(cells: &[crate::analysis::backtest::BacktestCell]) -> St
             cover(|c| c.coverage90) * 100.0,
             cover(|c| c.coverage50) * 100.0,
         ));
+        if method != NAIVE {
+            out.push_str(&under_coverage_warning(method, &chosen));
+        }
     }
     out
+}
+
+/// 90% coverage under which a backtest names the horizons that fell short (the intervals
+/// are too narrow there).
+const BACKTEST_COVERAGE_FLOOR: f64 = 0.85;
+
+/// A warning line naming the horizons whose 90% coverage fell under the floor, or nothing.
+fn under_coverage_warning(method: &str, cells: &[&crate::analysis::backtest::BacktestCell]) -> String {
+    let short: Vec<_> = cells.iter().filter(|c| c.coverage90 < BACKTEST_COVERAGE_FLOOR).collect();
+    if short.is_empty() {
+        return String::new();
+    }
+    let horizons: Vec<String> = short.iter().map(|c| c.horizon.to_string()).collect();
+    let low = short.iter().map(|c| c.coverage90).fold(f64::INFINITY, f64::min);
+    let high = short.iter().map(|c| c.coverage90).fold(0.0, f64::max);
+    format!(
+        "  WARNING: {method}'s 90% intervals covered the truth less than {:.0}% of the time at horizons {} \
+         ({low:.2}-{high:.2}): they are too narrow there\n",
+        BACKTEST_COVERAGE_FLOOR * 100.0,
+        horizons.join(", ")
+    )
 }
 
 /// `tidemark delays`: the delay between two date fields (or to the day a record first

@@ -336,8 +336,13 @@ fn nowcast_against_truth(
         format!("  nowcasts made on each day {from}..{to}, scored {} days later:\n", request.lag);
     backtest.push_str(&commands::backtest_summary(&cells));
     let reader = Reader::open(&config.store.path)?;
-    let (method, _) = analyse::resolve_method(&reader, county_id, Field::OnsetDate, MethodChoice::Auto)?;
     let key = TriangleKey::all(Field::OnsetDate);
+    let choice = analyse::resolve_method(&reader, config, county_id, last, &key, MethodChoice::Auto)?;
+    let method = choice.method;
+    backtest.push_str(&format!("  {}\n", choice.reason));
+    if let Some(warning) = &choice.warning {
+        backtest.push_str(&format!("  {warning}\n"));
+    }
     let mut rows = reader.nowcast(last, (Field::OnsetDate.name(), "all", "", method.name()))?;
     if rows.is_empty() {
         let tri = analyse::load_triangle(&reader, county_id, last, &key, &config.analysis, 0)?;

@@ -1,5 +1,5 @@
-//! The post-snapshot pipeline: what runs after a commit, as named steps (nowcasts, delay
-//! fits, quality measures, alert rules), each timed and reported. The commit enters every
+//! The post-snapshot pipeline: what runs after a commit, as named steps (nowcasts, scoring
+//! of the nowcasts whose truth has matured, delay fits, quality measures, alert rules), each timed and reported. The commit enters every
 //! applied or held snapshot as owed (`store::OwedAnalysis`) in its own transaction; this
 //! stage reads what a source owes, analyses the latest applied snapshot (and a later held
 //! one) once, marks the earlier ones superseded, and records done or failed. A crash, a
@@ -56,18 +56,21 @@ impl Writes for Writer {
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
 pub enum Step {
     Nowcasts,
+    Scoring,
     DelayFits,
     Quality,
     AlertRules,
 }
 
 impl Step {
-    pub const ALL: [Step; 4] = [Step::Nowcasts, Step::DelayFits, Step::Quality, Step::AlertRules];
+    pub const ALL: [Step; 5] =
+        [Step::Nowcasts, Step::Scoring, Step::DelayFits, Step::Quality, Step::AlertRules];
 
     /// The step's name in logs and `/metrics`.
     pub fn name(self) -> &'static str {
         match self {
             Step::Nowcasts => "nowcasts",
+            Step::Scoring => "scoring",
             Step::DelayFits => "delay_fits",
             Step::Quality => "quality",
             Step::AlertRules => "alert_rules",
@@ -199,12 +202,13 @@ fn analyse<W: Writes>(
         reports.extend(nowcasts_and_fits(writes, reader, config, snapshot));
         reports.iter().for_each(|r| observe(&source.name, r));
     }
-    for &step in steps.iter().filter(|s| matches!(s, Step::Quality | Step::AlertRules)) {
+    for &step in steps.iter().filter(|s| matches!(s, Step::Scoring | Step::Quality | Step::AlertRules)) {
         if cancelled() {
             return Ok(None);
         }
         let started = Instant::now();
         let result = match step {
+            Step::Scoring => score(writes, reader, config, snapshot),
             Step::Quality => measure(writes, config, source, snapshot),
             _ => evaluate_alerts(writes, config, source, snapshot, Utc::now()),
         };
@@ -247,6 +251,16 @@ fn nowcasts_and_fits<W: Writes>(
         });
         [nowcasts, report(Step::DelayFits, started, fits)]
     })
+}
+
+/// Scores the stored nowcasts whose truth has matured by this snapshot.
+fn score<W: Writes>(writes: &mut W, reader: &Reader, config: &Config, snapshot: &OwedAnalysis) -> Result<()> {
+    let (source_id, snapshot_id) = (snapshot.source_id, snapshot.snapshot_id);
+    let (day, scored) = analyse::score_matured(reader, config, source_id, snapshot_id)?;
+    let written =
+        writes.write(move |store| Ok(store.write_scores(source_id, (snapshot_id, day), &scored)?))?;
+    tracing::debug!(snapshot_id = snapshot_id.0, written, "matured nowcasts scored");
+    Ok(())
 }
 
 fn measure<W: Writes>(

@@ -28,6 +28,8 @@ pub enum Question<'a> {
     Curve(CurveArgs<'a>),
     /// Backfill-corrected counts with prediction intervals.
     Nowcast(NowcastArgs<'a>),
+    /// The rolling scores of the stored nowcasts whose truth has matured.
+    Scores(ScoresArgs<'a>),
     /// A delay's summary and fits.
     Delays(DelaysArgs<'a>),
     /// The quality measures of the snapshot current at `as_of` (RFC 3339 or a date).
@@ -98,6 +100,10 @@ pub fn answer(config: &Config, reader: &Reader, question: &Question<'_>) -> Resu
         Question::Curve(args) => listing(curve_table(config, reader, args)?),
         Question::Nowcast(args) => {
             let (table, note) = nowcast_table(config, reader, args)?;
+            Answer { table, note }
+        }
+        Question::Scores(args) => {
+            let (table, note) = scores_table(config, reader, args)?;
             Answer { table, note }
         }
         Question::Delays(args) => {
@@ -315,6 +321,7 @@ pub struct NowcastArgs<'a> {
 /// `auto` chose; `args.format` is not used.
 fn nowcast_table(config: &Config, reader: &Reader, args: &NowcastArgs<'_>) -> Result<(Table, String)> {
     use super::analyse::{self, TriangleKey};
+    use crate::analysis::scoring;
     source(config, args.source)?;
     let field = parse_field_arg(args.by)?;
     if !config.analysis.reference_fields.contains(&field) {
@@ -326,7 +333,6 @@ fn nowcast_table(config: &Config, reader: &Reader, args: &NowcastArgs<'_>) -> Re
     let snapshot_id = reader
         .snapshot_as_of(source_id, as_of)?
         .ok_or_else(|| not_found("the source has no applied snapshot at that time"))?;
-    let (method, note) = analyse::resolve_method(reader, source_id, field, args.method)?;
     let mut strata = vec![TriangleKey::all(field)];
     if let Some(text) = args.stratify {
         let stratum_field = parse_field_arg(text)?;
@@ -352,10 +358,16 @@ fn nowcast_table(config: &Config, reader: &Reader, args: &NowcastArgs<'_>) -> Re
         "lower95",
         "upper95",
         "completeness",
+        "information",
         "method",
+        "method_choice",
+        "warning",
         "snapshot_id",
     ]);
+    let mut notes: Vec<String> = Vec::new();
     for key in &strata {
+        let choice = analyse::resolve_method(reader, config, source_id, snapshot_id, key, args.method)?;
+        let method = choice.method;
         let stored = reader.nowcast(snapshot_id, (field.name(), &key.kind, &key.stratum, method.name()))?;
         let rows = if stored.is_empty() {
             let tri = analyse::load_triangle(reader, source_id, snapshot_id, key, &config.analysis, 0)?;
@@ -369,7 +381,18 @@ fn nowcast_table(config: &Config, reader: &Reader, args: &NowcastArgs<'_>) -> Re
         } else {
             stored
         };
+        let label = if key.kind == "all" { String::new() } else { format!("{} {}: ", key.kind, key.stratum) };
+        for line in [&choice.reason, choice.warning.as_ref().unwrap_or(&String::new())] {
+            if !line.is_empty() && !notes.iter().any(|n| n.ends_with(line.as_str())) {
+                notes.push(format!("{label}{line}"));
+            }
+        }
+        let low = rows.iter().any(|r| r.horizon <= config.analysis.max_delay && scoring::low_information(r));
+        if low && !notes.iter().any(|n| n.starts_with(LOW_INFORMATION_NOTE)) {
+            notes.push(LOW_INFORMATION_NOTE.to_string());
+        }
         for r in rows.iter().filter(|r| r.horizon <= config.analysis.max_delay) {
+            let information = if scoring::low_information(r) { "low" } else { "adequate" };
             table.push(vec![
                 r.date.to_string().into(),
                 key.stratum.clone().into(),
@@ -383,13 +406,78 @@ fn nowcast_table(config: &Config, reader: &Reader, args: &NowcastArgs<'_>) -> Re
                 r.lower95.into(),
                 r.upper95.into(),
                 r.completeness.into(),
+                information.into(),
                 method.name().into(),
+                choice.reason.clone().into(),
+                choice.warning.clone().unwrap_or_default().into(),
                 snapshot_id.into(),
             ]);
         }
     }
+    let note = notes.join("\n");
     Ok((table, note))
 }
+
+/// Arguments of `tidemark scores`.
+#[derive(Debug, Clone)]
+pub struct ScoresArgs<'a> {
+    pub source: &'a str,
+    pub by: &'a str,
+    pub as_of: Option<&'a str>,
+}
+
+/// The listing behind `tidemark scores` (and the API's `scores`): per stratum, method and
+/// horizon, the scores matured by the snapshot current at `as_of`, over the last
+/// `analysis.score_window` forecast days; the note says what `auto` chooses from them.
+fn scores_table(config: &Config, reader: &Reader, args: &ScoresArgs<'_>) -> Result<(Table, String)> {
+    use super::analyse::{self, TriangleKey};
+    source(config, args.source)?;
+    let field = parse_field_arg(args.by)?;
+    if !config.analysis.reference_fields.contains(&field) {
+        return Err(usage(format!("--by {field}: not in analysis.reference_fields, so no nowcast is kept")));
+    }
+    let as_of = args.as_of.map(parse_time_arg).transpose()?;
+    let source_id =
+        reader.source_id(args.source)?.ok_or_else(|| not_found("the source has no snapshots yet"))?;
+    let snapshot_id = reader
+        .snapshot_as_of(source_id, as_of)?
+        .ok_or_else(|| not_found("the source has no applied snapshot at that time"))?;
+    let analysis = &config.analysis;
+    let table = reader.score_table(
+        source_id,
+        field.name(),
+        snapshot_id,
+        analysis.score_window,
+        analysis.max_delay,
+    )?;
+    let choice = analyse::resolve_method(
+        reader,
+        config,
+        source_id,
+        snapshot_id,
+        &TriangleKey::all(field),
+        MethodChoice::Auto,
+    )?;
+    let mut note = format!(
+        "Scores of nowcasts made at least {} days before snapshot {snapshot_id} against the count known then \
+         (last {} forecast days; naive_wis is the score of the count observed so far).\n{}\n",
+        analysis.backtest_lag, analysis.score_window, choice.reason
+    );
+    if table.rows.is_empty() {
+        note.push_str(
+            "No stored nowcast has matured yet: scoring starts once a nowcast is backtest_lag days old.\n",
+        );
+    }
+    if let Some(warning) = choice.warning {
+        note.push_str(&warning);
+        note.push('\n');
+    }
+    Ok((table, note))
+}
+
+/// Said under a nowcast with a reference date whose estimate rests mostly on the model.
+pub const LOW_INFORMATION_NOTE: &str = "Rows marked information=low have an expected completeness under 10%: \
+their estimate rests mostly on the model, not on reports (the dashboard shades them).";
 
 /// Printed under every nowcast table.
 pub const NOWCAST_CAUTION: &str = "Nowcasts are estimates: the intervals are prediction intervals for the count that will \

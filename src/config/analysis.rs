@@ -37,7 +37,7 @@ impl DelayEnd {
 }
 
 /// Nowcast methods that can be configured.
-pub const NOWCAST_METHODS: [NowcastMethod; 2] = NowcastMethod::ALL;
+pub const NOWCAST_METHODS: [NowcastMethod; 3] = NowcastMethod::ALL;
 
 #[derive(Debug, Clone, PartialEq)]
 pub struct AnalysisConfig {
@@ -54,8 +54,11 @@ pub struct AnalysisConfig {
     pub window: usize,
     /// Predictive draws per nowcast.
     pub draws: usize,
-    /// Days after which a count is taken as the truth in backtests.
+    /// Days after which a count is taken as the truth: a stored nowcast is scored that many
+    /// days after it was made, and ad hoc backtests use it unless told otherwise.
     pub backtest_lag: usize,
+    /// Forecast days of matured scores that `auto` compares methods over.
+    pub score_window: usize,
     /// Delay distributions fitted after each applied snapshot.
     pub delays: Vec<(Field, DelayEnd)>,
     /// Bootstrap resamples behind the delay fits' intervals.
@@ -73,6 +76,7 @@ impl Default for AnalysisConfig {
             window: 42,
             draws: 1000,
             backtest_lag: 28,
+            score_window: 28,
             delays: vec![
                 (Field::OnsetDate, DelayEnd::Field(Field::ReportDate)),
                 (Field::OnsetDate, DelayEnd::FirstSeen),
@@ -96,6 +100,7 @@ pub struct RawAnalysis {
     pub window: Option<usize>,
     pub draws: Option<usize>,
     pub backtest_lag: Option<usize>,
+    pub score_window: Option<usize>,
     pub delays: Option<Vec<String>>,
     pub bootstrap: Option<usize>,
 }
@@ -126,6 +131,7 @@ pub fn build(raw: RawAnalysis, problems: &mut Vec<String>) -> AnalysisConfig {
     positive("window", raw.window, &mut config.window);
     positive("draws", raw.draws, &mut config.draws);
     positive("backtest_lag", raw.backtest_lag, &mut config.backtest_lag);
+    positive("score_window", raw.score_window, &mut config.score_window);
     positive("bootstrap", raw.bootstrap, &mut config.bootstrap);
     if let Some(methods) = raw.nowcast_methods {
         let mut parsed = Vec::new();

@@ -10,7 +10,7 @@ use crate::config::rules::{
 };
 
 /// The rule tables `[alert.rules.*]` accepts.
-pub const RULE_TABLES: [&str; 7] = [
+pub const RULE_TABLES: [&str; 8] = [
     "missingness_jump",
     "lag_jump",
     "held_snapshot",
@@ -18,6 +18,7 @@ pub const RULE_TABLES: [&str; 7] = [
     "stale_source",
     "failing_polls",
     "count",
+    "nowcast_calibration",
 ];
 
 /// Typed parameters of every rule, with the set of disabled rule tables.
@@ -102,7 +103,7 @@ pub fn build(tables: &BTreeMap<String, toml::Table>, problems: &mut Vec<String>)
                 params.staleness.max_consecutive_failures = n.max(1) as u32;
                 keys.only(&["max_consecutive_failures"]);
             }
-            "held_snapshot" | "stale_source" => keys.only(&[]),
+            "held_snapshot" | "stale_source" | "nowcast_calibration" => keys.only(&[]),
             "count" => count(&mut keys, &mut params.count),
             other => problems
                 .push(format!("alert.rules.{other}: unknown rule (known: {})", RULE_TABLES.join(", "))),

@@ -137,11 +137,10 @@ const CONFIG: &str = r#"# Written by `tidemark demo`: the invented scenario's tw
 path = "data/tidemark.db"
 archive = "data/archive"
 
-# Recomputed after every applied snapshot. The demo plays 100 days in seconds, so it stores
-# only the fast `hazard` nowcasts and uses fewer bootstrap resamples than the default (100);
-# `tidemark backtest` still compares both methods and `--method auto` uses the better one.
+# Recomputed after every applied snapshot, and every stored nowcast is scored once its truth
+# has matured (`tidemark scores`); `--method auto` uses the best matured score. The demo plays
+# 100 days in seconds, so it uses fewer bootstrap resamples than the default (100).
 [analysis]
-nowcast_methods = ["hazard"]
 reference_fields = ["onset_date", "report_date"]
 strata = ["jurisdiction", "age"]
 delays = ["onset_date->report_date", "onset_date->first_seen", "onset_date->death_date"]

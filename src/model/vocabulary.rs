@@ -146,6 +146,8 @@ vocabulary! {
         EarsC3 => "ears_c3",
         /// Upper Poisson or negative-binomial CUSUM on daily counts by report date.
         CountCusum => "count_cusum",
+        /// The nowcast `auto` chooses is miscalibrated over its matured scores.
+        NowcastCalibration => "nowcast_calibration",
     }
 }
 
@@ -190,6 +192,8 @@ vocabulary! {
     pub enum NowcastMethod("nowcast method") {
         Hazard => "hazard",
         Smooth => "smooth",
+        /// The quantile average of `hazard` and `smooth`.
+        Ensemble => "ensemble",
     }
 }
 
@@ -200,6 +204,7 @@ vocabulary! {
         Auto => "auto",
         Hazard => "hazard",
         Smooth => "smooth",
+        Ensemble => "ensemble",
     }
 }
 
@@ -210,6 +215,7 @@ impl MethodChoice {
             MethodChoice::Auto => None,
             MethodChoice::Hazard => Some(NowcastMethod::Hazard),
             MethodChoice::Smooth => Some(NowcastMethod::Smooth),
+            MethodChoice::Ensemble => Some(NowcastMethod::Ensemble),
         }
     }
 }
@@ -260,7 +266,7 @@ mod tests {
     #[test]
     fn an_unknown_name_lists_the_accepted_ones() {
         let err = "hazrd".parse::<NowcastMethod>().unwrap_err();
-        assert_eq!(err.to_string(), r#"unknown nowcast method "hazrd"; accepted: hazard, smooth"#);
+        assert_eq!(err.to_string(), r#"unknown nowcast method "hazrd"; accepted: hazard, smooth, ensemble"#);
         let long = "x".repeat(500);
         assert!(long.parse::<Severity>().unwrap_err().to_string().len() < 120);
     }

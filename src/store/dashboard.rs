@@ -96,30 +96,6 @@ impl Reader {
         Ok(rows.collect::<Result<_, _>>()?)
     }
 
-    /// Methods with a stored whole-source nowcast of `ref_field` at `snapshot_id`, best first:
-    /// ordered by mean WIS over horizons 0..=`horizons` in the source's latest backtest of
-    /// that field (methods without a score last, then by name).
-    pub fn nowcast_methods_ranked(
-        &self,
-        source_id: SourceId,
-        snapshot_id: SnapshotId,
-        ref_field: Field,
-        horizons: usize,
-    ) -> Result<Vec<String>, StoreError> {
-        let mut stmt = self.conn.prepare(
-            "SELECT m.method FROM (SELECT DISTINCT method FROM nowcast
-                 WHERE snapshot_id = ?1 AND ref_field = ?2 AND stratum_kind = 'all') m
-             LEFT JOIN (SELECT method, avg(wis) AS wis FROM backtest
-                 WHERE source_id = ?3 AND ref_field = ?2 AND horizon <= ?4
-                   AND snapshot_id = (SELECT max(snapshot_id) FROM backtest WHERE source_id = ?3 AND ref_field = ?2)
-                 GROUP BY method) b USING (method)
-             ORDER BY b.wis IS NULL, b.wis, m.method",
-        )?;
-        let rows =
-            stmt.query_map(params![snapshot_id, ref_field.name(), source_id, horizons as i64], |r| r.get(0))?;
-        Ok(rows.collect::<Result<_, _>>()?)
-    }
-
     /// The rank-1 (lowest AIC) whole-source fit of the delay `from -> to` at `snapshot_id`.
     pub fn best_delay_fit(
         &self,

@@ -13,6 +13,7 @@ mod owed;
 pub mod quality;
 mod read;
 mod results;
+mod scores;
 mod sources;
 pub mod sql;
 mod tokens;
@@ -34,6 +35,7 @@ pub use self::export::{ColumnKind, ExportTable};
 pub use self::owed::{OwedAnalysis, OwedState};
 pub use self::read::{AGE_BAND_EDGES, CurveRow, Reader, SnapshotRow, VersionRow};
 pub use self::results::{AlertLine, ProblemLine};
+pub use self::scores::{MaturedNowcast, SeriesKey};
 pub use self::sources::{FileRecord, PollRecord, SourceStatus};
 pub use self::sql::{SqlLimits, run_sql};
 pub use self::tokens::{TokenRow, TokenScope, create_token, revoke_token};
@@ -49,6 +51,7 @@ const MIGRATIONS: &[(i64, &str)] = &[
     (5, include_str!("../../migrations/0005_access.sql")),
     (6, include_str!("../../migrations/0006_ingest_speed.sql")),
     (7, include_str!("../../migrations/0007_analysis_owed.sql")),
+    (8, include_str!("../../migrations/0008_nowcast_scores.sql")),
 ];
 
 /// The schema version this build writes and understands.

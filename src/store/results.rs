@@ -6,7 +6,7 @@ use chrono::{DateTime, Utc};
 use rusqlite::OptionalExtension;
 
 use super::{Reader, StoreError, time_text};
-use crate::model::{NowcastMethod, SnapshotId, SourceId};
+use crate::model::SnapshotId;
 use crate::table::Table;
 
 impl Reader {
@@ -73,7 +73,7 @@ impl Reader {
     }
 
     /// Every row of a parameterised statement as a listing.
-    fn listing(&self, sql: &str, params: impl rusqlite::Params) -> Result<Table, StoreError> {
+    pub(super) fn listing(&self, sql: &str, params: impl rusqlite::Params) -> Result<Table, StoreError> {
         let mut stmt = self.conn.prepare(sql)?;
         let columns: Vec<String> = stmt.column_names().map(|c| c.to_string()).collect();
         let width = columns.len();
@@ -162,27 +162,5 @@ impl Reader {
                 .map_err(|_| StoreError::Refused(format!("snapshot {snapshot_id} has no valid as-of date")))
         })
         .transpose()
-    }
-
-    /// The method (other than `exclude`) with the lowest mean WIS over horizons
-    /// 0..=`max_horizon` in the source's latest backtest of `ref_field`, with that mean.
-    pub fn best_backtest_method(
-        &self,
-        source_id: SourceId,
-        ref_field: &str,
-        exclude: &str,
-        max_horizon: usize,
-    ) -> Result<Option<(NowcastMethod, f64)>, StoreError> {
-        Ok(self
-            .conn
-            .query_row(
-                "SELECT method, avg(wis) FROM backtest
-                 WHERE source_id = ?1 AND ref_field = ?2 AND method <> ?3 AND horizon <= ?4
-                   AND snapshot_id = (SELECT max(snapshot_id) FROM backtest WHERE source_id = ?1 AND ref_field = ?2)
-                 GROUP BY method ORDER BY avg(wis) LIMIT 1",
-                rusqlite::params![source_id, ref_field, exclude, max_horizon as i64],
-                |r| Ok((r.get(0)?, r.get(1)?)),
-            )
-            .optional()?)
     }
 }

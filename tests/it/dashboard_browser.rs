@@ -57,7 +57,7 @@ async fn drive_browser(store: PathBuf, scratch: &Path, shots: &Path) -> TestResu
     let shutdown = CancellationToken::new();
     let server = tokio::spawn(tidemark::serve::serve(
         listener,
-        dashboard::router(DashboardState { store }),
+        dashboard::router(DashboardState::new(store, &tidemark::config::AnalysisConfig::default())),
         shutdown.clone(),
     ));
     let driver = Driver::start(scratch).await?;

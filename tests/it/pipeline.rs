@@ -195,7 +195,7 @@ async fn a_held_analysis_does_not_hold_up_another_sources_commits_and_is_coalesc
         (slow[1], vec![slow[0]], None)
     );
     let steps: Vec<&str> = analysis.steps.iter().map(|r| r.step.name()).collect();
-    assert_eq!(steps, ["nowcasts", "delay_fits", "quality", "alert_rules"]);
+    assert_eq!(steps, ["nowcasts", "delay_fits", "scoring", "quality", "alert_rules"]);
     assert_eq!(state(&config, slow[1]).0, OwedState::Done);
     assert_eq!(state(&config, slow[0]), (OwedState::Superseded, Some(slow[1])));
     assert!(quality_rows(&config, slow[1]) > 0);

@@ -15,7 +15,10 @@
 //! - `failing_polls`: warning; critical after twice the allowed failures.
 //! - `ears_c1`, `ears_c2`, `ears_c3`, `count_cusum`: warning; critical when the statistic is at
 //!   least twice its threshold.
+//! - `nowcast_calibration`: warning; critical when the 90% coverage is under 0.75 and the
+//!   score is also worse than the naive count's.
 
+mod calibration;
 mod count;
 mod lag;
 mod missingness;
@@ -25,6 +28,7 @@ mod volume;
 pub use crate::config::rules::{
     CountCusumParams, CountFamily, CountParams, LagParams, MissingnessParams, StalenessParams, VolumeParams,
 };
+pub use calibration::*;
 pub use count::*;
 pub use lag::*;
 pub use missingness::*;

@@ -32,15 +32,30 @@ pub struct HazardParams {
     pub window: usize,
     /// Posterior predictive draws per reference date. Default 2000.
     pub draws: usize,
-    /// Beta(prior_a, prior_b) prior on each hazard. Default 0.5/0.5 (Jeffreys): weak, so
-    /// the posterior is dominated by any delay with more than a handful of cases.
+    /// Beta(prior_a / D, prior_b) prior on each of the D hazards g_1..g_D. Default 0.5/0.5:
+    /// Jeffreys' prior in total over the delays, not per delay, so that delays at which
+    /// nothing is ever reported (a reference date that is known at once, such as the report
+    /// date itself) do not add up to phantom cases: with 0.5 per delay, 28 empty delays
+    /// would add about 14 / N of the count, N the cases in the window. The posterior is
+    /// dominated by any delay with more than a handful of cases either way.
     pub prior_a: f64,
     pub prior_b: f64,
     /// Gamma(shape gamma_alpha, rate gamma_beta) prior on each date's expected eventual
     /// count. Default 1 and 0.001 (docs/validation.md): nearly flat over counts.
     pub gamma_alpha: f64,
     pub gamma_beta: f64,
+    /// Shape of the empirical-Bayes prior on the expected count of recent dates (default
+    /// 2): a gamma with mean the recent level (the mean point estimate of the last
+    /// `LEVEL_ROWS` dates that are at least half complete) replaces the flat prior, so a
+    /// date with almost nothing reported yet borrows the level of its neighbours instead of
+    /// resting on the flat prior (which says "about 1 / completeness"). `None`: the flat
+    /// prior everywhere.
+    pub level_prior_shape: Option<f64>,
 }
+
+/// Dates whose point estimates set the level prior (the most recent ones that are at least
+/// half complete).
+pub const LEVEL_ROWS: usize = 14;
 
 impl Default for HazardParams {
     fn default() -> Self {
@@ -51,6 +66,7 @@ impl Default for HazardParams {
             prior_b: 0.5,
             gamma_alpha: 1.0,
             gamma_beta: 0.001,
+            level_prior_shape: Some(2.0),
         }
     }
 }
@@ -237,6 +253,7 @@ struct HazardPosterior {
 
 impl HazardPosterior {
     fn new(counts: &HazardCounts, params: &HazardParams) -> HazardPosterior {
+        let prior_a = params.prior_a / counts.reported.len().saturating_sub(1).max(1) as f64;
         let hazards = counts
             .reported
             .iter()
@@ -244,7 +261,7 @@ impl HazardPosterior {
             .map(|(&reported, &known)| {
                 let not_reported = (known - reported).max(0.0);
                 if known > 0.0 {
-                    Beta::new(params.prior_a + reported, params.prior_b + not_reported).ok()
+                    Beta::new(prior_a + reported, params.prior_b + not_reported).ok()
                 } else {
                     None
                 }
@@ -264,13 +281,13 @@ impl HazardPosterior {
 /// One draw of the eventual count given `observed` cases so far and completeness `q`:
 /// `lambda ~ Gamma(alpha + x, rate beta + q)`, then `N - x ~ Poisson(lambda (1 - q))`, which
 /// is `NegBin(size = alpha + x, prob = (beta + q)/(beta + 1))` (Hohle & an der Heiden 2014).
-fn draw_eventual(rng: &mut StdRng, observed: f64, q: f64, params: &HazardParams) -> f64 {
+fn draw_eventual(rng: &mut StdRng, observed: f64, q: f64, (alpha, beta): (f64, f64)) -> f64 {
     let missing_share = 1.0 - q;
     if missing_share <= 0.0 {
         return observed;
     }
-    let shape = params.gamma_alpha + observed.max(0.0);
-    let rate = params.gamma_beta + q.max(0.0);
+    let shape = alpha + observed.max(0.0);
+    let rate = beta + q.max(0.0);
     let lambda = Gamma::new(shape, 1.0 / rate).map_or(shape / rate, |gamma| gamma.sample(rng));
     observed + draw_poisson(rng, lambda * missing_share)
 }
@@ -340,6 +357,26 @@ impl RowDraws {
     }
 }
 
+/// The gamma prior (shape, rate) on the expected count of an incomplete date: centred on the
+/// recent level when `level_prior_shape` is set and some recent date is at least half
+/// complete, else the flat `gamma_alpha`, `gamma_beta`.
+fn level_prior(tri: &Triangle, estimate: &HazardEstimate, params: &HazardParams) -> (f64, f64) {
+    let flat = (params.gamma_alpha, params.gamma_beta);
+    let Some(shape) = params.level_prior_shape.filter(|s| s.is_finite() && *s > 0.0) else { return flat };
+    let recent: Vec<f64> = (tri.rows().saturating_sub(LEVEL_ROWS)..tri.rows())
+        .filter_map(|t| {
+            let q = estimate.completeness[known_delay(tri, t)];
+            (q >= 0.5).then(|| tri.latest(t) / q)
+        })
+        .collect();
+    if recent.is_empty() {
+        return flat;
+    }
+    // A level of 0 (nothing reported lately) still allows a case: at least 0.1 a day.
+    let level = (recent.iter().sum::<f64>() / recent.len() as f64).max(0.1);
+    (shape, shape / level)
+}
+
 /// Joint posterior predictive draws of the incomplete rows: each draw shares one completeness
 /// curve across rows, so the draws carry the correlation that the common hazards induce.
 fn draw_pending(
@@ -350,6 +387,7 @@ fn draw_pending(
     seed: u64,
 ) -> Vec<RowDraws> {
     let posterior = HazardPosterior::new(&estimate.counts, params);
+    let prior = level_prior(tri, estimate, params);
     let mut rng = StdRng::seed_from_u64(seed);
     let mut cdf = vec![1.0; tri.max_delay + 1];
     let mut draws: Vec<RowDraws> = pending
@@ -361,7 +399,7 @@ fn draw_pending(
         for (&t, row) in pending.iter().zip(draws.iter_mut()) {
             let q = cdf[known_delay(tri, t)];
             row.completeness_sum += q;
-            row.eventual.push(draw_eventual(&mut rng, tri.latest(t), q, params));
+            row.eventual.push(draw_eventual(&mut rng, tri.latest(t), q, prior));
         }
     }
     draws
@@ -494,10 +532,17 @@ mod tests {
     fn negative_binomial_predictive_of_the_toy() {
         // docs/validation.md: conjugate NB predictive (Hohle & an der Heiden 2014) for t = 4 of
         // the toy, alpha = 1, beta = 0.001, q = F(0) (scipy): mean 51.0098, median 51, 95% [38, 66].
-        let params = HazardParams { gamma_alpha: 1.0, gamma_beta: 0.001, ..HazardParams::default() };
+        let params = HazardParams {
+            gamma_alpha: 1.0,
+            gamma_beta: 0.001,
+            level_prior_shape: None,
+            ..HazardParams::default()
+        };
         let q = 3363.0 / 6734.0;
         let mut rng = StdRng::seed_from_u64(20260301);
-        let mut draws: Vec<f64> = (0..200_000).map(|_| draw_eventual(&mut rng, 25.0, q, &params)).collect();
+        let mut draws: Vec<f64> = (0..200_000)
+            .map(|_| draw_eventual(&mut rng, 25.0, q, (params.gamma_alpha, params.gamma_beta)))
+            .collect();
         draws.sort_by(f64::total_cmp);
         let mean = draws.iter().sum::<f64>() / draws.len() as f64;
         // (what, got, want, tolerance): Monte Carlo with 200,000 draws, tolerances from the brief.
@@ -539,11 +584,12 @@ mod tests {
             assert!(summaries.iter().all(|&value| value == row.observed), "{row:?}");
             assert_eq!(row.completeness, 1.0);
         }
-        // Incomplete rows: completeness is the point estimate F(T - t) (docs/validation.md toy, scipy),
-        // and the intervals are nested around the median, above the count so far.
+        // Incomplete rows: the completeness shown (observed / predictive mean) is near the point
+        // estimate F(T - t) (docs/validation.md toy, scipy), and the intervals are nested
+        // around the median, above the count so far.
         for (t, q) in [(3, 59.0 / 74.0), (4, 3363.0 / 6734.0)] {
             let row = &now.rows[t];
-            assert!(close(row.completeness, q, 1e-12));
+            assert!(close(row.completeness, q, 0.06), "{row:?}");
             let ladder = [row.observed, row.lower95, row.lower90, row.lower50, row.median];
             let upper = [row.median, row.upper50, row.upper90, row.upper95];
             assert!(

@@ -2,10 +2,13 @@
 //! reporting triangle, with prediction intervals. `hazard` is the reverse-time discrete
 //! hazard method (Lawless 1994) with the conjugate negative-binomial predictive of Hohle &
 //! an der Heiden (2014); `smooth` lets log incidence vary smoothly over reference dates and
-//! the delay distribution change over time. Both return the same `Nowcast` shape.
+//! the delay distribution change over time; `ensemble` averages their quantiles. All return
+//! the same `Nowcast` shape. `suite` scores them on simulated reporting situations.
 
+pub mod ensemble;
 pub mod hazard;
 pub mod smooth;
+pub mod suite;
 
 use crate::model::NowcastMethod;
 use chrono::NaiveDate;
@@ -40,7 +43,11 @@ pub struct Nowcast {
     pub problems: Vec<String>,
 }
 
-/// Summarises predictive draws of one reference date into a row.
+/// Summarises predictive draws of one reference date into a row, consistently: a model
+/// completeness of 1 means every draw is the observed count (median = observed, no width),
+/// and the completeness shown is the share of the predictive mean already observed
+/// (`observed / mean`), so it is 1 exactly when the interval has no width. Where nothing is
+/// observed yet it is the model's expected completeness.
 pub fn row_from_draws(
     date: NaiveDate,
     horizon: usize,
@@ -48,9 +55,14 @@ pub fn row_from_draws(
     completeness: f64,
     draws: &mut [f64],
 ) -> NowcastRow {
+    if completeness >= 1.0 {
+        draws.iter_mut().for_each(|d| *d = observed);
+    }
     draws.sort_by(|a, b| a.total_cmp(b));
     let q = |p: f64| quantile_sorted(draws, p);
     let mean = if draws.is_empty() { observed } else { draws.iter().sum::<f64>() / draws.len() as f64 };
+    let completeness =
+        if observed > 0.0 && mean > 0.0 { (observed / mean).min(1.0) } else { completeness.min(1.0) };
     NowcastRow {
         date,
         horizon,
@@ -80,6 +92,23 @@ pub fn quantile_sorted(sorted: &[f64], p: f64) -> f64 {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn completeness_agrees_with_the_interval() {
+        let date = NaiveDate::from_ymd_opt(2026, 3, 1).unwrap();
+        // A complete row: whatever the draws, median = observed and no width.
+        let complete = row_from_draws(date, 0, 40.0, 1.0, &mut [40.0, 41.0, 45.0]);
+        assert_eq!(
+            (complete.median, complete.lower95, complete.upper95, complete.completeness),
+            (40.0, 40.0, 40.0, 1.0)
+        );
+        // Draws above the observed count: completeness under 1, the share of the mean known.
+        let open = row_from_draws(date, 0, 40.0, 1.0 - 1e-9, &mut [40.0, 42.0, 44.0, 46.0]);
+        assert!((open.completeness - 40.0 / 43.0).abs() < 1e-12, "{open:?}");
+        assert!(open.upper95 > open.lower95);
+        // Nothing observed: the model's completeness.
+        assert_eq!(row_from_draws(date, 0, 0.0, 0.05, &mut [0.0, 3.0]).completeness, 0.05);
+    }
 
     #[test]
     fn type_1_quantiles() {

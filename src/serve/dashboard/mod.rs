@@ -26,12 +26,9 @@ use chrono::{DateTime, NaiveDate, Utc};
 pub use self::page::CAUTION;
 use self::page::SourcePage;
 use self::panels::Panel;
-use crate::model::{Field, SnapshotId, SourceId};
+use crate::config::AnalysisConfig;
+use crate::model::{Field, NowcastMethod, SnapshotId, SourceId};
 use crate::store::{Reader, StoreError, time_text};
-
-/// Nowcast horizons over which methods are compared when choosing the one to draw (the same
-/// range `tidemark nowcast --method auto` uses).
-const RANKING_HORIZONS: usize = 7;
 
 /// Most open alerts listed on a page.
 const MAX_ALERTS: usize = 50;
@@ -40,6 +37,27 @@ const MAX_ALERTS: usize = 50;
 #[derive(Debug, Clone)]
 pub struct DashboardState {
     pub store: PathBuf,
+    /// How `auto` chooses the nowcast drawn: as `tidemark nowcast --method auto` does.
+    pub auto: AutoSettings,
+}
+
+/// The configuration `auto` reads (`analysis.score_window`, `analysis.nowcast_methods`).
+#[derive(Debug, Clone, PartialEq)]
+pub struct AutoSettings {
+    pub score_window: usize,
+    pub methods: Vec<NowcastMethod>,
+}
+
+impl AutoSettings {
+    pub fn of(analysis: &AnalysisConfig) -> AutoSettings {
+        AutoSettings { score_window: analysis.score_window, methods: analysis.nowcast_methods.clone() }
+    }
+}
+
+impl DashboardState {
+    pub fn new(store: PathBuf, analysis: &AnalysisConfig) -> DashboardState {
+        DashboardState { store, auto: AutoSettings::of(analysis) }
+    }
 }
 
 /// `/` and `/sources/{name}`.
@@ -86,8 +104,8 @@ async fn source_page(
             );
         }
     };
-    let store = state.store.clone();
-    let result = tokio::task::spawn_blocking(move || load_source_page(&store, &name, as_of)).await;
+    let (store, auto) = (state.store.clone(), state.auto.clone());
+    let result = tokio::task::spawn_blocking(move || load_source_page(&store, &auto, &name, as_of)).await;
     match result {
         Ok(Ok(Some(page))) => Html(page::source(&page)).into_response(),
         Ok(Ok(None)) => message(StatusCode::NOT_FOUND, "No source of that name in this store."),
@@ -127,6 +145,7 @@ fn server_error_text() -> Response {
 /// latest when `None`); `None` when there is no such source.
 pub fn load_source_page(
     store: &Path,
+    auto: &AutoSettings,
     name: &str,
     as_of: Option<DateTime<Utc>>,
 ) -> Result<Option<SourcePage>, DashboardError> {
@@ -139,7 +158,7 @@ pub fn load_source_page(
     let (panels, alerts) = match &selected {
         Some((id, _)) => {
             let ids: Vec<SnapshotId> = snapshots.iter().map(|(id, _)| *id).collect();
-            (build_panels(&reader, source_id, *id, &ids)?, reader.open_alerts(name, MAX_ALERTS)?)
+            (build_panels(&reader, auto, source_id, *id, &ids)?, reader.open_alerts(name, MAX_ALERTS)?)
         }
         None => (Vec::new(), None),
     };
@@ -155,23 +174,18 @@ pub fn load_source_page(
 
 fn build_panels(
     reader: &Reader,
+    auto: &AutoSettings,
     source_id: SourceId,
     snapshot_id: SnapshotId,
     applied: &[SnapshotId],
 ) -> Result<Vec<Panel>, DashboardError> {
     let onset =
         shape::day_counts(&reader.curve(source_id, snapshot_id, Field::OnsetDate, None)?, shape::CURVE_DAYS);
-    let methods =
-        reader.nowcast_methods_ranked(source_id, snapshot_id, Field::OnsetDate, RANKING_HORIZONS)?;
-    let method = methods.first();
-    let nowcast = match method {
-        Some(method) => {
-            let rows = reader.nowcast(snapshot_id, (Field::OnsetDate.name(), "all", "", method))?;
-            let from = onset.days.first().map(|d| d.0).unwrap_or(NaiveDate::MIN);
-            shape::nowcast_points(&rows, from)
-        }
-        None => Vec::new(),
-    };
+    let series = (Field::OnsetDate.name(), "all", "");
+    let choice = reader.auto_method(source_id, snapshot_id, series, auto.score_window, &auto.methods)?;
+    let rows = reader.nowcast(snapshot_id, (series.0, series.1, series.2, choice.method.name()))?;
+    let from = onset.days.first().map(|d| d.0).unwrap_or(NaiveDate::MIN);
+    let nowcast = shape::nowcast_points(&rows, from);
     let report =
         shape::day_counts(&reader.curve(source_id, snapshot_id, Field::ReportDate, None)?, shape::CURVE_DAYS);
     let delays: Vec<i64> = reader
@@ -184,7 +198,7 @@ fn build_panels(
     let window = shape::snapshot_window(applied, snapshot_id, shape::SNAPSHOT_COLUMNS);
     let missing = reader.missingness(source_id, &window)?;
     Ok(vec![
-        panels::onset_curve(&onset, &nowcast, method.map(String::as_str))?,
+        panels::onset_curve(&onset, &nowcast, &choice)?,
         panels::report_curve(&report)?,
         panels::delay_histogram(&delays, fit.as_ref())?,
         panels::lag_trend(&lags)?,

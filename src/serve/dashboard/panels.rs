@@ -7,6 +7,7 @@ use chrono::{Days, NaiveDate};
 use super::chart::{self, ChartError, Frame, Layer, Mark};
 use super::shape::{self, DayCounts, Histogram, LagPoint, NowcastPoint};
 use crate::analysis::delay::{Dist, Family};
+use crate::analysis::scoring::AutoChoice;
 use crate::store::{MISSINGNESS_FIELDS, SnapshotMissing, StoredDelayFit};
 
 /// One chart with its words and numbers.
@@ -37,6 +38,8 @@ impl NumbersTable {
 const BAR: (u8, u8, u8) = (86, 120, 160);
 const ESTIMATE: (u8, u8, u8) = (190, 80, 20);
 const SECOND: (u8, u8, u8) = (40, 130, 90);
+/// Background of days whose nowcast has low information.
+const LOW_INFORMATION: (u8, u8, u8) = (170, 170, 170);
 
 /// Days shown in the nowcast table (the most recent).
 const NOWCAST_TABLE_DAYS: usize = 21;
@@ -74,7 +77,7 @@ fn offset(first: NaiveDate, date: NaiveDate) -> f64 {
 pub fn onset_curve(
     counts: &DayCounts,
     nowcast: &[NowcastPoint],
-    method: Option<&str>,
+    choice: &AutoChoice,
 ) -> Result<Panel, ChartError> {
     let dates = counts.days.iter().map(|(d, _)| *d).chain(nowcast.iter().map(|p| p.date));
     let (Some(first), Some(last)) = (dates.clone().min(), dates.max()) else {
@@ -91,7 +94,20 @@ pub fn onset_curve(
     let band: Vec<(f64, f64, f64)> =
         nowcast.iter().map(|p| (offset(first, p.date), p.lower90, p.upper90)).collect();
     let median: Vec<(f64, f64)> = nowcast.iter().map(|p| (offset(first, p.date), p.median)).collect();
-    let mut layers = vec![Layer { class: "observed", color: BAR, opacity: 0.85, marks: bars }];
+    // Days whose estimate rests mostly on the model: shaded behind the bars, full height.
+    let low: Vec<Mark> = nowcast
+        .iter()
+        .filter(|p| p.low_information)
+        .map(|p| {
+            let x = offset(first, p.date);
+            Mark::Bar { x0: x - 0.5, x1: x + 0.5, y0: 0.0, y1: y_max }
+        })
+        .collect();
+    let mut layers = Vec::new();
+    if !low.is_empty() {
+        layers.push(Layer { class: "low-information", color: LOW_INFORMATION, opacity: 0.35, marks: low });
+    }
+    layers.push(Layer { class: "observed", color: BAR, opacity: 0.85, marks: bars });
     if !nowcast.is_empty() {
         layers.push(Layer {
             class: "nowcast-band",
@@ -111,11 +127,24 @@ pub fn onset_curve(
         "{total} cases with an onset date from {first} to {last} as known in this snapshot; {} records have no onset date.",
         counts.undated
     );
-    match method {
-        Some(method) if !nowcast.is_empty() => summary.push_str(&format!(
-            " The line is the nowcast median ({method} method) of the count that will eventually be reported for each recent onset date; the shaded band is its 90% prediction interval. The last days always look low in the bars because their cases are still arriving."
-        )),
-        _ => summary.push_str(" No nowcast is stored for this snapshot, so only the observed counts are shown."),
+    if nowcast.is_empty() {
+        summary.push_str(" No nowcast is stored for this snapshot, so only the observed counts are shown.");
+    } else {
+        summary.push_str(&format!(
+            " The line is the nowcast median ({} method) of the count that will eventually be reported for each recent onset date; the shaded band is its 90% prediction interval. The last days always look low in the bars because their cases are still arriving. {}.",
+            choice.method,
+            capitalised(&choice.reason)
+        ));
+        let low_days = nowcast.iter().filter(|p| p.low_information).count();
+        if low_days > 0 {
+            summary.push_str(&format!(
+                " The {low_days} grey-shaded days have low information: under 10% of their eventual count is expected to be known yet, so their estimate rests mostly on the model."
+            ));
+        }
+        if let Some(warning) = &choice.warning {
+            summary.push(' ');
+            summary.push_str(warning);
+        }
     }
     let desc = format!(
         "Bar chart of cases per onset date from {first} to {last}, with the nowcast median and 90% band for recent days."
@@ -135,7 +164,8 @@ pub fn onset_curve(
         y_ticks: 6,
         y_label_area: 64,
     };
-    let mut table = NumbersTable::new(&["onset date", "observed", "nowcast median", "90% interval"]);
+    let mut table =
+        NumbersTable::new(&["onset date", "observed", "nowcast median", "90% interval", "information"]);
     let skip = nowcast.len().saturating_sub(NOWCAST_TABLE_DAYS);
     for p in &nowcast[skip..] {
         table.rows.push(vec![
@@ -143,6 +173,7 @@ pub fn onset_curve(
             one_decimal(p.observed),
             one_decimal(p.median),
             format!("{} - {}", one_decimal(p.lower90), one_decimal(p.upper90)),
+            if p.low_information { "low" } else { "adequate" }.to_string(),
         ]);
     }
     if nowcast.is_empty() {
@@ -477,6 +508,12 @@ fn bar_marks(first: NaiveDate, days: &[(NaiveDate, i64)]) -> Vec<Mark> {
             Mark::Bar { x0: x - 0.4, x1: x + 0.4, y0: 0.0, y1: *c as f64 }
         })
         .collect()
+}
+
+/// The text with its first letter upper-cased.
+fn capitalised(text: &str) -> String {
+    let mut chars = text.chars();
+    chars.next().map(|c| c.to_uppercase().chain(chars).collect()).unwrap_or_default()
 }
 
 fn empty(id: &'static str, heading: &str, summary: &str) -> Panel {

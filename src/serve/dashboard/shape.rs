@@ -31,6 +31,8 @@ pub struct NowcastPoint {
     pub median: f64,
     pub lower90: f64,
     pub upper90: f64,
+    /// The estimate rests mostly on the model (expected completeness under 10%).
+    pub low_information: bool,
 }
 
 /// Observed whole-day delays in bins 0, 1, ..., `cap - 1` and a last bin for `cap` or more.
@@ -74,6 +76,7 @@ pub fn nowcast_points(rows: &[NowcastRow], from: NaiveDate) -> Vec<NowcastPoint>
             median: r.median,
             lower90: r.lower90,
             upper90: r.upper90,
+            low_information: crate::analysis::scoring::low_information(r),
         })
         .collect();
     points.sort_by_key(|p| p.date);
