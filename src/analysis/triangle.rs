@@ -96,6 +96,17 @@ impl Triangle {
         Increments { n, downward_cells, downward_total }
     }
 
+    /// The triangle without its first `start` rows (all of them when `start` is past the end).
+    pub fn without_first_rows(&self, start: usize) -> Triangle {
+        let start = start.min(self.rows());
+        Triangle {
+            first_date: self.date(start),
+            last_day: self.last_day,
+            max_delay: self.max_delay,
+            cumulative: self.cumulative[start..].to_vec(),
+        }
+    }
+
     /// The same triangle as known on an earlier day `as_of` (rows after it dropped, cells
     /// beyond it removed): what a nowcast made on that day could see.
     pub fn as_of(&self, as_of: NaiveDate) -> Triangle {

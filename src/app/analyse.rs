@@ -247,7 +247,7 @@ pub fn backtest(
     while day <= to {
         let known = full.as_of(day);
         let start = known.rows().saturating_sub(analysis.window + analysis.max_delay);
-        let known = trim_rows(&known, start);
+        let known = known.without_first_rows(start);
         let seed = |method: NowcastMethod| {
             seed_for(latest, &key, method.name())
                 ^ day.to_string().len() as u64
@@ -261,16 +261,6 @@ pub fn backtest(
     let cells = backtest::score(&nowcasts, &full, request.lag, request.max_horizon);
     store_backtest(store, source_id, latest, request, &cells, (from, to))?;
     Ok((latest, cells, from, to))
-}
-
-/// The triangle without its first `start` rows.
-fn trim_rows(tri: &Triangle, start: usize) -> Triangle {
-    Triangle {
-        first_date: tri.date(start.min(tri.rows())),
-        last_day: tri.last_day,
-        max_delay: tri.max_delay,
-        cumulative: tri.cumulative[start.min(tri.rows())..].to_vec(),
-    }
 }
 
 fn store_backtest(

@@ -13,7 +13,7 @@ use super::errors::{NotFound, UsageError, not_found, usage};
 use super::ingest::end_of_day;
 use crate::analysis::delay::FamilyChoice;
 use crate::config::{Config, SourceConfig};
-use crate::model::{Field, MethodChoice, SnapshotStatus};
+use crate::model::{Field, MethodChoice, SnapshotId, SnapshotStatus, SourceId};
 use crate::store::Reader;
 use crate::table::{Cell, OutputFormat, Table};
 
@@ -322,17 +322,7 @@ pub struct NowcastArgs<'a> {
 fn nowcast_table(config: &Config, reader: &Reader, args: &NowcastArgs<'_>) -> Result<(Table, String)> {
     use super::analyse::{self, TriangleKey};
     use crate::analysis::scoring;
-    source(config, args.source)?;
-    let field = parse_field_arg(args.by)?;
-    if !config.analysis.reference_fields.contains(&field) {
-        return Err(usage(format!("--by {field}: not in analysis.reference_fields, so no triangle is kept")));
-    }
-    let as_of = args.as_of.map(parse_time_arg).transpose()?;
-    let source_id =
-        reader.source_id(args.source)?.ok_or_else(|| not_found("the source has no snapshots yet"))?;
-    let snapshot_id = reader
-        .snapshot_as_of(source_id, as_of)?
-        .ok_or_else(|| not_found("the source has no applied snapshot at that time"))?;
+    let (field, source_id, snapshot_id) = nowcast_scope(config, reader, args.source, args.by, args.as_of)?;
     let mut strata = vec![TriangleKey::all(field)];
     if let Some(text) = args.stratify {
         let stratum_field = parse_field_arg(text)?;
@@ -418,6 +408,28 @@ fn nowcast_table(config: &Config, reader: &Reader, args: &NowcastArgs<'_>) -> Re
     Ok((table, note))
 }
 
+/// The reference field, source and snapshot (current at `as_of`) of a nowcast or score
+/// question; a field without a kept triangle is a usage error.
+fn nowcast_scope(
+    config: &Config,
+    reader: &Reader,
+    name: &str,
+    by: &str,
+    as_of: Option<&str>,
+) -> Result<(Field, SourceId, SnapshotId)> {
+    source(config, name)?;
+    let field = parse_field_arg(by)?;
+    if !config.analysis.reference_fields.contains(&field) {
+        return Err(usage(format!("--by {field}: not in analysis.reference_fields, so no triangle is kept")));
+    }
+    let as_of = as_of.map(parse_time_arg).transpose()?;
+    let source_id = reader.source_id(name)?.ok_or_else(|| not_found("the source has no snapshots yet"))?;
+    let snapshot_id = reader
+        .snapshot_as_of(source_id, as_of)?
+        .ok_or_else(|| not_found("the source has no applied snapshot at that time"))?;
+    Ok((field, source_id, snapshot_id))
+}
+
 /// Arguments of `tidemark scores`.
 #[derive(Debug, Clone)]
 pub struct ScoresArgs<'a> {
@@ -431,17 +443,7 @@ pub struct ScoresArgs<'a> {
 /// `analysis.score_window` forecast days; the note says what `auto` chooses from them.
 fn scores_table(config: &Config, reader: &Reader, args: &ScoresArgs<'_>) -> Result<(Table, String)> {
     use super::analyse::{self, TriangleKey};
-    source(config, args.source)?;
-    let field = parse_field_arg(args.by)?;
-    if !config.analysis.reference_fields.contains(&field) {
-        return Err(usage(format!("--by {field}: not in analysis.reference_fields, so no nowcast is kept")));
-    }
-    let as_of = args.as_of.map(parse_time_arg).transpose()?;
-    let source_id =
-        reader.source_id(args.source)?.ok_or_else(|| not_found("the source has no snapshots yet"))?;
-    let snapshot_id = reader
-        .snapshot_as_of(source_id, as_of)?
-        .ok_or_else(|| not_found("the source has no applied snapshot at that time"))?;
+    let (field, source_id, snapshot_id) = nowcast_scope(config, reader, args.source, args.by, args.as_of)?;
     let analysis = &config.analysis;
     let table = reader.score_table(
         source_id,

@@ -6,6 +6,7 @@
 use chrono::NaiveDate;
 use rusqlite::params;
 
+use super::triangle::nowcast_row;
 use super::{Reader, Store, StoreError};
 use crate::analysis::nowcast::NowcastRow;
 use crate::analysis::scoring::{self, AUTO_HORIZONS, AutoChoice, MethodScore, RowScore};
@@ -83,20 +84,7 @@ impl Reader {
                     method: r.get(3)?,
                     forecast_snapshot_id: r.get(4)?,
                     forecast_day: r.get::<_, String>(5)?.parse().unwrap_or_default(),
-                    row: NowcastRow {
-                        date: r.get::<_, String>(6)?.parse().unwrap_or_default(),
-                        horizon: r.get::<_, i64>(7)? as usize,
-                        observed: r.get(8)?,
-                        median: r.get(9)?,
-                        mean: r.get(10)?,
-                        lower50: r.get(11)?,
-                        upper50: r.get(12)?,
-                        lower90: r.get(13)?,
-                        upper90: r.get(14)?,
-                        lower95: r.get(15)?,
-                        upper95: r.get(16)?,
-                        completeness: r.get(17)?,
-                    },
+                    row: nowcast_row(r, 6)?,
                     truth: r.get::<_, f64>(18)?,
                 })
             },

@@ -569,24 +569,29 @@ impl Reader {
              FROM nowcast WHERE snapshot_id = ?1 AND ref_field = ?2 AND stratum_kind = ?3 AND stratum = ?4
                AND method = ?5 ORDER BY ref_date",
         )?;
-        let rows = stmt.query_map(params![snapshot_id, ref_field, kind, stratum, method], |r| {
-            Ok(NowcastRow {
-                date: r.get::<_, String>(0)?.parse().unwrap_or_default(),
-                horizon: r.get::<_, i64>(1)? as usize,
-                observed: r.get(2)?,
-                median: r.get(3)?,
-                mean: r.get(4)?,
-                lower50: r.get(5)?,
-                upper50: r.get(6)?,
-                lower90: r.get(7)?,
-                upper90: r.get(8)?,
-                lower95: r.get(9)?,
-                upper95: r.get(10)?,
-                completeness: r.get(11)?,
-            })
-        })?;
+        let rows =
+            stmt.query_map(params![snapshot_id, ref_field, kind, stratum, method], |r| nowcast_row(r, 0))?;
         Ok(rows.collect::<Result<_, _>>()?)
     }
+}
+
+/// A nowcast row from the twelve columns `ref_date, horizon, observed, median, mean, lower50,
+/// upper50, lower90, upper90, lower95, upper95, completeness` starting at column `at`.
+pub(super) fn nowcast_row(r: &rusqlite::Row<'_>, at: usize) -> rusqlite::Result<NowcastRow> {
+    Ok(NowcastRow {
+        date: r.get::<_, String>(at)?.parse().unwrap_or_default(),
+        horizon: r.get::<_, i64>(at + 1)? as usize,
+        observed: r.get(at + 2)?,
+        median: r.get(at + 3)?,
+        mean: r.get(at + 4)?,
+        lower50: r.get(at + 5)?,
+        upper50: r.get(at + 6)?,
+        lower90: r.get(at + 7)?,
+        upper90: r.get(at + 8)?,
+        lower95: r.get(at + 9)?,
+        upper95: r.get(at + 10)?,
+        completeness: r.get(at + 11)?,
+    })
 }
 
 #[cfg(test)]

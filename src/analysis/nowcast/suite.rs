@@ -343,13 +343,7 @@ pub fn score_series(
 /// maximum delay; the smooth method uses at most 120).
 fn recent_rows(tri: &Triangle, settings: &SuiteSettings) -> Triangle {
     let keep = (settings.hazard_window + settings.max_delay).max(120).min(tri.rows());
-    let start = tri.rows() - keep;
-    Triangle {
-        first_date: tri.date(start),
-        last_day: tri.last_day,
-        max_delay: tri.max_delay,
-        cumulative: tri.cumulative[start..].to_vec(),
-    }
+    tri.without_first_rows(tri.rows() - keep)
 }
 
 /// Runs one class over every seed on up to `threads` threads; `progress` hears each seed.
