@@ -492,6 +492,9 @@ impl Reader {
         snapshot_id: SnapshotId,
         pairs: &[(Field, Option<Field>)],
     ) -> Result<Vec<Vec<DelayRow>>, StoreError> {
+        if pairs.is_empty() {
+            return Ok(Vec::new());
+        }
         let mut columns: Vec<Field> = Vec::new();
         let mut column_of = |field: Field| match columns.iter().position(|c| *c == field) {
             Some(at) => at,

@@ -17,6 +17,7 @@ mod limits;
 mod pipeline;
 mod quality;
 mod run_process;
+mod scores;
 mod support;
 mod tidy;
 mod url_source;

@@ -86,6 +86,16 @@ impl Gate {
     }
 }
 
+/// Opens the gate when the test ends, also when it fails: a held analysis thread would
+/// otherwise keep the runtime (and the test binary) waiting for ever.
+struct OpenAtEnd(Gate);
+
+impl Drop for OpenAtEnd {
+    fn drop(&mut self) {
+        self.0.open();
+    }
+}
+
 struct Daemon {
     events: mpsc::UnboundedReceiver<PollEvent>,
     analysed: mpsc::UnboundedReceiver<Analysed>,
@@ -164,6 +174,7 @@ async fn a_held_analysis_does_not_hold_up_another_sources_commits_and_is_coalesc
     let dir = tempfile::tempdir().unwrap();
     let (_, config) = write_config(dir.path());
     let gate = Gate::default();
+    let _open_at_end = OpenAtEnd(gate.clone());
     let mut daemon = start(config.clone(), Some(gate.hook(SLOW)));
     daemon.poll(SLOW).await;
     daemon.poll(QUICK).await;

@@ -85,7 +85,7 @@ impl SuiteSettings {
     /// The full suite (the bench): the analysis defaults (maximum delay 28, hazard window 42).
     pub fn full() -> SuiteSettings {
         SuiteSettings {
-            seeds: 40,
+            seeds: 12,
             history: 100,
             nowcast_days: 15,
             max_horizon: 7,
@@ -411,4 +411,32 @@ pub fn misses(score: &ClassScore) -> Vec<String> {
         }
     }
     missed
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn pooled(scores: &[ClassScore], method: NowcastMethod) -> Tally {
+        scores.iter().find(|s| s.candidate == Candidate::Method(method)).expect("method scored").pooled()
+    }
+
+    #[test]
+    fn suite_smoke_run_meets_the_broad_targets() {
+        // Check: simulation with known truth (the full suite is the bench; docs/validation.md).
+        // A few seeds of two classes: `smooth` covers and beats the naive count under a
+        // constant and a lengthening delay, and beats `hazard` when the delay lengthens.
+        let settings = SuiteSettings { seeds: 3, nowcast_days: 4, draws: 200, ..SuiteSettings::quick() };
+        let candidates = [Candidate::Method(NowcastMethod::Hazard), Candidate::Method(NowcastMethod::Smooth)];
+        for class in [ScenarioClass::ConstantDelay, ScenarioClass::LongerDelay] {
+            let scores = run_class(class, &candidates, &settings, 2, &|_| {});
+            let smooth = pooled(&scores, NowcastMethod::Smooth);
+            assert_eq!(smooth.n, 3 * 4 * 8, "{}", class.name());
+            assert!((0.75..=1.0).contains(&smooth.coverage90()), "{}: {}", class.name(), smooth.coverage90());
+            assert!(smooth.relative_wis() < 0.5, "{}: {}", class.name(), smooth.relative_wis());
+            if class == ScenarioClass::LongerDelay {
+                assert!(smooth.wis < pooled(&scores, NowcastMethod::Hazard).wis);
+            }
+        }
+    }
 }

@@ -33,6 +33,7 @@
 //! they assume smooth log incidence, a delay distribution that changes by stretching, and
 //! independent (or quasi-Poisson) counts; they do not cover reporting changes of other kinds.
 
+use chrono::Datelike;
 use rand::rngs::StdRng;
 use rand::{Rng, SeedableRng};
 use rand_distr::{Distribution, Gamma, Poisson};
@@ -91,6 +92,12 @@ pub struct SmoothParams {
     /// Estimate extra-Poisson variation of the daily totals and widen the intervals by it
     /// (default true; it is 1, i.e. no widening, for Poisson data).
     pub overdispersion: bool,
+    /// Report-day effects (default true): the cases due on a report date are reported then
+    /// with a share for that date's weekday (few at weekends) and for the date itself (a
+    /// reporting holiday), and the rest are carried to the next date (a Monday catch-up, a
+    /// backlog). The weekday shares carry over to the report dates still to come; the
+    /// per-date ones do not (the future is assumed an ordinary week).
+    pub report_day_effects: bool,
     /// Predictive draws per reference date (default 1000).
     pub draws: usize,
 }
@@ -106,6 +113,7 @@ impl Default for SmoothParams {
             delay_trend_knots: 1,
             delay_shape_penalty: 1.0,
             overdispersion: true,
+            report_day_effects: true,
             draws: 1000,
         }
     }
@@ -159,6 +167,8 @@ pub(super) struct Window {
     pub(super) n: Vec<Vec<f64>>,
     /// Reports so far of each window row (sum of `n`).
     pub(super) totals: Vec<f64>,
+    /// Weekday of window row 0's reference date (0 = Monday).
+    pub(super) first_weekday: usize,
 }
 
 impl Window {
@@ -182,7 +192,8 @@ impl Window {
         let n: Vec<Vec<f64>> = increments.n.into_iter().skip(first_row).collect();
         let observed = n.iter().map(|row| row.len().saturating_sub(1).min(max_delay)).collect();
         let totals = n.iter().map(|row| row.iter().sum()).collect();
-        Window { first_row, max_delay, observed, n, totals }
+        let first_weekday = tri.date(first_row).weekday().num_days_from_monday() as usize;
+        Window { first_row, max_delay, observed, n, totals, first_weekday }
     }
 
     pub(super) fn len(&self) -> usize {
