@@ -316,6 +316,39 @@ pub fn run_candidate(candidate: Candidate, tri: &Triangle, settings: &SuiteSetti
     }
 }
 
+/// Nowcasts a triangle with each candidate, in order; the ensemble reuses its members'
+/// nowcasts when they are candidates too (as the pipeline does), so each is fitted once.
+fn run_candidates(
+    candidates: &[Candidate],
+    tri: &Triangle,
+    settings: &SuiteSettings,
+    seed: u64,
+) -> Vec<Nowcast> {
+    let members = [NowcastMethod::Hazard, NowcastMethod::Smooth];
+    let mut done: Vec<Nowcast> = Vec::new();
+    for &candidate in candidates.iter().filter(|&&c| c != Candidate::Method(NowcastMethod::Ensemble)) {
+        done.push(run_candidate(candidate, tri, settings, seed));
+    }
+    candidates
+        .iter()
+        .map(|&candidate| match candidate {
+            Candidate::Method(NowcastMethod::Ensemble) => {
+                let parts: Vec<Nowcast> = members
+                    .iter()
+                    .map(|&m| match done.iter().find(|n| n.method == m) {
+                        Some(nowcast) => nowcast.clone(),
+                        None => run_candidate(Candidate::Method(m), tri, settings, seed),
+                    })
+                    .collect();
+                ensemble::combine(&parts)
+            }
+            Candidate::Method(method) => {
+                done.iter().find(|n| n.method == method).cloned().expect("computed above")
+            }
+        })
+        .collect()
+}
+
 /// Scores every candidate on one series: (candidate, per-horizon tallies).
 pub fn score_series(
     series: &Series,
@@ -328,8 +361,8 @@ pub fn score_series(
     for day in rows - settings.nowcast_days..rows {
         let known = series.triangle.as_of(series.triangle.date(day));
         let known = recent_rows(&known, settings);
-        for (at, &candidate) in candidates.iter().enumerate() {
-            let nowcast = run_candidate(candidate, &known, settings, seed ^ day as u64);
+        let nowcasts = run_candidates(candidates, &known, settings, seed ^ day as u64);
+        for (at, nowcast) in nowcasts.iter().enumerate() {
             for row in nowcast.rows.iter().filter(|r| r.horizon <= settings.max_horizon) {
                 let t = day - row.horizon;
                 tallies[at][row.horizon].add(row, series.truth[t]);

@@ -28,26 +28,33 @@ pub(crate) fn minimise(objective: &impl Objective, mut x: Vec<f64>) -> Option<(M
         return None;
     }
     let mut converged = false;
+    // The factor of the Hessian at the current x, once the loop stops without moving.
+    let mut factor_at_x = None;
     for _ in 0..MAX_ITERATIONS {
         let (gradient, hessian) = objective.derivatives(&x);
-        let step = hessian.cholesky()?.solve(&gradient);
+        let factor = hessian.cholesky()?;
+        let step = factor.solve(&gradient);
         let decrement = dot(&gradient, &step);
         if !decrement.is_finite() {
             return None;
         }
         if decrement < 1e-6 * (1.0 + value.abs()).min(1e4) {
             converged = true;
+            factor_at_x = Some(factor);
             break;
         }
         let Some((next, next_value)) = backtrack(objective, &x, &step, value, decrement) else {
             converged = decrement < 1e-4 * (1.0 + value.abs()).min(1e4);
+            factor_at_x = Some(factor);
             break;
         };
         x = next;
         value = next_value;
     }
-    let (_, hessian) = objective.derivatives(&x);
-    let hessian = hessian.cholesky()?;
+    let hessian = match factor_at_x {
+        Some(factor) => factor,
+        None => objective.derivatives(&x).1.cholesky()?,
+    };
     Some((Minimum { x, value, hessian }, converged))
 }
 

@@ -348,7 +348,10 @@ impl<'a> DelayModel<'a> {
         if norm.is_nan() || norm <= 0.0 {
             return;
         }
-        let mut xbar = vec![0.0; index.len()];
+        // The row's information in local coordinates (upper triangle), scattered once.
+        let n = index.len();
+        let mut local = vec![0.0; n * n];
+        let mut xbar = vec![0.0; n];
         for (d, x) in xs.iter().enumerate() {
             let q = masses[d] / norm;
             if q <= 0.0 {
@@ -358,14 +361,17 @@ impl<'a> DelayModel<'a> {
             for (i, &v) in x.iter().enumerate().filter(|(_, v)| **v != 0.0) {
                 xbar[i] += q * v;
                 gradient[index[i]] -= residual * v;
-                for (j, &w) in x.iter().enumerate().filter(|(_, w)| **w != 0.0) {
-                    hessian.add(index[i], index[j], total * q * v * w);
-                }
+                let weight = total * q * v;
+                local[i * n + i..(i + 1) * n].iter_mut().zip(&x[i..]).for_each(|(h, w)| *h += weight * w);
             }
         }
-        for (i, &gi) in index.iter().enumerate() {
-            for (j, &gj) in index.iter().enumerate() {
-                hessian.add(gi, gj, -total * xbar[i] * xbar[j]);
+        for i in 0..n {
+            for j in i..n {
+                let value = local[i * n + j] - total * xbar[i] * xbar[j];
+                hessian.add(index[i], index[j], value);
+                if i != j {
+                    hessian.add(index[j], index[i], value);
+                }
             }
         }
     }
