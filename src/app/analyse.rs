@@ -167,28 +167,14 @@ pub fn score_matured(
     Ok((day, scored))
 }
 
-/// Nowcasts of one triangle with each of `methods`, in that order; the ensemble is combined
-/// from its members' nowcasts (computed once even when they are not asked for themselves).
+/// Nowcasts of one triangle with each of `methods`, in that order (`ensemble::with_members`).
 fn nowcast_methods(
     methods: &[NowcastMethod],
     tri: &Triangle,
     analysis: &AnalysisConfig,
     seed: impl Fn(NowcastMethod) -> u64,
 ) -> Vec<Nowcast> {
-    let members = [NowcastMethod::Hazard, NowcastMethod::Smooth];
-    let wants_ensemble = methods.contains(&NowcastMethod::Ensemble);
-    let computed: Vec<Nowcast> = members
-        .iter()
-        .filter(|m| methods.contains(m) || wants_ensemble)
-        .map(|&m| run_method(m, tri, analysis, seed(m)))
-        .collect();
-    methods
-        .iter()
-        .filter_map(|&method| match method {
-            NowcastMethod::Ensemble => Some(ensemble::combine(&computed)),
-            _ => computed.iter().find(|n| n.method == method).cloned(),
-        })
-        .collect()
+    ensemble::with_members(methods, |m| run_method(m, tri, analysis, seed(m)))
 }
 
 /// Stores a snapshot's delay fits, one row set per (start field, end) pair; returns how

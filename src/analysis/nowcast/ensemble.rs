@@ -7,6 +7,25 @@
 use super::{Nowcast, NowcastRow};
 use crate::model::NowcastMethod;
 
+/// The members of the ensemble.
+pub const MEMBERS: [NowcastMethod; 2] = [NowcastMethod::Hazard, NowcastMethod::Smooth];
+
+/// Nowcasts with each of `methods`, in that order, `run` computing a member method; the
+/// ensemble is combined from its members' nowcasts, each computed once (even when it is not
+/// asked for itself). The pipeline and the calibration suite both nowcast this way.
+pub fn with_members(methods: &[NowcastMethod], run: impl Fn(NowcastMethod) -> Nowcast) -> Vec<Nowcast> {
+    let wants_ensemble = methods.contains(&NowcastMethod::Ensemble);
+    let computed: Vec<Nowcast> =
+        MEMBERS.iter().filter(|m| methods.contains(m) || wants_ensemble).map(|&m| run(m)).collect();
+    methods
+        .iter()
+        .filter_map(|&method| match method {
+            NowcastMethod::Ensemble => Some(combine(&computed)),
+            _ => computed.iter().find(|n| n.method == method).cloned(),
+        })
+        .collect()
+}
+
 /// The quantile average of `members`, over the reference dates that every member has. Rows
 /// whose members all call them complete stay complete (median = observed, no width).
 pub fn combine(members: &[Nowcast]) -> Nowcast {

@@ -309,44 +309,22 @@ pub fn run_candidate(candidate: Candidate, tri: &Triangle, settings: &SuiteSetti
             smooth::nowcast(tri, &params, seed)
         }
         Candidate::Method(NowcastMethod::Ensemble) => {
-            let parts = [NowcastMethod::Hazard, NowcastMethod::Smooth]
-                .map(|m| run_candidate(Candidate::Method(m), tri, settings, seed));
+            let parts = ensemble::MEMBERS.map(|m| run_candidate(Candidate::Method(m), tri, settings, seed));
             ensemble::combine(&parts)
         }
     }
 }
 
-/// Nowcasts a triangle with each candidate, in order; the ensemble reuses its members'
-/// nowcasts when they are candidates too (as the pipeline does), so each is fitted once.
+/// Nowcasts a triangle with each candidate, in order, as the pipeline does
+/// (`ensemble::with_members`: each member is fitted once).
 fn run_candidates(
     candidates: &[Candidate],
     tri: &Triangle,
     settings: &SuiteSettings,
     seed: u64,
 ) -> Vec<Nowcast> {
-    let members = [NowcastMethod::Hazard, NowcastMethod::Smooth];
-    let mut done: Vec<Nowcast> = Vec::new();
-    for &candidate in candidates.iter().filter(|&&c| c != Candidate::Method(NowcastMethod::Ensemble)) {
-        done.push(run_candidate(candidate, tri, settings, seed));
-    }
-    candidates
-        .iter()
-        .map(|&candidate| match candidate {
-            Candidate::Method(NowcastMethod::Ensemble) => {
-                let parts: Vec<Nowcast> = members
-                    .iter()
-                    .map(|&m| match done.iter().find(|n| n.method == m) {
-                        Some(nowcast) => nowcast.clone(),
-                        None => run_candidate(Candidate::Method(m), tri, settings, seed),
-                    })
-                    .collect();
-                ensemble::combine(&parts)
-            }
-            Candidate::Method(method) => {
-                done.iter().find(|n| n.method == method).cloned().expect("computed above")
-            }
-        })
-        .collect()
+    let methods: Vec<NowcastMethod> = candidates.iter().map(|&Candidate::Method(m)| m).collect();
+    ensemble::with_members(&methods, |m| run_candidate(Candidate::Method(m), tri, settings, seed))
 }
 
 /// Scores every candidate on one series: (candidate, per-horizon tallies).

@@ -122,8 +122,8 @@ impl<'a> DelayModel<'a> {
             .collect()
     }
 
-    /// The per-date log factors' Student-t prior: minus its log density (up to a constant)
-    /// and, per coefficient, (index, value, IRLS weight).
+    /// The per-date logits with their Student-t prior's scaled squares: per coefficient,
+    /// (index, value, precision times value squared).
     fn date_effects<'s>(&'s self, theta: &'s [f64]) -> impl Iterator<Item = (usize, f64, f64)> + 's {
         let first = self.first_effect() + WEEKDAYS;
         (first..self.len()).filter(|_| self.report_days).map(move |i| {
