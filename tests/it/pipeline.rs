@@ -100,6 +100,9 @@ struct Daemon {
     events: mpsc::UnboundedReceiver<PollEvent>,
     analysed: mpsc::UnboundedReceiver<Analysed>,
     nudges: HashMap<String, Arc<Notify>>,
+    /// Snapshots other sources' polls committed while one source's poll was awaited: a
+    /// poll may run unasked (a nudge left over from start), and what it took is not lost.
+    elsewhere: HashMap<String, Vec<(SnapshotId, SnapshotStatus)>>,
     shutdown: tokio_util::sync::CancellationToken,
     task: tokio::task::JoinHandle<anyhow::Result<()>>,
 }
@@ -117,23 +120,29 @@ fn start(config: Arc<Config>, gate: Option<AnalysisGate>) -> Daemon {
     };
     let shutdown = tokio_util::sync::CancellationToken::new();
     let task = tokio::spawn(daemon::run(config, shutdown.clone(), hooks, None));
-    Daemon { events, analysed, nudges, shutdown, task }
+    Daemon { events, analysed, nudges, elsewhere: HashMap::new(), shutdown, task }
 }
 
 impl Daemon {
-    /// Polls `source` now and returns the snapshots committed by polls that ended since.
+    /// Polls `source` now and returns the snapshots its polls committed since the last call
+    /// (including unasked polls seen while another source's poll was awaited).
     async fn poll(&mut self, source: &str) -> Vec<(SnapshotId, SnapshotStatus)> {
         let mark = Instant::now();
         self.nudges[source].notify_one();
-        let mut snapshots = Vec::new();
+        let mut snapshots = self.elsewhere.remove(source).unwrap_or_default();
         loop {
             let event =
                 tokio::time::timeout(Duration::from_secs(20), self.events.recv()).await.unwrap().unwrap();
-            if event.source == source {
-                snapshots.extend(event.snapshots);
-                if event.started >= mark {
-                    return snapshots;
-                }
+            if let Some(error) = &event.error {
+                eprintln!("poll of {} reported: {error}", event.source);
+            }
+            if event.source != source {
+                self.elsewhere.entry(event.source).or_default().extend(event.snapshots);
+                continue;
+            }
+            snapshots.extend(event.snapshots);
+            if event.started >= mark {
+                return snapshots;
             }
         }
     }
