@@ -19,7 +19,7 @@ use super::analyse::{self, BacktestRequest, TriangleKey};
 use super::commands;
 use super::daemon::{self, Hooks, PollEvent};
 use super::ingest::end_of_day;
-use super::pipeline::Analysed;
+use super::pipeline::{Analysed, StepReport};
 use crate::analysis::nowcast::NowcastRow;
 use crate::config::Config;
 use crate::demo::{self, COUNTY_SOURCE, LAB_SOURCE, Scenario};
@@ -59,6 +59,8 @@ pub struct DemoReport {
     pub alerts: Vec<DemoAlert>,
     /// The problems injected into the feeds (known truth).
     pub injections: Vec<demo::Injection>,
+    /// Every post-snapshot step the daemon ran, in order (the scoring benchmark times them).
+    pub steps: Vec<StepReport>,
 }
 
 /// One alert of the run and the injected problem it matches, if any.
@@ -114,14 +116,16 @@ pub fn run(options: &DemoOptions, progress: &mut dyn FnMut(&str)) -> Result<Demo
     ));
     let scenario = Scenario::generate(options.seed, options.days);
     let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
-    let (config, started) = runtime.block_on(drive(options, &scenario, progress))?;
+    let mut steps = Vec::new();
+    let (config, started) = runtime.block_on(drive(options, &scenario, &mut steps, progress))?;
     progress(&format!("all days ingested in {:.1} s", started.elapsed().as_secs_f64()));
-    summarise(&config, &scenario, options.dir.clone())
+    Ok(DemoReport { steps, ..summarise(&config, &scenario, options.dir.clone())? })
 }
 
 async fn drive(
     options: &DemoOptions,
     scenario: &Scenario,
+    steps: &mut Vec<StepReport>,
     progress: &mut dyn FnMut(&str),
 ) -> Result<(Config, Instant)> {
     let listener = TcpListener::bind("127.0.0.1:0").await.context("binding the demo's lab server")?;
@@ -160,7 +164,7 @@ async fn drive(
         }
         let waited = async {
             let (outcomes, owed) = wait_for_polls(&mut events, mark).await?;
-            wait_for_analyses(&mut analysed, owed).await?;
+            wait_for_analyses(&mut analysed, owed, steps).await?;
             Ok::<_, anyhow::Error>(outcomes)
         };
         let outcomes = match waited.await {
@@ -199,6 +203,7 @@ fn drop_file(from: &Path, inbox: &Path) -> Result<()> {
 async fn wait_for_analyses(
     analysed: &mut mpsc::UnboundedReceiver<Analysed>,
     mut owed: Vec<SnapshotId>,
+    steps: &mut Vec<StepReport>,
 ) -> Result<()> {
     while !owed.is_empty() {
         let analysis = tokio::time::timeout(POLL_WAIT, analysed.recv())
@@ -209,6 +214,7 @@ async fn wait_for_analyses(
             anyhow::bail!("the analysis of snapshot {} failed: {failure}", analysis.snapshot_id);
         }
         owed.retain(|id| *id != analysis.snapshot_id && !analysis.superseded.contains(id));
+        steps.extend(analysis.steps);
     }
     Ok(())
 }
@@ -289,6 +295,7 @@ fn summarise(config: &Config, scenario: &Scenario, dir: PathBuf) -> Result<DemoR
         nowcast,
         nowcast_method,
         backtest,
+        steps: Vec::new(),
     })
 }
 

