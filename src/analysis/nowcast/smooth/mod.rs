@@ -73,7 +73,7 @@ pub struct SmoothParams {
     pub delay_changes: bool,
     /// Precision per day of the random walk of the log stretch of the delay distribution (a
     /// prior scale of `1 / sqrt(penalty)` per day). Default `None`: chosen by Laplace
-    /// marginal likelihood over 10, 100, 1000, 10^4.
+    /// marginal likelihood over 10^4, 1000, 100, 10, stiffest first, stopping once it falls.
     pub delay_trend_penalty: Option<f64>,
     /// Degrees of freedom of the Student-t distribution of the log stretch's steps between
     /// knots (default 2): heavy tails let a sudden change in reporting show as one large step
