@@ -13,6 +13,9 @@ use tidemark::analysis::delay::{self, DelayObs, Family, FitOptions};
 use tidemark::analysis::nowcast::{hazard, smooth};
 use tidemark::analysis::simulate::{self, Scenario};
 
+#[path = "support/machine.rs"]
+mod machine;
+
 fn best_of<T>(runs: usize, mut work: impl FnMut() -> T) -> (Duration, T) {
     let mut best = Duration::MAX;
     let mut last = None;
@@ -63,15 +66,7 @@ fn delay_records(n: usize) -> Vec<DelayObs> {
 }
 
 fn main() {
-    let cpu = std::fs::read_to_string("/proc/cpuinfo")
-        .ok()
-        .and_then(|t| {
-            t.lines()
-                .find(|l| l.starts_with("model name"))
-                .map(|l| l.split(':').nth(1).unwrap_or("").trim().to_string())
-        })
-        .unwrap_or_default();
-    println!("machine: {} cores, {cpu}", std::thread::available_parallelism().map(|n| n.get()).unwrap_or(0));
+    println!("machine: {} cores, {}", machine::cores(), machine::cpu_model().unwrap_or_default());
     let tris = triangles(10);
     let params = hazard::HazardParams { draws: 2000, window: 42, ..hazard::HazardParams::default() };
     let (took, rows) =

@@ -14,6 +14,9 @@ use tidemark::app::{access, ingest};
 use tidemark::config::Config;
 use tidemark::store::{Store, run_sql};
 
+#[path = "support/machine.rs"]
+mod machine;
+
 const CLIENTS: usize = 50;
 const REQUESTS: usize = 200;
 const BASE_ROWS: usize = 3000;
@@ -73,15 +76,8 @@ fn percentile(sorted: &[Duration], p: f64) -> Duration {
 }
 
 fn hardware() -> String {
-    let cpu = std::fs::read_to_string("/proc/cpuinfo")
-        .ok()
-        .and_then(|t| {
-            t.lines()
-                .find(|l| l.starts_with("model name"))
-                .map(|l| l.split(':').nth(1).unwrap_or("").trim().to_string())
-        })
-        .unwrap_or_else(|| "unknown CPU".into());
-    let cores = std::thread::available_parallelism().map(|n| n.get()).unwrap_or(0);
+    let cpu = machine::cpu_model().unwrap_or_else(|| "unknown CPU".into());
+    let cores = machine::cores();
     let profile = if cfg!(debug_assertions) { "dev profile (opt-level 1)" } else { "release build" };
     format!("{cores} cores ({cpu}), shared with other work; {profile}")
 }

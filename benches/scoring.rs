@@ -11,12 +11,15 @@ use std::path::Path;
 use std::sync::Mutex;
 use std::time::Duration;
 
-use chrono::{NaiveDate, TimeZone, Utc};
+use chrono::NaiveDate;
 use tidemark::app::demo::{self, DemoOptions};
-use tidemark::app::ingest::commit_file;
+use tidemark::app::ingest::{commit_file, end_of_day};
 use tidemark::app::pipeline::{Step, StepReport, run_owed};
 use tidemark::config::Config;
 use tidemark::store::{Reader, Store};
+
+#[path = "support/machine.rs"]
+mod machine;
 
 /// Jurisdictions (strata) of the invented feed.
 const STRATA: usize = 10;
@@ -51,10 +54,14 @@ draws = 200
 delays = []
 "#;
 
+/// Day `t` of the invented feed (day 0 is 2026-01-01).
+fn day(t: i64) -> NaiveDate {
+    NaiveDate::from_ymd_opt(2026, 1, 1).expect("valid date") + chrono::Duration::days(t)
+}
+
 /// The full extract on day `s`: every case reported by then. Stratum j has 8 + 2j cases
 /// a day, with delays 0 to 3 + j days spread evenly (deterministic).
 fn extract(s: i64) -> String {
-    let start = NaiveDate::from_ymd_opt(2026, 1, 1).expect("valid date");
     let mut text = String::from("case_id,district,onset,reported\n");
     for t in 0..=s {
         for j in 0..STRATA as i64 {
@@ -63,7 +70,7 @@ fn extract(s: i64) -> String {
                 if t + delay > s {
                     continue;
                 }
-                let onset = start + chrono::Duration::days(t);
+                let onset = day(t);
                 let reported = onset + chrono::Duration::days(delay);
                 let _ = writeln!(text, "C-{t:03}-{j:02}-{k:02},District {j},{onset},{reported}");
             }
@@ -102,11 +109,7 @@ fn large_feed(dir: &Path) -> (Vec<Duration>, Vec<(String, usize)>) {
     for s in HISTORY..=HISTORY + DAILY {
         let path = dir.join("inbox").join(format!("feed-{s:03}.csv"));
         std::fs::write(&path, extract(s)).expect("extract written");
-        let as_of = Utc.from_utc_datetime(
-            &(NaiveDate::from_ymd_opt(2026, 1, 1).expect("valid date") + chrono::Duration::days(s))
-                .and_hms_opt(23, 0, 0)
-                .expect("valid time"),
-        );
+        let as_of = end_of_day(day(s));
         last = Some(
             commit_file(&mut store, &config, source, &path, Some(as_of)).expect("committed").snapshot_id,
         );
@@ -130,15 +133,7 @@ fn large_feed(dir: &Path) -> (Vec<Duration>, Vec<(String, usize)>) {
 }
 
 fn main() {
-    let cpu = std::fs::read_to_string("/proc/cpuinfo")
-        .ok()
-        .and_then(|t| {
-            t.lines()
-                .find(|l| l.starts_with("model name"))
-                .map(|l| l.split(':').nth(1).unwrap_or("").trim().to_string())
-        })
-        .unwrap_or_default();
-    println!("machine: {} cores, {cpu}", std::thread::available_parallelism().map(|n| n.get()).unwrap_or(0));
+    println!("machine: {} cores, {}", machine::cores(), machine::cpu_model().unwrap_or_default());
     let dir = tempfile::tempdir().expect("temporary directory");
     let (times, scored) = large_feed(dir.path());
     for (field, rows) in &scored {
