@@ -69,9 +69,9 @@ fn counts(mean: f64, dispersion: Option<f64>) {
     let poisson = CountCusumParams::default();
     let nb = CountCusumParams { family: CountFamily::NegativeBinomial, ..poisson };
     let detectors: [(&str, Rule, CountParams); 5] = [
-        ("EARS C1", Rule::EarsC1, CountParams::default()),
-        ("EARS C2", Rule::EarsC2, CountParams::default()),
-        ("EARS C3", Rule::EarsC3, CountParams::default()),
+        ("z recent week (C1)", Rule::CountZRecent, CountParams::default()),
+        ("z guarded week (C2)", Rule::CountZGuarded, CountParams::default()),
+        ("z guarded 3-day (C3)", Rule::CountZGuarded3Day, CountParams::default()),
         ("Poisson CUSUM", Rule::CountCusum, CountParams { cusum: Some(poisson), ..only_cusum() }),
         ("NB CUSUM", Rule::CountCusum, CountParams { cusum: Some(nb), ..only_cusum() }),
     ];
@@ -89,6 +89,7 @@ fn counts(mean: f64, dispersion: Option<f64>) {
                             source: "sim".into(),
                             subject: String::new(),
                             daily_counts: counts[..=day].to_vec(),
+                            last_day: sim_day(day),
                         };
                         rules::count_aberration(&input, params)
                             .iter()
@@ -101,8 +102,13 @@ fn counts(mean: f64, dispersion: Option<f64>) {
     }
 }
 
+/// The calendar date of simulated day `day` (messages only; the rules do not use it).
+fn sim_day(day: usize) -> chrono::NaiveDate {
+    chrono::NaiveDate::from_ymd_opt(2026, 1, 1).unwrap() + chrono::Days::new(day as u64)
+}
+
 fn only_cusum() -> CountParams {
-    CountParams { c1: false, c2: false, c3: false, ..CountParams::default() }
+    CountParams { z_recent: false, z_guarded: false, z_guarded_3day: false, ..CountParams::default() }
 }
 
 /// Lasting rises of the reporting lag by 1, 2 and 4 days (25 records a day, Poisson lags of

@@ -11,7 +11,7 @@
 //! - [`source`]: finding new extracts in folders and fetching them from URLs (no parsing).
 //! - [`extract`]: bytes of one extract -> canonical rows and row problems (pure, streaming).
 //! - [`store`]: SQLite: migrations, the one writer, as-of reads, the raw archive.
-//! - [`analysis`]: pure statistics: triangle, nowcasts, scores, delay fits, tests, EARS and
+//! - [`analysis`]: pure statistics: triangle, nowcasts, scores, delay fits, tests, C1/C2/C3 and
 //!   count CUSUM (`aberration`), CUSUM, EWMA and p-charts (`change`).
 //! - [`alert`]: signal vocabulary and the pure alert rules (quality, lag, volume, staleness,
 //!   count aberration) that turn measured aggregates into signals.

@@ -368,7 +368,11 @@ fn demo_dashboard_line(config: &Config, config_path: &Path, serving: bool) -> St
 
 fn load(flag: Option<&Path>) -> Result<Config> {
     let path = commands::config_path(flag)?;
-    Ok(Config::load(&path)?)
+    let config = Config::load(&path)?;
+    for warning in &config.warnings {
+        eprintln!("warning: config {}: {warning}", path.display());
+    }
+    Ok(config)
 }
 
 /// The limits of `tidemark query`: the config's, or the flags'.

@@ -1,5 +1,6 @@
-//! Aberration detection on a daily count series: the EARS C1, C2 and C3 statistics
-//! (Hutwagner et al. 2005, Emerg Infect Dis 11:314) and an upper CUSUM for counts with the
+//! Aberration detection on a daily count series: the short-baseline C1, C2 and C3 statistics
+//! (Hutwagner et al. 2003, J Urban Health 80(2 Suppl 1):i89; evaluated in Hutwagner et al.
+//! 2005, Emerg Infect Dis 11:314, and Fricker et al. 2008, Stat Med 27:3407) and an upper CUSUM for counts with the
 //! Poisson reference value of Lucas (1985) or a negative-binomial one. Pure: the series (oldest
 //! day first) and the parameters in, one statistic per day out. No IO, no clock; day `t` is an
 //! index into the series. A signal is a prompt to investigate, never a confirmed outbreak.
@@ -11,22 +12,23 @@
 //! - C3: `sum over i in t-2 ..= t of max(0, C2_i - 1)`; C2 at `t-2` has its baseline from
 //!   `t-11`, so C3 needs eleven days of history.
 //!
-//! `sd` is the sample standard deviation (n - 1) floored at [`EarsParams::min_sd`]; see there.
+//! `sd` is the sample standard deviation (n - 1) floored at [`ShortBaselineParams::min_sd`]; see there.
 
-/// EARS baseline length (days) for C1, C2 and C3.
-pub const EARS_BASELINE_DAYS: usize = 7;
+/// Baseline length (days) of C1, C2 and C3: one week.
+pub const SHORT_BASELINE_DAYS: usize = 7;
 /// Days between the end of the C2 baseline and the day tested (the guard band).
 pub const C2_GUARD_DAYS: usize = 2;
 
-/// Thresholds and the standard-deviation floor of the EARS statistics.
+/// Thresholds and the standard-deviation floor of the short-baseline statistics.
 #[derive(Debug, Clone, Copy, PartialEq)]
-pub struct EarsParams {
-    /// C1 alarms when C1 > this. Default 3 (Hutwagner et al. 2005).
-    pub c1_threshold: f64,
-    /// C2 alarms when C2 > this. Default 3 (Hutwagner et al. 2005).
-    pub c2_threshold: f64,
-    /// C3 alarms when C3 > this. Default 2 (Hutwagner et al. 2005; Fricker et al. 2008).
-    pub c3_threshold: f64,
+pub struct ShortBaselineParams {
+    /// `count_z_recent` (C1) alarms when C1 > this. Default 3 (Hutwagner et al. 2005).
+    pub recent_threshold: f64,
+    /// `count_z_guarded` (C2) alarms when C2 > this. Default 3 (Hutwagner et al. 2005).
+    pub guarded_threshold: f64,
+    /// `count_z_guarded_3day` (C3) alarms when C3 > this. Default 2 (Hutwagner et al. 2005;
+    /// Fricker et al. 2008).
+    pub guarded_3day_threshold: f64,
     /// Smallest standard deviation used, in cases. Default 0.5. A constant baseline (sd 0,
     /// common with small counts) would otherwise make any rise infinite; with 0.5 a constant
     /// baseline needs an excess of more than 1.5 cases to pass C1 > 3, i.e. two cases above a
@@ -36,9 +38,14 @@ pub struct EarsParams {
     pub min_sd: f64,
 }
 
-impl Default for EarsParams {
-    fn default() -> EarsParams {
-        EarsParams { c1_threshold: 3.0, c2_threshold: 3.0, c3_threshold: 2.0, min_sd: 0.5 }
+impl Default for ShortBaselineParams {
+    fn default() -> ShortBaselineParams {
+        ShortBaselineParams {
+            recent_threshold: 3.0,
+            guarded_threshold: 3.0,
+            guarded_3day_threshold: 2.0,
+            min_sd: 0.5,
+        }
     }
 }
 
@@ -54,9 +61,9 @@ pub struct Standardised {
     pub baseline_sd: f64,
 }
 
-/// The three EARS statistics of one day; `None` where the history is too short.
+/// The three short-baseline statistics of one day; `None` where the history is too short.
 #[derive(Debug, Clone, Copy, PartialEq)]
-pub struct EarsDay {
+pub struct ShortBaselineDay {
     pub c1: Option<Standardised>,
     pub c2: Option<Standardised>,
     pub c3: Option<f64>,
@@ -83,10 +90,14 @@ pub fn c3(counts: &[f64], t: usize, min_sd: f64) -> Option<f64> {
     (first..=t).map(|i| c2(counts, i, min_sd).map(|s| (s.value - 1.0).max(0.0))).sum()
 }
 
-/// The EARS statistics of every day of the series.
-pub fn ears(counts: &[f64], min_sd: f64) -> Vec<EarsDay> {
+/// The short-baseline statistics of every day of the series.
+pub fn short_baseline_statistics(counts: &[f64], min_sd: f64) -> Vec<ShortBaselineDay> {
     (0..counts.len())
-        .map(|t| EarsDay { c1: c1(counts, t, min_sd), c2: c2(counts, t, min_sd), c3: c3(counts, t, min_sd) })
+        .map(|t| ShortBaselineDay {
+            c1: c1(counts, t, min_sd),
+            c2: c2(counts, t, min_sd),
+            c3: c3(counts, t, min_sd),
+        })
         .collect()
 }
 
@@ -102,7 +113,7 @@ pub fn mean_and_sd(values: &[f64]) -> (f64, f64) {
 fn standardised(counts: &[f64], t: usize, lag: usize, min_sd: f64) -> Option<Standardised> {
     let observed = *counts.get(t)?;
     let end = t.checked_sub(lag)?;
-    let start = (end + 1).checked_sub(EARS_BASELINE_DAYS)?;
+    let start = (end + 1).checked_sub(SHORT_BASELINE_DAYS)?;
     let (baseline_mean, sd) = mean_and_sd(&counts[start..=end]);
     let baseline_sd = sd.max(min_sd);
     Some(Standardised {
@@ -188,11 +199,11 @@ mod tests {
         n - 1
     }
 
-    /// EARS values from docs/validation.md (Hutwagner et al. 2005 definitions, sample sd),
+    /// C1/C2/C3 values from docs/validation.md (Hutwagner et al. 2005 definitions, sample sd),
     /// to the four decimals published there.
     #[test]
-    fn ears_matches_the_reference_series() {
-        let p = EarsParams::default();
+    fn short_baseline_statistics_match_the_reference_series() {
+        let p = ShortBaselineParams::default();
         let cases = [
             (c1(&SERIES, day(11), p.min_sd).unwrap().value, 5.6491),
             (c2(&SERIES, day(11), p.min_sd).unwrap().value, 6.8274),
@@ -205,8 +216,8 @@ mod tests {
             assert!(close(got, want, 5e-5), "{got} vs {want}");
         }
         // Day 13: C1 = 2.9542 is below 3, no alarm, while C2 alarms.
-        assert!(c1(&SERIES, day(13), p.min_sd).unwrap().value <= p.c1_threshold);
-        assert!(c2(&SERIES, day(13), p.min_sd).unwrap().value > p.c2_threshold);
+        assert!(c1(&SERIES, day(13), p.min_sd).unwrap().value <= p.recent_threshold);
+        assert!(c2(&SERIES, day(13), p.min_sd).unwrap().value > p.guarded_threshold);
     }
 
     /// C3 on day 12 is exactly the sum over days 10, 11, 12 of max(0, C2 - 1).
@@ -224,7 +235,7 @@ mod tests {
         assert!(c2(&SERIES, 8, 0.5).is_none() && c2(&SERIES, 9, 0.5).is_some());
         assert!(c3(&SERIES, 10, 0.5).is_none() && c3(&SERIES, 11, 0.5).is_some());
         assert!(c1(&SERIES, 14, 0.5).is_none());
-        let all = ears(&SERIES, 0.5);
+        let all = short_baseline_statistics(&SERIES, 0.5);
         assert_eq!(all.len(), 14);
         assert_eq!(all[day(12)].c3, c3(&SERIES, day(12), 0.5));
     }

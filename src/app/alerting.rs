@@ -21,7 +21,9 @@ use crate::alert::rules::{
 use crate::alert::{self, DeliveryError, Outcome, Rule, Severity, Signal, email, message, webhook};
 use crate::config::{Config, SourceConfig};
 use crate::model::{SnapshotId, SnapshotStatus, SourceId};
-use crate::store::alerts::{Delivery, EvalOutcome, Finding, Lifecycle, MessageFacts, OutboxItem};
+use crate::store::alerts::{
+    AlertDesk, Delivery, EvalOutcome, Finding, Lifecycle, MessageFacts, OutboxItem, TEST_HANDOVER,
+};
 use crate::store::{OwedAnalysis, Reader, Store};
 use crate::table::{OutputFormat, Table};
 
@@ -35,6 +37,8 @@ const DELIVERY_BATCH: usize = 20;
 pub struct Pass {
     findings: Vec<Finding>,
     clear: Vec<String>,
+    /// The snapshot evaluated; `None` for the rules run after a poll.
+    snapshot_id: Option<SnapshotId>,
 }
 
 impl Pass {
@@ -99,6 +103,7 @@ pub fn apply_pass(
 ) -> Result<EvalOutcome> {
     let life = Lifecycle {
         now,
+        snapshot_id: pass.snapshot_id,
         resend_after: config.alerting.resend_after,
         resolve_after: config.alerting.resolve_after,
     };
@@ -115,8 +120,8 @@ pub fn snapshot_pass(config: &Config, source: &SourceConfig, outcome: &OwedAnaly
     let reader = Reader::open(&config.store.path)?;
     let source_id = reader.source_id(&source.name)?.context("source not registered")?;
     let params = &config.alerting.rules;
-    let mut pass = Pass::default();
     let snapshot_id = outcome.snapshot_id;
+    let mut pass = Pass { snapshot_id: Some(snapshot_id), ..Pass::default() };
     let volumes = reader.volumes(source_id, snapshot_id)?;
     let applied: Vec<_> = volumes
         .iter()
@@ -276,8 +281,10 @@ fn counts(
     pass: &mut Pass,
 ) -> Result<()> {
     let p = &config.alerting.rules.count;
-    let span = p.cusum.map(|c| c.baseline_days + c.guard_days).unwrap_or(0).max(14) as u64 + 1;
-    let first = day.checked_sub_days(Days::new(span)).unwrap_or(day);
+    let Some(known_from) = reader.first_report_day(source_id, snapshot_id)? else { return Ok(()) };
+    let known_from: NaiveDate = known_from.parse().unwrap_or(day);
+    let span = rules::count_history_days(p) as u64;
+    let first = day.checked_sub_days(Days::new(span - 1)).unwrap_or(day).max(known_from);
     let all_days = days(first, day);
     let mut series: BTreeMap<String, BTreeMap<String, f64>> = BTreeMap::new();
     for (kind, stratum, date, n) in reader.report_counts(source_id, snapshot_id, &first.to_string())? {
@@ -286,7 +293,8 @@ fn counts(
     }
     for (subject, by_day) in series {
         let daily_counts = all_days.iter().map(|d| by_day.get(d).copied().unwrap_or(0.0)).collect();
-        let input = CountInput { source: source.to_string(), subject: subject.clone(), daily_counts };
+        let input =
+            CountInput { source: source.to_string(), subject: subject.clone(), daily_counts, last_day: day };
         for (rule, outcome) in rules::count_aberration(&input, p) {
             pass.add(rule, source, &subject, outcome, Some(snapshot_id));
         }
@@ -451,8 +459,8 @@ pub fn list(config: &Config, all: bool, format: OutputFormat) -> Result<String> 
 
 /// `tidemark alerts ack ID --note TEXT`.
 pub fn ack(config: &Config, alert_id: i64, note: &str) -> Result<String> {
-    let mut store = Store::open(&config.store.path)?;
-    store.ack_alert(alert_id, note, Utc::now())?;
+    let mut desk = AlertDesk::open(&config.store.path)?;
+    desk.ack_alert(alert_id, note, Utc::now())?;
     Ok(format!("alert {alert_id} acknowledged; it will not be re-sent and resolves when clear\n"))
 }
 
@@ -463,13 +471,13 @@ pub fn test(config: &Config) -> Result<String> {
     if channels.is_empty() {
         anyhow::bail!("no alert channel is configured (add [alert.email] or [alert.webhook])");
     }
-    let mut store = Store::open(&config.store.path)?;
+    let mut store = AlertDesk::open(&config.store.path)?;
     let base = dashboard_base(config);
     let event_id = store.enqueue_test(&channels, Utc::now(), &|facts| message::payload(facts, &base))?;
     let runtime = tokio::runtime::Builder::new_current_thread().enable_all().build()?;
     let client = delivery_client(config);
     let items: Vec<OutboxItem> = store
-        .due_outbox(Utc::now() + chrono::Duration::seconds(1), 1000)?
+        .due_outbox(Utc::now() + TEST_HANDOVER + chrono::Duration::seconds(1), 1000)?
         .into_iter()
         .filter(|i| i.event_id == event_id)
         .collect();

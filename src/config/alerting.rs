@@ -94,12 +94,17 @@ pub fn duration_or(text: Option<&str>, key: &str, default: Duration, problems: &
     }
 }
 
+/// Default lowest severity a channel receives: warnings and critical alerts page; `info`
+/// messages need no action, so a channel takes them only when asked.
+pub const DEFAULT_MIN_SEVERITY: Severity = Severity::Warning;
+
+/// A channel's `min_severity`, [`DEFAULT_MIN_SEVERITY`] when not given.
 pub fn severity_or(text: Option<&str>, key: &str, problems: &mut Vec<String>) -> Severity {
     match text {
-        None => Severity::Info,
+        None => DEFAULT_MIN_SEVERITY,
         Some(text) => text.parse().unwrap_or_else(|e| {
             problems.push(format!("{key}: {e}"));
-            Severity::Info
+            DEFAULT_MIN_SEVERITY
         }),
     }
 }

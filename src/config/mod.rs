@@ -52,6 +52,9 @@ pub struct Config {
     pub quality: QualitySettings,
     /// `serve.public_url`: the dashboard as people reach it (links in alert messages).
     pub public_url: Option<String>,
+    /// Settings that still work but are deprecated (old key names), one line each; shown by
+    /// `check-config` and on stderr whenever the config is loaded.
+    pub warnings: Vec<String>,
 }
 
 /// How long requests and analysts' queries may run, how much a query may hold and return,
@@ -255,7 +258,8 @@ fn build(raw: RawConfig, file: &Path, base: &Path, problems: &mut Vec<String>) -
     };
     let analysis = analysis::build(raw.analysis, problems);
     let quality = alerting::build_quality(raw.quality, problems);
-    let settings = build_alert_settings(&raw.alert, problems);
+    let mut warnings = Vec::new();
+    let settings = build_alert_settings(&raw.alert, problems, &mut warnings);
     let public_url = raw.serve.public_url.map(|u| u.trim_end_matches('/').to_string());
     Config {
         alerting: settings,
@@ -270,6 +274,7 @@ fn build(raw: RawConfig, file: &Path, base: &Path, problems: &mut Vec<String>) -
         bind,
         serve,
         log_json,
+        warnings,
     }
 }
 
@@ -330,7 +335,11 @@ fn value_limit(value: Option<usize>, problems: &mut Vec<String>) -> usize {
     bytes
 }
 
-fn build_alert_settings(raw: &raw::RawAlert, problems: &mut Vec<String>) -> AlertSettings {
+fn build_alert_settings(
+    raw: &raw::RawAlert,
+    problems: &mut Vec<String>,
+    warnings: &mut Vec<String>,
+) -> AlertSettings {
     use alerting::duration_or;
     let d = AlertSettings::default();
     let settings = AlertSettings {
@@ -345,7 +354,7 @@ fn build_alert_settings(raw: &raw::RawAlert, problems: &mut Vec<String>) -> Aler
         retry_base: duration_or(raw.retry_base.as_deref(), "alert.retry_base", d.retry_base, problems),
         retry_cap: duration_or(raw.retry_cap.as_deref(), "alert.retry_cap", d.retry_cap, problems),
         failed_polls: raw.failed_polls.unwrap_or(d.failed_polls).max(1),
-        rules: rule_params::build(&raw.rules, problems),
+        rules: rule_params::build(&raw.rules, problems, warnings),
     };
     if settings.retry_base.is_zero() {
         problems.push("alert.retry_base: must be more than zero".into());

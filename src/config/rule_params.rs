@@ -43,6 +43,8 @@ struct Keys<'a> {
     label: String,
     table: &'a toml::Table,
     problems: &'a mut Vec<String>,
+    /// Accepted but deprecated keys.
+    warnings: &'a mut Vec<String>,
 }
 
 impl Keys<'_> {
@@ -84,10 +86,16 @@ impl Keys<'_> {
     }
 }
 
-pub fn build(tables: &BTreeMap<String, toml::Table>, problems: &mut Vec<String>) -> RuleParams {
+/// The typed parameters of `[alert.rules.*]`; bad keys go to `problems`, deprecated ones that
+/// still work to `warnings`.
+pub fn build(
+    tables: &BTreeMap<String, toml::Table>,
+    problems: &mut Vec<String>,
+    warnings: &mut Vec<String>,
+) -> RuleParams {
     let mut params = RuleParams::default();
     for (name, table) in tables {
-        let mut keys = Keys { label: format!("alert.rules.{name}"), table, problems };
+        let mut keys = Keys { label: format!("alert.rules.{name}"), table, problems, warnings };
         let mut enabled = true;
         keys.flag("enabled", &mut enabled);
         if !enabled {
@@ -153,14 +161,49 @@ fn volume(keys: &mut Keys<'_>, p: &mut VolumeParams) {
     keys.only(&["baseline_snapshots", "drop_fraction", "min_baseline_median", "min_baseline_snapshots"]);
 }
 
+/// Keys of `[alert.rules.count]` renamed to describe their method, accepted for one release
+/// with a deprecation warning: (old key, new key).
+pub const DEPRECATED_COUNT_KEYS: [(&str, &str); 6] = [
+    ("c1", "z_recent"),
+    ("c2", "z_guarded"),
+    ("c3", "z_guarded_3day"),
+    ("c1_threshold", "z_recent_threshold"),
+    ("c2_threshold", "z_guarded_threshold"),
+    ("c3_threshold", "z_guarded_3day_threshold"),
+];
+
 fn count(keys: &mut Keys<'_>, p: &mut CountParams) {
-    keys.flag("c1", &mut p.c1);
-    keys.flag("c2", &mut p.c2);
-    keys.flag("c3", &mut p.c3);
-    keys.float("c1_threshold", &mut p.ears.c1_threshold);
-    keys.float("c2_threshold", &mut p.ears.c2_threshold);
-    keys.float("c3_threshold", &mut p.ears.c3_threshold);
-    keys.float("min_sd", &mut p.ears.min_sd);
+    for (old, new) in DEPRECATED_COUNT_KEYS {
+        if keys.table.contains_key(old) {
+            if keys.table.contains_key(new) {
+                keys.problems.push(format!("{}.{old}: the old name of {new}; give only {new}", keys.label));
+            } else {
+                keys.warnings.push(format!(
+                    "{}.{old} is deprecated and will be removed in the next release: write {new}",
+                    keys.label
+                ));
+            }
+        }
+    }
+    let alias = |new: &str| DEPRECATED_COUNT_KEYS.iter().find(|(_, n)| *n == new).map(|(o, _)| *o);
+    for (key, slot) in [
+        ("z_recent", &mut p.z_recent),
+        ("z_guarded", &mut p.z_guarded),
+        ("z_guarded_3day", &mut p.z_guarded_3day),
+    ] {
+        keys.flag(alias(key).unwrap_or(key), slot);
+        keys.flag(key, slot);
+    }
+    for (key, slot) in [
+        ("z_recent_threshold", &mut p.z.recent_threshold),
+        ("z_guarded_threshold", &mut p.z.guarded_threshold),
+        ("z_guarded_3day_threshold", &mut p.z.guarded_3day_threshold),
+    ] {
+        keys.float(alias(key).unwrap_or(key), slot);
+        keys.float(key, slot);
+    }
+    keys.float("min_sd", &mut p.z.min_sd);
+    keys.float("min_expected", &mut p.min_expected);
     let mut cusum = p.cusum.is_some();
     keys.flag("cusum", &mut cusum);
     let mut c = p.cusum.unwrap_or_default();
@@ -177,20 +220,23 @@ fn count(keys: &mut Keys<'_>, p: &mut CountParams) {
     keys.float("cusum_h_sds", &mut c.h_sds);
     keys.count("cusum_baseline_days", &mut c.baseline_days);
     p.cusum = cusum.then_some(c);
-    keys.only(&[
-        "c1",
-        "c2",
-        "c3",
-        "c1_threshold",
-        "c2_threshold",
-        "c3_threshold",
+    let mut known = vec![
+        "z_recent",
+        "z_guarded",
+        "z_guarded_3day",
+        "z_recent_threshold",
+        "z_guarded_threshold",
+        "z_guarded_3day_threshold",
         "min_sd",
+        "min_expected",
         "cusum",
         "cusum_family",
         "cusum_shift_sds",
         "cusum_h_sds",
         "cusum_baseline_days",
-    ]);
+    ];
+    known.extend(DEPRECATED_COUNT_KEYS.iter().map(|(old, _)| *old));
+    keys.only(&known);
 }
 
 #[cfg(test)]
@@ -201,13 +247,38 @@ mod tests {
     fn overrides_and_problems() {
         let text = "[missingness_jump]\nmin_effect = 0.2\n[count]\ncusum = true\ncusum_family = \"negative_binomial\"\n[lag_jump]\nenabled = false\nbogus = 1\n[nope]\n";
         let tables: BTreeMap<String, toml::Table> = toml::from_str(text).unwrap();
-        let mut problems = Vec::new();
-        let p = build(&tables, &mut problems);
+        let (mut problems, mut warnings) = (Vec::new(), Vec::new());
+        let p = build(&tables, &mut problems, &mut warnings);
+        assert!(warnings.is_empty());
         assert_eq!(p.missingness.min_effect, 0.2);
         assert_eq!(p.count.cusum.unwrap().family, CountFamily::NegativeBinomial);
         assert!(!p.enabled("lag_jump") && p.enabled("count"));
         assert_eq!(problems.len(), 2, "{problems:?}");
         assert!(problems[0].contains("alert.rules.lag_jump.bogus"));
         assert!(problems[1].contains("alert.rules.nope: unknown rule"));
+    }
+
+    /// The count rules' old key names still work for one release, each with a warning that
+    /// names the new key; giving both names is a problem.
+    #[test]
+    fn old_count_keys_work_with_a_deprecation_warning() {
+        let text = "[count]\nc1 = false\nc3_threshold = 2.5\nz_guarded_threshold = 4.0\n";
+        let tables: BTreeMap<String, toml::Table> = toml::from_str(text).unwrap();
+        let (mut problems, mut warnings) = (Vec::new(), Vec::new());
+        let p = build(&tables, &mut problems, &mut warnings);
+        assert!(problems.is_empty(), "{problems:?}");
+        assert!(!p.count.z_recent && p.count.z_guarded && p.count.z_guarded_3day);
+        assert_eq!((p.count.z.guarded_3day_threshold, p.count.z.guarded_threshold), (2.5, 4.0));
+        assert_eq!(warnings.len(), 2, "{warnings:?}");
+        assert!(
+            warnings[0].contains("alert.rules.count.c1 is deprecated") && warnings[0].contains("z_recent")
+        );
+        assert!(warnings[1].contains("c3_threshold") && warnings[1].contains("z_guarded_3day_threshold"));
+
+        let both: BTreeMap<String, toml::Table> =
+            toml::from_str("[count]\nc2 = true\nz_guarded = true\n").unwrap();
+        let (mut problems, mut warnings) = (Vec::new(), Vec::new());
+        build(&both, &mut problems, &mut warnings);
+        assert!(problems.len() == 1 && problems[0].contains("give only z_guarded"), "{problems:?}");
     }
 }

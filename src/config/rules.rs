@@ -1,7 +1,7 @@
 //! The alert rules' typed parameters, each default with its reason. The rules themselves live
 //! in `alert::rules`; `[alert.rules.<rule>]` overrides these defaults (see `rule_params`).
 
-use crate::analysis::aberration::EarsParams;
+use crate::analysis::aberration::ShortBaselineParams;
 use crate::analysis::change::EwmaParams;
 
 /// Parameters of the missingness-jump rule.
@@ -120,13 +120,13 @@ pub enum CountFamily {
     NegativeBinomial,
 }
 
-/// Parameters of the count CUSUM (an option beside EARS).
+/// Parameters of the count CUSUM (an option beside the short-baseline z-score rules).
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct CountCusumParams {
     pub family: CountFamily,
     /// Days of each day's moving baseline. Default 28: four weeks, weekday effects average out.
     pub baseline_days: usize,
-    /// Days between a day and the end of its baseline. Default 2, as EARS C2, so an
+    /// Days between a day and the end of its baseline. Default 2, as `count_z_guarded` (C2), so an
     /// outbreak's first days do not raise their own baseline.
     pub guard_days: usize,
     /// The rise to detect, in baseline sds: `mu1 = mu0 + shift_sds * sd0`. Default 2.
@@ -157,17 +157,32 @@ impl Default for CountCusumParams {
 /// Which count statistics to evaluate, and their parameters.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct CountParams {
-    pub ears: EarsParams,
-    /// Evaluate EARS C1, C2, C3 (default all three).
-    pub c1: bool,
-    pub c2: bool,
-    pub c3: bool,
-    /// The count CUSUM, off by default (`None`): EARS needs only a week of history.
+    /// Thresholds and sd floor of the three short-baseline z-score rules.
+    pub z: ShortBaselineParams,
+    /// Evaluate `count_z_recent` (C1: baseline the 7 days just before).
+    pub z_recent: bool,
+    /// Evaluate `count_z_guarded` (C2: baseline 7 days ending 3 days before).
+    pub z_guarded: bool,
+    /// Evaluate `count_z_guarded_3day` (C3: three days of guarded excesses).
+    pub z_guarded_3day: bool,
+    /// Smallest baseline mean (cases a day) on which the count rules decide; under it they
+    /// neither raise nor clear ("not enough data"). Default 1: with fewer than one case a day
+    /// a z-score is driven by the sd floor, so two cases after a quiet week would page.
+    pub min_expected: f64,
+    /// The count CUSUM, off by default (`None`): the z-score rules need only a week or two of
+    /// history.
     pub cusum: Option<CountCusumParams>,
 }
 
 impl Default for CountParams {
     fn default() -> CountParams {
-        CountParams { ears: EarsParams::default(), c1: true, c2: true, c3: true, cusum: None }
+        CountParams {
+            z: ShortBaselineParams::default(),
+            z_recent: true,
+            z_guarded: true,
+            z_guarded_3day: true,
+            min_expected: 1.0,
+            cusum: None,
+        }
     }
 }

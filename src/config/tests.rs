@@ -102,3 +102,20 @@ fn deployment_example_is_valid() {
     assert!(config.log_json);
     assert_eq!(config.store.path, Path::new("/var/lib/tidemark/tidemark.db"));
 }
+
+/// Channels page on warnings and critical alerts unless told otherwise; the example config
+/// routes every alert to its webhook.
+#[test]
+fn channels_default_to_warning_and_above() {
+    let text = format!(
+        "{MINIMAL}[alert.email]\nsmtp = \"127.0.0.1:25\"\nfrom = \"t@x.example\"\nto = [\"o@x.example\"]\n\
+         [alert.webhook]\nurl = \"https://hooks.example/a\"\n"
+    );
+    let config = Config::parse(&text, Path::new("/x/t.toml")).unwrap();
+    assert_eq!(config.email.unwrap().min_severity, Severity::Warning);
+    assert_eq!(config.webhook.unwrap().min_severity, Severity::Warning);
+    let example = EXAMPLE.replace("# [alert.webhook]", "[alert.webhook]").replace("# url = ", "url = ");
+    let example = example.replace("# min_severity = \"info\"", "min_severity = \"info\"");
+    let routed = Config::parse(&example, Path::new("/srv/tidemark/tidemark.toml")).unwrap();
+    assert_eq!(routed.webhook.unwrap().min_severity, Severity::Info);
+}

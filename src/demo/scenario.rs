@@ -87,7 +87,7 @@ pub fn injections(days: u32) -> Vec<Injection> {
             feed: "county-reports",
             jurisdiction: "Dunhollow",
             kind: "count spike",
-            rules: &["ears_c1", "ears_c2", "ears_c3", "count_cusum"],
+            rules: &["count_z_recent", "count_z_guarded", "count_z_guarded_3day", "count_cusum"],
             subject: "Dunhollow",
         },
     ];

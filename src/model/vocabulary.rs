@@ -138,12 +138,12 @@ vocabulary! {
         StaleSource => "stale_source",
         /// The source failed several polls in a row.
         FailingPolls => "failing_polls",
-        /// EARS C1 on daily counts by report date.
-        EarsC1 => "ears_c1",
-        /// EARS C2 on daily counts by report date.
-        EarsC2 => "ears_c2",
-        /// EARS C3 on daily counts by report date.
-        EarsC3 => "ears_c3",
+        /// C1 on daily counts by report date: z-score against the 7 days just before.
+        CountZRecent => "count_z_recent",
+        /// C2 on daily counts by report date: z-score against 7 days ending 3 days before.
+        CountZGuarded => "count_z_guarded",
+        /// C3 on daily counts by report date: the guarded z-scores' excesses over 3 days.
+        CountZGuarded3Day => "count_z_guarded_3day",
         /// Upper Poisson or negative-binomial CUSUM on daily counts by report date.
         CountCusum => "count_cusum",
         /// The nowcast `auto` chooses is miscalibrated over its matured scores.

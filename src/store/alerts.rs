@@ -7,14 +7,19 @@
 //! idempotency key. States: open -> notified (a message was delivered) -> acknowledged ->
 //! resolved; a fingerprint (rule, source, subject) has at most one alert not resolved.
 
+use std::borrow::BorrowMut;
 use std::collections::HashSet;
+use std::path::Path;
 use std::time::Duration;
 
 use chrono::{DateTime, Utc};
-use rusqlite::{OptionalExtension, Transaction, params};
+use rusqlite::{Connection, OptionalExtension, Transaction, params};
 
-use super::{Reader, Store, StoreError, time_text};
+use super::{Reader, Store, StoreError, open_writer, time_text};
 use crate::model::{Rule, Severity, SnapshotId, SourceId};
+
+/// How long a test message waits before a running daemon's delivery loop may take it.
+pub const TEST_HANDOVER: chrono::Duration = chrono::Duration::minutes(5);
 
 /// What one rule found for one subject at one evaluation: aggregates only.
 #[derive(Debug, Clone, PartialEq)]
@@ -35,6 +40,9 @@ pub struct Finding {
 #[derive(Debug, Clone, Copy)]
 pub struct Lifecycle {
     pub now: DateTime<Utc>,
+    /// The snapshot the pass evaluated (its as-of time is the data time of what the pass
+    /// opens, sees and resolves); `None` for the rules evaluated after a poll.
+    pub snapshot_id: Option<SnapshotId>,
     pub resend_after: Duration,
     pub resolve_after: u32,
 }
@@ -127,6 +135,7 @@ struct Live {
     alert_id: i64,
     state: String,
     last_sent_at: Option<String>,
+    severity: Severity,
 }
 
 impl Store {
@@ -156,9 +165,68 @@ impl Store {
         Ok(outcome)
     }
 
+    /// Acknowledges a live alert (see [`AlertDesk::ack_alert`]).
+    pub fn ack_alert(&mut self, alert_id: i64, note: &str, now: DateTime<Utc>) -> Result<(), StoreError> {
+        desk(&mut self.conn).ack_alert(alert_id, note, now)
+    }
+
+    /// Queues a test message (see [`AlertDesk::enqueue_test`]).
+    pub fn enqueue_test(
+        &mut self,
+        channels: &[&'static str],
+        now: DateTime<Utc>,
+        payload: &dyn Fn(&MessageFacts) -> String,
+    ) -> Result<i64, StoreError> {
+        desk(&mut self.conn).enqueue_test(channels, now, payload)
+    }
+
+    /// Outbox rows due at `now`, oldest first.
+    pub fn due_outbox(&self, now: DateTime<Utc>, limit: usize) -> Result<Vec<OutboxItem>, StoreError> {
+        due_outbox(&self.conn, now, limit)
+    }
+
+    /// Marks a row delivered (see [`AlertDesk::mark_delivered`]).
+    pub fn mark_delivered(&mut self, outbox_id: i64, now: DateTime<Utc>) -> Result<(), StoreError> {
+        desk(&mut self.conn).mark_delivered(outbox_id, now)
+    }
+
+    /// Records a failed attempt (see [`AlertDesk::mark_failed`]).
+    pub fn mark_failed(
+        &mut self,
+        outbox_id: i64,
+        error: &str,
+        now: DateTime<Utc>,
+        retry_at: Option<DateTime<Utc>>,
+    ) -> Result<(), StoreError> {
+        desk(&mut self.conn).mark_failed(outbox_id, error, now, retry_at)
+    }
+}
+
+/// The alert tables' own writes (acknowledging, test messages, delivery results) on a
+/// connection of their own, without the store's writer lock: each is one short transaction
+/// that touches only `alert`, `alert_event` and `outbox`, and SQLite serialises it with the
+/// daemon's writer (busy timeout), so `alerts ack` and `alerts test` work while the daemon
+/// runs, as the token commands do.
+#[derive(Debug)]
+pub struct AlertDesk<C = Connection> {
+    conn: C,
+}
+
+impl AlertDesk {
+    /// Opens the store at `path` (creating and migrating it if needed) for these writes.
+    pub fn open(path: &Path) -> Result<AlertDesk, StoreError> {
+        Ok(AlertDesk { conn: open_writer(path)? })
+    }
+}
+
+fn desk(conn: &mut Connection) -> AlertDesk<&mut Connection> {
+    AlertDesk { conn }
+}
+
+impl<C: BorrowMut<Connection>> AlertDesk<C> {
     /// Acknowledges a live alert: no more re-sends; it still resolves when clear.
     pub fn ack_alert(&mut self, alert_id: i64, note: &str, now: DateTime<Utc>) -> Result<(), StoreError> {
-        let tx = self.conn.transaction()?;
+        let tx = self.conn.borrow_mut().transaction()?;
         let state: Option<String> = tx
             .query_row("SELECT state FROM alert WHERE alert_id = ?1", [alert_id], |r| r.get(0))
             .optional()?;
@@ -182,14 +250,15 @@ impl Store {
         Ok(())
     }
 
-    /// Queues a test message on every channel given; returns the event id.
+    /// Queues a test message on every channel given, due [`TEST_HANDOVER`] from `now`;
+    /// returns the event id.
     pub fn enqueue_test(
         &mut self,
         channels: &[&'static str],
         now: DateTime<Utc>,
         payload: &dyn Fn(&MessageFacts) -> String,
     ) -> Result<i64, StoreError> {
-        let tx = self.conn.transaction()?;
+        let tx = self.conn.borrow_mut().transaction()?;
         let at = time_text(now);
         tx.execute("INSERT INTO alert_event (kind, at) VALUES ('test', ?1)", [&at])?;
         let event_id = tx.last_insert_rowid();
@@ -212,8 +281,15 @@ impl Store {
             "UPDATE alert_event SET payload = ?2 WHERE event_id = ?1",
             params![event_id, payload(&facts)],
         )?;
+        // Due a little later: the command that queued it delivers it now, and a running
+        // daemon's delivery loop takes it only if that command died first.
+        let due = time_text(now + TEST_HANDOVER);
         for channel in channels {
             enqueue(&tx, event_id, channel, &at)?;
+            tx.execute(
+                "UPDATE outbox SET due_at = ?3 WHERE event_id = ?1 AND channel = ?2",
+                params![event_id, channel, due],
+            )?;
         }
         tx.commit()?;
         Ok(event_id)
@@ -221,28 +297,12 @@ impl Store {
 
     /// Outbox rows due at `now`, oldest first.
     pub fn due_outbox(&self, now: DateTime<Utc>, limit: usize) -> Result<Vec<OutboxItem>, StoreError> {
-        let mut stmt = self.conn.prepare(
-            "SELECT o.outbox_id, o.event_id, o.channel, e.payload, o.attempts, o.created_at
-             FROM outbox o JOIN alert_event e USING (event_id)
-             WHERE o.delivered_at IS NULL AND o.dead_at IS NULL AND o.due_at <= ?1
-             ORDER BY o.due_at, o.outbox_id LIMIT ?2",
-        )?;
-        let rows = stmt.query_map(params![time_text(now), limit as i64], |r| {
-            Ok(OutboxItem {
-                outbox_id: r.get(0)?,
-                event_id: r.get(1)?,
-                channel: r.get(2)?,
-                payload: r.get::<_, Option<String>>(3)?.unwrap_or_default(),
-                attempts: r.get(4)?,
-                created_at: super::parse_time(&r.get::<_, String>(5)?).unwrap_or_default(),
-            })
-        })?;
-        Ok(rows.collect::<Result<_, _>>()?)
+        due_outbox(self.conn.borrow(), now, limit)
     }
 
     /// Marks a row delivered; its alert becomes `notified` if it was `open`.
     pub fn mark_delivered(&mut self, outbox_id: i64, now: DateTime<Utc>) -> Result<(), StoreError> {
-        let tx = self.conn.transaction()?;
+        let tx = self.conn.borrow_mut().transaction()?;
         tx.execute(
             "UPDATE outbox SET delivered_at = ?2, attempts = attempts + 1, last_error = NULL WHERE outbox_id = ?1",
             params![outbox_id, time_text(now)],
@@ -266,17 +326,38 @@ impl Store {
         retry_at: Option<DateTime<Utc>>,
     ) -> Result<(), StoreError> {
         match retry_at {
-            Some(at) => self.conn.execute(
+            Some(at) => self.conn.borrow_mut().execute(
                 "UPDATE outbox SET attempts = attempts + 1, last_error = ?2, due_at = ?3 WHERE outbox_id = ?1",
                 params![outbox_id, error, time_text(at)],
             )?,
-            None => self.conn.execute(
+            None => self.conn.borrow_mut().execute(
                 "UPDATE outbox SET attempts = attempts + 1, last_error = ?2, dead_at = ?3 WHERE outbox_id = ?1",
                 params![outbox_id, error, time_text(now)],
             )?,
         };
         Ok(())
     }
+}
+
+/// Outbox rows due at `now`, oldest first.
+fn due_outbox(conn: &Connection, now: DateTime<Utc>, limit: usize) -> Result<Vec<OutboxItem>, StoreError> {
+    let mut stmt = conn.prepare(
+        "SELECT o.outbox_id, o.event_id, o.channel, e.payload, o.attempts, o.created_at
+         FROM outbox o JOIN alert_event e USING (event_id)
+         WHERE o.delivered_at IS NULL AND o.dead_at IS NULL AND o.due_at <= ?1
+         ORDER BY o.due_at, o.outbox_id LIMIT ?2",
+    )?;
+    let rows = stmt.query_map(params![time_text(now), limit as i64], |r| {
+        Ok(OutboxItem {
+            outbox_id: r.get(0)?,
+            event_id: r.get(1)?,
+            channel: r.get(2)?,
+            payload: r.get::<_, Option<String>>(3)?.unwrap_or_default(),
+            attempts: r.get(4)?,
+            created_at: super::parse_time(&r.get::<_, String>(5)?).unwrap_or_default(),
+        })
+    })?;
+    Ok(rows.collect::<Result<_, _>>()?)
 }
 
 /// Opens an alert for a new fingerprint, or updates (and maybe re-sends) the live one.
@@ -290,16 +371,17 @@ fn raise(
     let now = time_text(life.now);
     let live: Option<Live> = tx
         .query_row(
-            "SELECT alert_id, state, last_sent_at FROM alert WHERE fingerprint = ?1 AND state <> 'resolved'",
+            "SELECT alert_id, state, last_sent_at, severity FROM alert WHERE fingerprint = ?1 AND state <> 'resolved'",
             [&f.fingerprint],
-            |r| Ok(Live { alert_id: r.get(0)?, state: r.get(1)?, last_sent_at: r.get(2)? }),
+            |r| Ok(Live { alert_id: r.get(0)?, state: r.get(1)?, last_sent_at: r.get(2)?, severity: r.get(3)? }),
         )
         .optional()?;
     let Some(live) = live else {
         tx.execute(
             "INSERT INTO alert (fingerprint, rule, source, subject, severity, state, summary, figures, snapshot_id,
-                 opened_at, last_seen_at)
-             VALUES (?1, ?2, ?3, ?4, ?5, 'open', ?6, ?7, ?8, ?9, ?9)",
+                 opened_at, last_seen_at, opened_as_of, last_seen_as_of, data_day)
+             SELECT ?1, ?2, ?3, ?4, ?5, 'open', ?6, ?7, ?8, ?9, ?9, n.as_of, n.as_of, substr(n.as_of, 1, 10)
+             FROM (SELECT 1) LEFT JOIN snapshot n ON n.snapshot_id = ?8",
             params![f.fingerprint, f.rule, f.source, f.subject, f.severity, f.summary, f.figures, f.snapshot_id, now],
         )?;
         outcome.opened += 1;
@@ -307,12 +389,21 @@ fn raise(
     };
     tx.execute(
         "UPDATE alert SET last_seen_at = ?2, times_seen = times_seen + 1, clear_count = 0, summary = ?3,
-             figures = ?4, severity = ?5
+             figures = ?4, severity = ?5,
+             last_seen_as_of = coalesce((SELECT as_of FROM snapshot WHERE snapshot_id = ?6), last_seen_as_of)
          WHERE alert_id = ?1",
-        params![live.alert_id, now, f.summary, f.figures, f.severity],
+        params![live.alert_id, now, f.summary, f.figures, f.severity.max(live.severity), f.snapshot_id],
     )?;
     outcome.updated += 1;
-    if live.state != "acknowledged" && resend_due(live.last_sent_at.as_deref(), life) {
+    if live.state == "acknowledged" {
+        return Ok(());
+    }
+    // One episode, one page: a live alert is sent again only when it reaches a higher
+    // severity than any it had (kept at its peak), or after the re-send interval.
+    if f.severity > live.severity {
+        outcome.resent += 1;
+        notify(tx, live.alert_id, "escalated", life, delivery, outcome)?;
+    } else if resend_due(live.last_sent_at.as_deref(), life) {
         outcome.resent += 1;
         notify(tx, live.alert_id, "resent", life, delivery, outcome)?;
     }
@@ -350,8 +441,10 @@ fn clear_one(
     }
     let now = time_text(life.now);
     tx.execute(
-        "UPDATE alert SET clear_count = clear_count + 1, state = 'resolved', resolved_at = ?2 WHERE alert_id = ?1",
-        params![alert_id, now],
+        "UPDATE alert SET clear_count = clear_count + 1, state = 'resolved', resolved_at = ?2,
+             resolved_as_of = (SELECT as_of FROM snapshot WHERE snapshot_id = ?3)
+         WHERE alert_id = ?1",
+        params![alert_id, now, life.snapshot_id],
     )?;
     outcome.resolved += 1;
     if sent_count > 0 {
@@ -381,7 +474,8 @@ fn notify(
     )?;
     let event_id = tx.last_insert_rowid();
     let mut facts = tx.query_row(
-        "SELECT a.rule, a.source, a.subject, a.severity, a.summary, a.figures, a.snapshot_id, n.as_of, a.opened_at
+        "SELECT a.rule, a.source, a.subject, a.severity, a.summary, a.figures, a.snapshot_id,
+                coalesce(a.last_seen_as_of, n.as_of), a.opened_at
          FROM alert a LEFT JOIN snapshot n ON n.snapshot_id = a.snapshot_id WHERE a.alert_id = ?1",
         [alert_id],
         |r| {

@@ -52,6 +52,7 @@ const MIGRATIONS: &[(i64, &str)] = &[
     (6, include_str!("../../migrations/0006_ingest_speed.sql")),
     (7, include_str!("../../migrations/0007_analysis_owed.sql")),
     (8, include_str!("../../migrations/0008_nowcast_scores.sql")),
+    (9, include_str!("../../migrations/0009_alert_data_dates.sql")),
 ];
 
 /// The schema version this build writes and understands.

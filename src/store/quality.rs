@@ -503,6 +503,21 @@ impl Reader {
         Ok(rows.collect::<Result<_, _>>()?)
     }
 
+    /// The earliest report date known at snapshot `upto`: days before it are unknown to the
+    /// count rules, not days without cases. `None` before the source has any.
+    pub fn first_report_day(
+        &self,
+        source_id: SourceId,
+        upto: SnapshotId,
+    ) -> Result<Option<String>, StoreError> {
+        Ok(self.conn.query_row(
+            "SELECT min(ref_date) FROM triangle
+             WHERE source_id = ?1 AND ref_field = 'report_date' AND stratum_kind = 'all' AND snapshot_id <= ?2",
+            params![source_id, upto],
+            |r| r.get(0),
+        )?)
+    }
+
     /// Daily counts by report date as known at snapshot `upto`, from the reporting triangle:
     /// (stratum kind, stratum, report date, count) for dates on or after `from_day`.
     pub fn report_counts(

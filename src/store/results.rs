@@ -48,8 +48,10 @@ impl Reader {
         Ok(Some(self.listing(sql, (source, time_text(as_of)))?))
     }
 
-    /// Open alerts: from `alert_open`, or with `as_of` those open at that time. `None` when
-    /// the store has no alert tables.
+    /// Open alerts: from `alert_open`, or with `as_of` those open at that data time: opened by
+    /// a snapshot as of `as_of` or earlier and not resolved by one as of `as_of` or earlier
+    /// (alerts of the poll rules, which have no snapshot, by their evaluation times). `None`
+    /// when the store has no alert tables.
     pub fn alerts_table(
         &self,
         source: Option<&str>,
@@ -64,10 +66,10 @@ impl Reader {
         };
         // Alerts opened by as_of and not resolved by then (their state column is today's).
         let sql = "SELECT alert_id, rule, source, subject, severity, state, summary, figures, snapshot_id,
-                          opened_at, last_seen_at, acked_at, resolved_at
+                          data_day, opened_as_of, resolved_as_of, opened_at, last_seen_at, acked_at, resolved_at
                    FROM alert
-                   WHERE (?1 IS NULL OR source = ?1) AND opened_at <= ?2
-                     AND (resolved_at IS NULL OR resolved_at > ?2)
+                   WHERE (?1 IS NULL OR source = ?1) AND coalesce(opened_as_of, opened_at) <= ?2
+                     AND (resolved_at IS NULL OR coalesce(resolved_as_of, resolved_at) > ?2)
                    ORDER BY alert_id";
         Ok(Some(self.listing(sql, (source, time_text(as_of)))?))
     }

@@ -125,7 +125,12 @@ fn lifecycle_dedupes_resends_acknowledges_and_resolves() {
     let mut store = open_store(&path);
     let t0: DateTime<Utc> = "2026-03-01T08:00:00Z".parse().unwrap();
     let at = |hours: i64| t0 + chrono::Duration::hours(hours);
-    let life = |now| Lifecycle { now, resend_after: Duration::from_secs(6 * 3600), resolve_after: 3 };
+    let life = |now| Lifecycle {
+        now,
+        snapshot_id: None,
+        resend_after: Duration::from_secs(6 * 3600),
+        resolve_after: 3,
+    };
     let route = |_: tidemark::model::Severity| vec!["webhook"];
     let payload = |f: &MessageFacts| format!("{{\"event_id\":{},\"kind\":\"{}\"}}", f.event_id, f.kind);
     let delivery = Delivery { route: &route, payload: &payload };

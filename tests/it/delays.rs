@@ -132,6 +132,12 @@ fn migration_6_fills_first_seen_for_stored_versions() {
         "ALTER TABLE case_version DROP COLUMN first_seen;
          CREATE INDEX case_attr_value ON case_attr(kind, value);
          DROP TABLE analysis_owed;
+         DROP VIEW alert_open;
+         DROP INDEX alert_opened_as_of;
+         ALTER TABLE alert DROP COLUMN opened_as_of;
+         ALTER TABLE alert DROP COLUMN last_seen_as_of;
+         ALTER TABLE alert DROP COLUMN resolved_as_of;
+         ALTER TABLE alert DROP COLUMN data_day;
          DELETE FROM schema_version WHERE version >= 6;",
     )
     .unwrap();

@@ -1,133 +1,251 @@
-//! The count-aberration rules: EARS C1, C2, C3 and the optional count CUSUM on the daily counts
-//! by report date.
+//! The count-aberration rules on the daily counts by report date: the short-baseline
+//! z-scores `count_z_recent` (C1), `count_z_guarded` (C2) and `count_z_guarded_3day` (C3),
+//! and the optional count CUSUM. Days before a source's first data are unknown, not zero: the
+//! caller passes the series from the first known day, and a rule whose baseline does not fit
+//! in it (or whose baseline mean is under the configured minimum) neither raises nor clears.
 
-use super::subject_suffix;
+use chrono::{Days, NaiveDate};
+
+use super::{above, counted, subject_suffix, whole_or_decimal};
 use crate::alert::{Figure, Outcome, Rule, Severity, Signal};
-use crate::analysis::aberration;
+use crate::analysis::aberration::{self, C2_GUARD_DAYS, SHORT_BASELINE_DAYS, Standardised};
 use crate::config::rules::{CountCusumParams, CountFamily, CountParams};
 
 /// Input of [`count_aberration`]: daily counts by report date for one jurisdiction, oldest
-/// first, the day to test last.
+/// first, from the first day the source has data for, the day to test last.
 #[derive(Debug, Clone, PartialEq)]
 pub struct CountInput {
     pub source: String,
     /// The jurisdiction (or other stratum); empty for the whole source.
     pub subject: String,
     pub daily_counts: Vec<f64>,
+    /// The report date of the last count (the day tested).
+    pub last_day: NaiveDate,
+}
+
+impl CountInput {
+    /// The report date of `counts[index]`.
+    fn day(&self, index: usize) -> NaiveDate {
+        let back = (self.daily_counts.len() - 1 - index) as u64;
+        self.last_day.checked_sub_days(Days::new(back)).unwrap_or(self.last_day)
+    }
+}
+
+/// Known days each rule needs, the day tested included.
+pub fn days_needed(rule: Rule, params: &CountParams) -> usize {
+    match rule {
+        Rule::CountZRecent => SHORT_BASELINE_DAYS + 1,
+        Rule::CountZGuarded => SHORT_BASELINE_DAYS + C2_GUARD_DAYS + 1,
+        Rule::CountZGuarded3Day => SHORT_BASELINE_DAYS + C2_GUARD_DAYS + 3,
+        _ => params.cusum.map_or(0, |c| c.baseline_days + c.guard_days + 1),
+    }
+}
+
+/// Days of CUSUM run-in beyond its first complete baseline that the caller passes, so the
+/// sum is that of a chart running since then rather than rebuilt from a day or two.
+pub const CUSUM_RUN_IN_DAYS: usize = 90;
+
+/// Days of counts the caller should pass (the day tested included): enough for every
+/// enabled rule, and the CUSUM's run-in.
+pub fn count_history_days(params: &CountParams) -> usize {
+    let cusum = params.cusum.map_or(0, |_| days_needed(Rule::CountCusum, params) + CUSUM_RUN_IN_DAYS);
+    cusum.max(days_needed(Rule::CountZGuarded3Day, params))
 }
 
 /// The enabled count rules on the latest day, one `(rule, outcome)` per rule, in the order
 /// C1, C2, C3, CUSUM.
 pub fn count_aberration(input: &CountInput, params: &CountParams) -> Vec<(Rule, Outcome)> {
-    let counts = &input.daily_counts;
-    let Some(t) = counts.len().checked_sub(1) else {
+    if input.daily_counts.is_empty() {
         return Vec::new();
-    };
-    let ears = &params.ears;
+    }
     let mut outcomes = Vec::new();
-    let standard = |rule, stat: Option<aberration::Standardised>, threshold| {
-        let outcome = match stat {
-            None => not_enough_days(counts.len()),
-            Some(s) if s.value > threshold => Outcome::Signal(count_signal(
-                input,
-                rule,
-                s.value,
-                threshold,
-                vec![
-                    Figure::new("count", s.observed),
-                    Figure::new("baseline_mean", s.baseline_mean),
-                    Figure::new("baseline_sd", s.baseline_sd),
-                ],
-            )),
-            Some(_) => Outcome::Clear,
-        };
-        (rule, outcome)
-    };
-    if params.c1 {
-        outcomes.push(standard(Rule::EarsC1, aberration::c1(counts, t, ears.min_sd), ears.c1_threshold));
+    if params.z_recent {
+        outcomes.push((Rule::CountZRecent, standardised_outcome(input, params, Rule::CountZRecent)));
     }
-    if params.c2 {
-        outcomes.push(standard(Rule::EarsC2, aberration::c2(counts, t, ears.min_sd), ears.c2_threshold));
+    if params.z_guarded {
+        outcomes.push((Rule::CountZGuarded, standardised_outcome(input, params, Rule::CountZGuarded)));
     }
-    if params.c3 {
-        let outcome = match aberration::c3(counts, t, ears.min_sd) {
-            None => not_enough_days(counts.len()),
-            Some(value) if value > ears.c3_threshold => Outcome::Signal(count_signal(
-                input,
-                Rule::EarsC3,
-                value,
-                ears.c3_threshold,
-                vec![Figure::new("count", counts[t])],
-            )),
-            Some(_) => Outcome::Clear,
-        };
-        outcomes.push((Rule::EarsC3, outcome));
+    if params.z_guarded_3day {
+        outcomes.push((Rule::CountZGuarded3Day, three_day_outcome(input, params)));
     }
     if let Some(cusum) = &params.cusum {
-        outcomes.push((Rule::CountCusum, count_cusum_outcome(input, cusum)));
+        outcomes.push((Rule::CountCusum, count_cusum_outcome(input, params, cusum)));
     }
     outcomes
+}
+
+/// `NotEnoughData` when the series is shorter than the rule needs.
+fn too_short(input: &CountInput, rule: Rule, params: &CountParams) -> Option<Outcome> {
+    let (needed, known) = (days_needed(rule, params), input.daily_counts.len());
+    (known < needed).then(|| {
+        Outcome::NotEnoughData(format!("needs {needed} known days of counts, has {}", counted_days(known)))
+    })
+}
+
+fn counted_days(n: usize) -> String {
+    if n == 1 { "1 day".into() } else { format!("{n} days") }
+}
+
+/// `NotEnoughData` when the baseline mean is under the minimum expected count.
+fn too_few_expected(mean: f64, params: &CountParams) -> Option<Outcome> {
+    (mean < params.min_expected).then(|| {
+        Outcome::NotEnoughData(format!(
+            "baseline mean {mean:.2} cases a day, under the minimum expected count {}",
+            whole_or_decimal(params.min_expected)
+        ))
+    })
+}
+
+/// C1 or C2 on the last day.
+fn standardised_outcome(input: &CountInput, params: &CountParams, rule: Rule) -> Outcome {
+    if let Some(short) = too_short(input, rule, params) {
+        return short;
+    }
+    let (counts, t, z) = (&input.daily_counts, input.daily_counts.len() - 1, &params.z);
+    let (stat, threshold, lag) = match rule {
+        Rule::CountZRecent => (aberration::c1(counts, t, z.min_sd), z.recent_threshold, 1),
+        _ => (aberration::c2(counts, t, z.min_sd), z.guarded_threshold, 1 + C2_GUARD_DAYS),
+    };
+    let Some(s) = stat else { return Outcome::NotEnoughData("no baseline".into()) };
+    if let Some(few) = too_few_expected(s.baseline_mean, params) {
+        return few;
+    }
+    if s.value <= threshold {
+        return Outcome::Clear;
+    }
+    let (from, to) = (input.day(t - lag + 1 - SHORT_BASELINE_DAYS), input.day(t - lag));
+    let summary = format!(
+        "{}: z = {} against the 7 report days {from} to {to} (mean {:.1}, sd {:.1} cases a day)",
+        headline(input, s.observed),
+        above(s.value, threshold),
+        s.baseline_mean,
+        s.baseline_sd
+    );
+    Outcome::Signal(count_signal(input, rule, s.value, threshold, standardised_figures(&s), summary))
+}
+
+fn standardised_figures(s: &Standardised) -> Vec<Figure> {
+    vec![
+        Figure::new("count", s.observed),
+        Figure::new("baseline_mean", s.baseline_mean),
+        Figure::new("baseline_sd", s.baseline_sd),
+    ]
+}
+
+/// "labs (North): 12 cases reported on 2026-03-11".
+fn headline(input: &CountInput, count: f64) -> String {
+    format!(
+        "{}{}: {} reported on {}",
+        input.source,
+        subject_suffix(&input.subject),
+        counted(count, "case", "cases"),
+        input.last_day
+    )
+}
+
+/// C3 on the last day: the three days' counts, their guarded excesses and the sum.
+fn three_day_outcome(input: &CountInput, params: &CountParams) -> Outcome {
+    if let Some(short) = too_short(input, Rule::CountZGuarded3Day, params) {
+        return short;
+    }
+    let (counts, t, z) = (&input.daily_counts, input.daily_counts.len() - 1, &params.z);
+    let days: Option<Vec<Standardised>> = (t - 2..=t).map(|i| aberration::c2(counts, i, z.min_sd)).collect();
+    let Some(days) = days else { return Outcome::NotEnoughData("no baseline".into()) };
+    let mean = days.iter().map(|s| s.baseline_mean).fold(f64::INFINITY, f64::min);
+    if let Some(few) = too_few_expected(mean, params) {
+        return few;
+    }
+    let value: f64 = days.iter().map(|s| (s.value - 1.0).max(0.0)).sum();
+    let threshold = z.guarded_3day_threshold;
+    if value <= threshold {
+        return Outcome::Clear;
+    }
+    let counts_text: Vec<String> = days.iter().map(|s| whole_or_decimal(s.observed)).collect();
+    let total: f64 = days.iter().map(|s| s.observed).sum();
+    let last = days[2];
+    let summary = format!(
+        "{}{}: {} reported on {} to {} ({}); sum of the three days' guarded excesses {} \
+         (latest baseline mean {:.1}, sd {:.1} cases a day)",
+        input.source,
+        subject_suffix(&input.subject),
+        counted(total, "case", "cases"),
+        input.day(t - 2),
+        input.last_day,
+        counts_text.join(", "),
+        above(value, threshold),
+        last.baseline_mean,
+        last.baseline_sd
+    );
+    let mut figures = vec![Figure::new("three_day_count", total)];
+    figures.extend(standardised_figures(&last));
+    Outcome::Signal(count_signal(input, Rule::CountZGuarded3Day, value, threshold, figures, summary))
 }
 
 /// Per-day reference values and decision intervals of the count CUSUM, from each day's moving
 /// baseline; NaN where the baseline is not complete.
 pub fn count_cusum_references(counts: &[f64], params: &CountCusumParams) -> Vec<(f64, f64)> {
-    (0..counts.len())
-        .map(|t| {
-            let Some(end) = t.checked_sub(params.guard_days + 1) else {
-                return (f64::NAN, f64::NAN);
-            };
-            let Some(start) = (end + 1).checked_sub(params.baseline_days) else {
-                return (f64::NAN, f64::NAN);
-            };
-            let (mean, sd) = aberration::mean_and_sd(&counts[start..=end]);
-            let mu0 = mean.max(params.min_mean);
-            let variance = match params.family {
-                CountFamily::Poisson => mu0,
-                CountFamily::NegativeBinomial => (sd * sd).max(mu0),
-            };
-            let sd0 = variance.sqrt();
-            let mu1 = mu0 + params.shift_sds * sd0;
-            let k = if variance > mu0 * (1.0 + 1e-9) {
-                let size = mu0 * mu0 / (variance - mu0);
-                aberration::negative_binomial_reference_value(mu0, mu1, size)
-            } else {
-                aberration::poisson_reference_value(mu0, mu1)
-            };
-            (k, params.h_sds * sd0)
-        })
-        .collect()
+    (0..counts.len()).map(|t| cusum_reference(counts, t, params).unwrap_or((f64::NAN, f64::NAN))).collect()
 }
 
-fn count_cusum_outcome(input: &CountInput, params: &CountCusumParams) -> Outcome {
+/// `(k, h)` of day `t`, or `None` while its baseline is not complete.
+fn cusum_reference(counts: &[f64], t: usize, params: &CountCusumParams) -> Option<(f64, f64)> {
+    let end = t.checked_sub(params.guard_days + 1)?;
+    let start = (end + 1).checked_sub(params.baseline_days)?;
+    let (mean, sd) = aberration::mean_and_sd(&counts[start..=end]);
+    let mu0 = mean.max(params.min_mean);
+    let variance = match params.family {
+        CountFamily::Poisson => mu0,
+        CountFamily::NegativeBinomial => (sd * sd).max(mu0),
+    };
+    let sd0 = variance.sqrt();
+    let mu1 = mu0 + params.shift_sds * sd0;
+    let k = if variance > mu0 * (1.0 + 1e-9) {
+        let size = mu0 * mu0 / (variance - mu0);
+        aberration::negative_binomial_reference_value(mu0, mu1, size)
+    } else {
+        aberration::poisson_reference_value(mu0, mu1)
+    };
+    Some((k, params.h_sds * sd0))
+}
+
+/// The CUSUM over the whole known series (the caller passes up to its configured history),
+/// so its sum carries over from every earlier day with a complete baseline.
+fn count_cusum_outcome(input: &CountInput, params: &CountParams, cusum: &CountCusumParams) -> Outcome {
+    if let Some(short) = too_short(input, Rule::CountCusum, params) {
+        return short;
+    }
     let counts = &input.daily_counts;
     let (references, intervals): (Vec<f64>, Vec<f64>) =
-        count_cusum_references(counts, params).into_iter().unzip();
+        count_cusum_references(counts, cusum).into_iter().unzip();
     let days = aberration::count_cusum(counts, &references, &intervals);
     let (Some(last), Some(&h)) = (days.last(), intervals.last()) else {
-        return not_enough_days(counts.len());
+        return Outcome::NotEnoughData("no baseline".into());
     };
-    if h.is_nan() {
-        return not_enough_days(counts.len());
-    }
     if !last.alarm {
         return Outcome::Clear;
     }
-    Outcome::Signal(count_signal(
-        input,
-        Rule::CountCusum,
-        last.statistic,
-        h,
-        vec![Figure::new("count", counts[counts.len() - 1]), Figure::new("reference_value", last.reference)],
-    ))
+    let summary = format!(
+        "{}: count CUSUM {} cases of excess over the reference value {:.1} cases a day \
+         ({}-day baseline ending {})",
+        headline(input, counts[counts.len() - 1]),
+        above(last.statistic, h),
+        last.reference,
+        cusum.baseline_days,
+        input.day(counts.len() - 2 - cusum.guard_days)
+    );
+    let figures =
+        vec![Figure::new("count", counts[counts.len() - 1]), Figure::new("reference_value", last.reference)];
+    Outcome::Signal(count_signal(input, Rule::CountCusum, last.statistic, h, figures, summary))
 }
 
-fn not_enough_days(days: usize) -> Outcome {
-    Outcome::NotEnoughData(format!("{days} days of counts"))
-}
-
-fn count_signal(input: &CountInput, rule: Rule, value: f64, threshold: f64, figures: Vec<Figure>) -> Signal {
-    let count = figures.first().map_or(f64::NAN, |f| f.value);
+fn count_signal(
+    input: &CountInput,
+    rule: Rule,
+    value: f64,
+    threshold: f64,
+    figures: Vec<Figure>,
+    summary: String,
+) -> Signal {
     Signal {
         rule,
         source: input.source.clone(),
@@ -136,15 +254,7 @@ fn count_signal(input: &CountInput, rule: Rule, value: f64, threshold: f64, figu
         measure: rule.name(),
         observed: value,
         threshold,
-        summary: format!(
-            "{}{}: {} cases on the latest report day, {} = {:.2} above its threshold {:.2}",
-            input.source,
-            subject_suffix(&input.subject),
-            count,
-            rule.name(),
-            value,
-            threshold
-        ),
+        summary,
         figures,
     }
 }

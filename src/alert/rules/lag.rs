@@ -74,15 +74,14 @@ pub fn lag_jump(input: &LagInput, params: &LagParams) -> Outcome {
         ],
         summary: format!(
             "{}{}: median reporting lag {:.1} days over the last {} days against {:.1} in the {} days before \
-             (EWMA {:.2} > {:.2}, Mann-Whitney p = {:.2e})",
+             (EWMA of the daily median {}, Mann-Whitney p = {:.2e})",
             input.source,
             subject_suffix(&input.subject),
             recent_median,
             recent.len(),
             baseline_median,
             baseline.len(),
-            last.z,
-            last.upper,
+            super::above(last.z, last.upper),
             test.p_value
         ),
     })

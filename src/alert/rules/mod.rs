@@ -13,7 +13,7 @@
 //! - `volume_drop`: warning; critical when no new records arrived at all.
 //! - `stale_source`: warning; critical after twice `expect_every`.
 //! - `failing_polls`: warning; critical after twice the allowed failures.
-//! - `ears_c1`, `ears_c2`, `ears_c3`, `count_cusum`: warning; critical when the statistic is at
+//! - `count_z_recent`, `count_z_guarded`, `count_z_guarded_3day`, `count_cusum`: warning; critical when the statistic is at
 //!   least twice its threshold.
 //! - `nowcast_calibration`: warning; critical when the 90% coverage is under 0.75 and the
 //!   score is also worse than the naive count's.
@@ -49,6 +49,24 @@ pub fn median(values: &[f64]) -> Option<f64> {
     sorted.sort_by(f64::total_cmp);
     let mid = sorted.len() / 2;
     Some(if sorted.len() % 2 == 1 { sorted[mid] } else { (sorted[mid - 1] + sorted[mid]) / 2.0 })
+}
+
+/// `n` with its noun in the right number: "1 case", "0 cases", "2.5 cases".
+pub fn counted(n: f64, singular: &str, plural: &str) -> String {
+    let noun = if n == 1.0 { singular } else { plural };
+    format!("{} {noun}", whole_or_decimal(n))
+}
+
+/// A count as a whole number when it is one, else to one decimal.
+pub fn whole_or_decimal(n: f64) -> String {
+    if n.fract() == 0.0 && n.abs() < 1e15 { format!("{n:.0}") } else { format!("{n:.1}") }
+}
+
+/// A statistic and the threshold it passed, each to the fewest decimals (at least two, at
+/// most six) that keep them apart, so a message never says "10.13 > 10.13".
+pub fn above(value: f64, threshold: f64) -> String {
+    let decimals = (2..=6).find(|&d| format!("{value:.d$}") != format!("{threshold:.d$}")).unwrap_or(6);
+    format!("{value:.decimals$} > {threshold:.decimals$}")
 }
 
 fn subject_suffix(subject: &str) -> String {

@@ -1,5 +1,5 @@
 //! Tests of the alert rules: reference values from docs/validation.md where a rule rests on
-//! one (p-chart, EARS), hand-computed cases at each gate, and seeded simulations with known
+//! one (p-chart, C1/C2/C3), hand-computed cases at each gate, and seeded simulations with known
 //! truth for the in-control false-alarm rate of the lag rule.
 
 use chrono::TimeZone;
@@ -210,8 +210,18 @@ fn failing_polls_after_three_in_a_row() {
 /// docs/validation.md "Aberration and change detection" series, days 1..14.
 const SERIES: [f64; 14] = [4., 6., 5., 7., 5., 6., 7., 5., 6., 4., 12., 9., 15., 8.];
 
+fn march(day: u32) -> chrono::NaiveDate {
+    chrono::NaiveDate::from_ymd_opt(2026, 3, day).unwrap()
+}
+
+/// The series' day 1 is 2026-03-01.
 fn counts_through(day: usize) -> CountInput {
-    CountInput { source: "labs".into(), subject: "North".into(), daily_counts: SERIES[..day].to_vec() }
+    CountInput {
+        source: "labs".into(),
+        subject: "North".into(),
+        daily_counts: SERIES[..day].to_vec(),
+        last_day: march(day.max(1) as u32),
+    }
 }
 
 fn outcome(outcomes: &[(Rule, Outcome)], rule: Rule) -> &Outcome {
@@ -224,23 +234,70 @@ fn outcome(outcomes: &[(Rule, Outcome)], rule: Rule) -> &Outcome {
 fn count_aberration_matches_the_reference_series() {
     let params = CountParams::default();
     let day11 = count_aberration(&counts_through(11), &params);
-    let c1 = outcome(&day11, Rule::EarsC1).signal().unwrap();
+    let c1 = outcome(&day11, Rule::CountZRecent).signal().unwrap();
     assert!(close(c1.observed, 5.6491, 5e-5) && c1.threshold == 3.0);
     assert_eq!(c1.figure("count"), Some(12.0));
     assert!(close(c1.figure("baseline_mean").unwrap(), 40.0 / 7.0, 1e-12));
-    assert_eq!(c1.fingerprint(), "ears_c1|labs|North");
-    assert!(close(outcome(&day11, Rule::EarsC2).signal().unwrap().observed, 6.8274, 5e-5));
+    assert_eq!(c1.fingerprint(), "count_z_recent|labs|North");
+    assert!(close(outcome(&day11, Rule::CountZGuarded).signal().unwrap().observed, 6.8274, 5e-5));
     let day12 = count_aberration(&counts_through(12), &params);
-    let c3 = outcome(&day12, Rule::EarsC3).signal().unwrap();
+    let c3 = outcome(&day12, Rule::CountZGuarded3Day).signal().unwrap();
     assert!(close(c3.observed, 8.3205, 5e-5));
     assert_eq!(c3.severity, Severity::Critical, "8.32 is at least twice the threshold 2");
     let day13 = count_aberration(&counts_through(13), &params);
-    assert!(outcome(&day13, Rule::EarsC1).is_clear());
-    assert!(close(outcome(&day13, Rule::EarsC2).signal().unwrap().observed, 8.3452, 5e-5));
+    assert!(outcome(&day13, Rule::CountZRecent).is_clear());
+    assert!(close(outcome(&day13, Rule::CountZGuarded).signal().unwrap().observed, 8.3452, 5e-5));
     let day8 = count_aberration(&counts_through(8), &params);
-    assert!(outcome(&day8, Rule::EarsC1).is_clear());
-    assert!(matches!(outcome(&day8, Rule::EarsC2), Outcome::NotEnoughData(_)));
+    assert!(outcome(&day8, Rule::CountZRecent).is_clear());
+    assert!(matches!(outcome(&day8, Rule::CountZGuarded), Outcome::NotEnoughData(_)));
     assert!(count_aberration(&counts_through(0), &params).is_empty());
+}
+
+/// The three-day rule names the three days' counts and the sum it tested, not the last
+/// day's count alone; a single case is "1 case".
+#[test]
+fn count_messages_state_what_was_tested() {
+    let outcomes = count_aberration(&counts_through(12), &CountParams::default());
+    let c3 = outcome(&outcomes, Rule::CountZGuarded3Day).signal().unwrap();
+    assert_eq!(c3.figure("three_day_count"), Some(4.0 + 12.0 + 9.0));
+    assert!(
+        c3.summary.starts_with("labs (North): 25 cases reported on 2026-03-10 to 2026-03-12 (4, 12, 9); sum of the three days' guarded excesses 8.32 > 2.00"),
+        "{}",
+        c3.summary
+    );
+    let mut quiet = vec![1.0, 2.0, 1.0, 1.0, 2.0, 1.0, 1.0];
+    quiet.push(9.0);
+    let one = CountInput { daily_counts: quiet, last_day: march(8), ..counts_through(8) };
+    let signal =
+        outcome(&count_aberration(&one, &CountParams::default()), Rule::CountZRecent).signal().cloned();
+    assert!(signal.unwrap().summary.contains("9 cases reported on 2026-03-08"));
+    assert_eq!(counted(1.0, "case", "cases"), "1 case");
+    assert_eq!(above(10.1304, 10.1301), "10.1304 > 10.1301");
+}
+
+/// Days before the source's first data are unknown: a series of 3 known days cannot test C1
+/// (it needs 8), and a near-empty baseline (mean under one case a day) is not enough data
+/// either, so two cases after a quiet week do not page.
+#[test]
+fn count_rules_need_known_days_and_an_expected_count() {
+    let params = CountParams::default();
+    let short = CountInput { daily_counts: vec![0.0, 1.0, 2.0], last_day: march(3), ..counts_through(3) };
+    let outcomes = count_aberration(&short, &params);
+    let Outcome::NotEnoughData(why) = outcome(&outcomes, Rule::CountZRecent) else {
+        panic!("a 3-day series has no C1 baseline");
+    };
+    assert_eq!(why, "needs 8 known days of counts, has 3 days");
+    let mut sparse = vec![0.0; 11];
+    sparse.push(2.0);
+    let input = CountInput { daily_counts: sparse, last_day: march(12), ..counts_through(12) };
+    for (rule, result) in count_aberration(&input, &params) {
+        assert!(
+            matches!(result, Outcome::NotEnoughData(ref why) if why.contains("minimum expected")),
+            "{rule:?}"
+        );
+    }
+    let lenient = CountParams { min_expected: 0.0, ..params };
+    assert!(outcome(&count_aberration(&input, &lenient), Rule::CountZRecent).signal().is_some());
 }
 
 #[test]
@@ -248,7 +305,12 @@ fn count_cusum_option_signals_a_lasting_rise() {
     let params = CountParams { cusum: Some(CountCusumParams::default()), ..CountParams::default() };
     // A week-long pattern with mean 10, so every 28-day baseline has mean exactly 10.
     let mut counts = [10.0, 12.0, 9.0, 11.0, 8.0, 10.0, 10.0].repeat(5);
-    let flat = CountInput { source: "labs".into(), subject: "North".into(), daily_counts: counts.clone() };
+    let flat = CountInput {
+        source: "labs".into(),
+        subject: "North".into(),
+        daily_counts: counts.clone(),
+        last_day: march(31),
+    };
     let outcomes = count_aberration(&flat, &params);
     assert!(outcome(&outcomes, Rule::CountCusum).is_clear());
     // Poisson baseline mean 10, sd sqrt 10: mu1 = 16.32, k = 6.32 / ln 1.632 = 12.905 and
@@ -289,10 +351,11 @@ fn negative_binomial_cusum_uses_the_overdispersed_baseline() {
 #[test]
 fn summaries_hold_aggregates_only() {
     let outcomes = count_aberration(&counts_through(11), &CountParams::default());
-    let summary = &outcome(&outcomes, Rule::EarsC1).signal().unwrap().summary;
+    let summary = &outcome(&outcomes, Rule::CountZRecent).signal().unwrap().summary;
     assert_eq!(
         summary,
-        "labs (North): 12 cases on the latest report day, ears_c1 = 5.65 above its threshold 3.00"
+        "labs (North): 12 cases reported on 2026-03-11: z = 5.65 > 3.00 against the 7 report days \
+         2026-03-04 to 2026-03-10 (mean 5.7, sd 1.1 cases a day)"
     );
     let signal = missingness_jump(&missing((25, 100), &[(10, 100); 7]), &MissingnessParams::default());
     assert_eq!(

@@ -1,0 +1,38 @@
+-- tidemark store, version 9: the short-baseline count rules are named by their method, and
+-- alerts keep the data time they are about.
+--
+-- Rule ids: the three z-score rules on daily counts are renamed (C1, C2 and C3 of the
+-- published method keep their names in the docs). Fingerprints begin with the rule id, so
+-- they are renamed with it; the unique index on live fingerprints cannot collide because the
+-- new ids were not in use. Message payloads already sent keep the id they were sent with.
+UPDATE alert SET rule = 'count_z_recent', fingerprint = 'count_z_recent' || substr(fingerprint, 8)
+WHERE rule = 'ears_c1';
+UPDATE alert SET rule = 'count_z_guarded', fingerprint = 'count_z_guarded' || substr(fingerprint, 8)
+WHERE rule = 'ears_c2';
+UPDATE alert SET rule = 'count_z_guarded_3day', fingerprint = 'count_z_guarded_3day' || substr(fingerprint, 8)
+WHERE rule = 'ears_c3';
+
+-- Data time: the as-of time of the snapshot whose evaluation opened, last saw and resolved
+-- the alert (NULL for rules evaluated after a poll, whose data time is the evaluation time),
+-- and the day the figure that opened it is about. `alerts --as-of` filters by these, so a
+-- past figure's alerts can be listed by the data they came from, not by when the daemon ran.
+ALTER TABLE alert ADD COLUMN opened_as_of TEXT;
+ALTER TABLE alert ADD COLUMN last_seen_as_of TEXT;
+ALTER TABLE alert ADD COLUMN resolved_as_of TEXT;
+ALTER TABLE alert ADD COLUMN data_day TEXT;
+UPDATE alert SET opened_as_of = (SELECT n.as_of FROM snapshot n WHERE n.snapshot_id = alert.snapshot_id),
+                 data_day = (SELECT substr(n.as_of, 1, 10) FROM snapshot n WHERE n.snapshot_id = alert.snapshot_id);
+CREATE INDEX alert_opened_as_of ON alert(opened_as_of);
+
+DROP VIEW IF EXISTS alert_open;
+CREATE VIEW alert_open AS
+SELECT a.alert_id, a.rule, a.source, a.subject, a.severity, a.state, a.summary, a.figures,
+       a.data_day, a.opened_as_of, a.last_seen_as_of,
+       a.opened_at, a.last_seen_at, a.times_seen, a.clear_count, a.last_sent_at, a.sent_count,
+       a.acked_at, a.ack_note,
+       (SELECT count(*) FROM outbox o JOIN alert_event e USING (event_id)
+         WHERE e.alert_id = a.alert_id AND o.delivered_at IS NULL AND o.dead_at IS NULL) AS pending,
+       (SELECT count(*) FROM outbox o JOIN alert_event e USING (event_id)
+         WHERE e.alert_id = a.alert_id AND o.dead_at IS NOT NULL) AS dead_letters
+FROM alert a
+WHERE a.state <> 'resolved';
