@@ -2,15 +2,41 @@
 -- alerts keep the data time they are about.
 --
 -- Rule ids: the three z-score rules on daily counts are renamed (C1, C2 and C3 of the
--- published method keep their names in the docs). Fingerprints begin with the rule id, so
--- they are renamed with it; the unique index on live fingerprints cannot collide because the
--- new ids were not in use. Message payloads already sent keep the id they were sent with.
-UPDATE alert SET rule = 'count_z_recent', fingerprint = 'count_z_recent' || substr(fingerprint, 8)
-WHERE rule = 'ears_c1';
-UPDATE alert SET rule = 'count_z_guarded', fingerprint = 'count_z_guarded' || substr(fingerprint, 8)
-WHERE rule = 'ears_c2';
-UPDATE alert SET rule = 'count_z_guarded_3day', fingerprint = 'count_z_guarded_3day' || substr(fingerprint, 8)
-WHERE rule = 'ears_c3';
+-- published method keep their names in the docs). Message payloads already sent keep the id
+-- they were sent with.
+--
+-- Episodes: the count rules of one source and subject are now one alert (fingerprint
+-- `count|source|subject`), so a rise that trips C1, C2 and C3 pages once. Of the live count
+-- alerts of one source and subject the newest stays live and the others are resolved here,
+-- with an event saying why, before the fingerprints merge (live fingerprints are unique).
+INSERT INTO alert_event (alert_id, kind, at, note)
+SELECT alert_id, 'resolved', strftime('%Y-%m-%dT%H:%M:%SZ', 'now'), 'merged into one count episode by the store upgrade'
+FROM alert
+WHERE state <> 'resolved' AND rule IN ('ears_c1', 'ears_c2', 'ears_c3', 'count_cusum')
+  AND alert_id NOT IN (SELECT max(alert_id) FROM alert
+                       WHERE state <> 'resolved' AND rule IN ('ears_c1', 'ears_c2', 'ears_c3', 'count_cusum')
+                       GROUP BY source, subject);
+UPDATE alert SET state = 'resolved', resolved_at = strftime('%Y-%m-%dT%H:%M:%SZ', 'now')
+WHERE alert_id IN (SELECT alert_id FROM alert_event
+                   WHERE note = 'merged into one count episode by the store upgrade');
+UPDATE alert SET fingerprint = 'count' || substr(fingerprint, instr(fingerprint, '|'))
+WHERE rule IN ('ears_c1', 'ears_c2', 'ears_c3', 'count_cusum');
+UPDATE alert SET rule = 'count_z_recent' WHERE rule = 'ears_c1';
+UPDATE alert SET rule = 'count_z_guarded' WHERE rule = 'ears_c2';
+UPDATE alert SET rule = 'count_z_guarded_3day' WHERE rule = 'ears_c3';
+
+-- The latest outcome of every rule for every subject it evaluated, including "not enough
+-- data" and its reason, so `alerts` can say which rules cannot decide yet.
+CREATE TABLE IF NOT EXISTS rule_status (
+    fingerprint  TEXT PRIMARY KEY,
+    rule         TEXT NOT NULL,
+    source       TEXT NOT NULL,
+    subject      TEXT NOT NULL,
+    outcome      TEXT NOT NULL CHECK (outcome IN ('signal', 'clear', 'not_enough_data')),
+    reason       TEXT,
+    snapshot_id  INTEGER,
+    evaluated_at TEXT NOT NULL
+);
 
 -- Data time: the as-of time of the snapshot whose evaluation opened, last saw and resolved
 -- the alert (NULL for rules evaluated after a poll, whose data time is the evaluation time),

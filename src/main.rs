@@ -198,6 +198,9 @@ enum Command {
         /// Include resolved alerts.
         #[arg(long)]
         all: bool,
+        /// The alerts live at this data time (a snapshot's as-of time or date), not now.
+        #[arg(long, value_name = "TIME")]
+        as_of: Option<String>,
         #[command(flatten)]
         listing: Listing,
     },
@@ -507,10 +510,10 @@ fn run(cli: Cli) -> Result<u8> {
         Command::Quality { source, snapshot, listing } => {
             tidemark::app::quality::quality(&load(flag)?, &source, snapshot, listing.output())?
         }
-        Command::Alerts { action, all, listing } => {
+        Command::Alerts { action, all, as_of, listing } => {
             let config = load(flag)?;
             match action {
-                None => tidemark::app::alerting::list(&config, all, listing.output())?,
+                None => tidemark::app::alerting::list(&config, all, as_of.as_deref(), listing.output())?,
                 Some(AlertAction::Ack { id, note }) => tidemark::app::alerting::ack(&config, id, &note)?,
                 Some(AlertAction::Test) => tidemark::app::alerting::test(&config)?,
             }

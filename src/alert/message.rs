@@ -20,9 +20,24 @@ pub fn dashboard_link(base: &str, source: &str) -> String {
     }
 }
 
-/// The JSON payload of one notifying event.
-pub fn payload(facts: &MessageFacts, dashboard_base: &str) -> String {
-    let figures: Value = serde_json::from_str(&facts.figures).unwrap_or_else(|_| json!({}));
+/// Figures that are case counts, released as a range when small (see [`payload`]).
+pub const CASE_COUNT_FIGURES: [&str; 2] = ["count", "three_day_count"];
+
+/// The JSON payload of one notifying event. Case-count figures from 1 to `small_cell_max`
+/// leave the server as a range ("1-4"), never exactly (small-cell suppression; the
+/// summary is already written so by the rules).
+pub fn payload(facts: &MessageFacts, dashboard_base: &str, small_cell_max: u32) -> String {
+    let mut figures: Value = serde_json::from_str(&facts.figures).unwrap_or_else(|_| json!({}));
+    if let Value::Object(map) = &mut figures {
+        for key in CASE_COUNT_FIGURES {
+            if let Some(n) = map.get(key).and_then(Value::as_f64)
+                && n >= 1.0
+                && n <= f64::from(small_cell_max)
+            {
+                map.insert(key.to_string(), json!(crate::alert::rules::cell(n, small_cell_max)));
+            }
+        }
+    }
     let body = json!({
         "event_id": facts.event_id,
         "kind": facts.kind,
@@ -62,6 +77,7 @@ pub fn email_text(payload: &str) -> EmailText {
     let verb = match s("kind").as_str() {
         "resolved" => "resolved",
         "resent" => "still active",
+        "escalated" => "severity rose",
         "test" => "test",
         _ => "signal",
     };
@@ -148,7 +164,7 @@ mod tests {
 
     #[test]
     fn payload_carries_aggregates_link_and_caution() {
-        let body: Value = serde_json::from_str(&payload(&facts(), "http://127.0.0.1:8440/")).unwrap();
+        let body: Value = serde_json::from_str(&payload(&facts(), "http://127.0.0.1:8440/", 4)).unwrap();
         assert_eq!(body["event_id"], 7);
         assert_eq!(body["figures"]["baseline"], 0.04);
         assert_eq!(body["dashboard"], "http://127.0.0.1:8440/sources/county-reports");
@@ -159,12 +175,29 @@ mod tests {
     fn email_has_both_parts_and_escapes() {
         let mut f = facts();
         f.summary = "a < b & c".into();
-        let email = email_text(&payload(&f, "http://h"));
+        let email = email_text(&payload(&f, "http://h", 4));
         assert!(email.subject.contains("missingness_jump on county-reports onset_date"));
         assert!(email.plain.contains("figure share: 0.31") && email.plain.contains(CAUTION));
         assert!(
             email.html.contains("a &lt; b &amp; c")
                 && email.html.contains("href=\"http://h/sources/county-reports\"")
         );
+    }
+
+    /// Small-cell suppression: case counts of 1 to 4 leave as "1-4"; 0 and 5 or more are
+    /// exact; other figures (shares, baselines) are untouched.
+    #[test]
+    fn small_case_counts_leave_the_server_as_a_range() {
+        let mut f = facts();
+        f.figures = r#"{"count":3,"three_day_count":12,"baseline_mean":2.5}"#.into();
+        let body: Value = serde_json::from_str(&payload(&f, "http://h", 4)).unwrap();
+        assert_eq!(body["figures"]["count"], "1-4");
+        assert_eq!(body["figures"]["three_day_count"], 12);
+        assert_eq!(body["figures"]["baseline_mean"], 2.5);
+        let off: Value = serde_json::from_str(&payload(&f, "http://h", 0)).unwrap();
+        assert_eq!(off["figures"]["count"], 3);
+        assert_eq!(crate::alert::rules::cases(3.0, 4), "1-4 cases");
+        assert_eq!(crate::alert::rules::cases(1.0, 0), "1 case");
+        assert_eq!(crate::alert::rules::cases(0.0, 4), "0 cases");
     }
 }

@@ -76,11 +76,12 @@ impl Signal {
 }
 
 /// The fingerprint of a (rule, source, subject) triple, as [`Signal::fingerprint`] gives it; the
-/// store can compute it for conditions that are clear. `|` in names is escaped as `\|` so
+/// store can compute it for conditions that are clear. It begins with the rule's
+/// [`Rule::episode`], so the count rules of one subject are one alert. `|` in names is escaped as `\|` so
 /// different triples never collide.
 pub fn fingerprint(rule: Rule, source: &str, subject: &str) -> String {
     let escape = |text: &str| text.replace('\\', "\\\\").replace('|', "\\|");
-    format!("{}|{}|{}", rule.name(), escape(source), escape(subject))
+    format!("{}|{}|{}", rule.episode(), escape(source), escape(subject))
 }
 
 /// What one rule concluded for one subject.

@@ -36,6 +36,14 @@ pub struct ShortBaselineParams {
     /// non-constant week of counts that varies by more than one case has sd above it, so the
     /// floor only touches flat or nearly flat baselines.
     pub min_sd: f64,
+    /// Also floor the sd at the Poisson sd of the baseline mean, `sqrt(mean)`. Default true.
+    /// Seven days give a noisy sample sd: with Poisson counts of mean 34 a week's sample sd
+    /// is under half the true 5.8 about one week in twenty, and the z-score is then more than
+    /// twice as large, so a steady count pages. Counts of cases vary at least as much as
+    /// Poisson counts (common practice; over-dispersion only adds), so the floor removes
+    /// those false alarms and leaves a real doubling (`z = sqrt(mean)`, above 3 from a mean
+    /// of 9) detectable. `false` gives the published statistics exactly.
+    pub poisson_floor: bool,
 }
 
 impl Default for ShortBaselineParams {
@@ -45,7 +53,36 @@ impl Default for ShortBaselineParams {
             guarded_threshold: 3.0,
             guarded_3day_threshold: 2.0,
             min_sd: 0.5,
+            poisson_floor: true,
         }
+    }
+}
+
+impl ShortBaselineParams {
+    /// The sd floor these parameters ask for.
+    pub fn floor(&self) -> SdFloor {
+        SdFloor { min_sd: self.min_sd, poisson: self.poisson_floor }
+    }
+}
+
+/// The smallest sd a z-score divides by: `min_sd`, and with `poisson` also `sqrt(mean)`. A
+/// bare number is a `min_sd` floor alone (the published statistics).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SdFloor {
+    pub min_sd: f64,
+    pub poisson: bool,
+}
+
+impl From<f64> for SdFloor {
+    fn from(min_sd: f64) -> SdFloor {
+        SdFloor { min_sd, poisson: false }
+    }
+}
+
+impl SdFloor {
+    fn apply(self, mean: f64, sd: f64) -> f64 {
+        let poisson = if self.poisson { mean.max(0.0).sqrt() } else { 0.0 };
+        sd.max(self.min_sd).max(poisson)
     }
 }
 
@@ -70,13 +107,13 @@ pub struct ShortBaselineDay {
 }
 
 /// C1 of day `t`: baseline `t-7 ..= t-1`. `None` when `t < 7` or `t` is past the series.
-pub fn c1(counts: &[f64], t: usize, min_sd: f64) -> Option<Standardised> {
-    standardised(counts, t, 1, min_sd)
+pub fn c1(counts: &[f64], t: usize, floor: impl Into<SdFloor>) -> Option<Standardised> {
+    standardised(counts, t, 1, floor.into())
 }
 
 /// C2 of day `t`: baseline `t-9 ..= t-3`. `None` when `t < 9` or `t` is past the series.
-pub fn c2(counts: &[f64], t: usize, min_sd: f64) -> Option<Standardised> {
-    standardised(counts, t, 1 + C2_GUARD_DAYS, min_sd)
+pub fn c2(counts: &[f64], t: usize, floor: impl Into<SdFloor>) -> Option<Standardised> {
+    standardised(counts, t, 1 + C2_GUARD_DAYS, floor.into())
 }
 
 /// C3 of day `t`: the sum of `max(0, C2_i - 1)` over `i = t-2, t-1, t`. `None` unless C2 is
@@ -85,9 +122,10 @@ pub fn c2(counts: &[f64], t: usize, min_sd: f64) -> Option<Standardised> {
 /// Reference check (docs/validation.md, 1-based days): on day 12 the days entering C3 are
 /// days 10, 11 and 12 with C2 = -1.5407, 6.8274 and 3.4931; day 10 contributes 0, so
 /// C3 = 5.8274 + 2.4931 = 8.3205.
-pub fn c3(counts: &[f64], t: usize, min_sd: f64) -> Option<f64> {
+pub fn c3(counts: &[f64], t: usize, floor: impl Into<SdFloor>) -> Option<f64> {
     let first = t.checked_sub(2)?;
-    (first..=t).map(|i| c2(counts, i, min_sd).map(|s| (s.value - 1.0).max(0.0))).sum()
+    let floor = floor.into();
+    (first..=t).map(|i| c2(counts, i, floor).map(|s| (s.value - 1.0).max(0.0))).sum()
 }
 
 /// The short-baseline statistics of every day of the series.
@@ -109,13 +147,13 @@ pub fn mean_and_sd(values: &[f64]) -> (f64, f64) {
     (mean, (squares / (n - 1.0)).sqrt())
 }
 
-/// `(y_t - mean) / max(sd, min_sd)` over the 7 days ending `lag` days before `t`.
-fn standardised(counts: &[f64], t: usize, lag: usize, min_sd: f64) -> Option<Standardised> {
+/// `(y_t - mean) / floored sd` over the 7 days ending `lag` days before `t`.
+fn standardised(counts: &[f64], t: usize, lag: usize, floor: SdFloor) -> Option<Standardised> {
     let observed = *counts.get(t)?;
     let end = t.checked_sub(lag)?;
     let start = (end + 1).checked_sub(SHORT_BASELINE_DAYS)?;
     let (baseline_mean, sd) = mean_and_sd(&counts[start..=end]);
-    let baseline_sd = sd.max(min_sd);
+    let baseline_sd = floor.apply(baseline_mean, sd);
     Some(Standardised {
         value: (observed - baseline_mean) / baseline_sd,
         observed,

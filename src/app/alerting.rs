@@ -22,7 +22,8 @@ use crate::alert::{self, DeliveryError, Outcome, Rule, Severity, Signal, email, 
 use crate::config::{Config, SourceConfig};
 use crate::model::{SnapshotId, SnapshotStatus, SourceId};
 use crate::store::alerts::{
-    AlertDesk, Delivery, EvalOutcome, Finding, Lifecycle, MessageFacts, OutboxItem, TEST_HANDOVER,
+    AlertDesk, Cleared, Delivery, EvalOutcome, Evaluation, Finding, Lifecycle, MessageFacts, OutboxItem,
+    RuleStatus, TEST_HANDOVER,
 };
 use crate::store::{OwedAnalysis, Reader, Store};
 use crate::table::{OutputFormat, Table};
@@ -32,16 +33,28 @@ pub const DELIVERY_TICK: Duration = Duration::from_secs(1);
 /// Outbox rows taken per look; the rest wait for the next tick.
 const DELIVERY_BATCH: usize = 20;
 
-/// What the rules concluded in one pass: signals, and fingerprints found clear.
+/// What the rules concluded in one pass, and the snapshot it evaluated (`None` for the rules
+/// run after a poll).
 #[derive(Debug, Default)]
 pub struct Pass {
-    findings: Vec<Finding>,
-    clear: Vec<String>,
-    /// The snapshot evaluated; `None` for the rules run after a poll.
+    evaluation: Evaluation,
     snapshot_id: Option<SnapshotId>,
+    /// Clear evaluations that resolve an alert: `[alert] resolve_after`, and for the count
+    /// episodes `[alert.rules.count] resolve_after`.
+    resolve_after: u32,
+    count_resolve_after: u32,
 }
 
 impl Pass {
+    fn new(config: &Config, snapshot_id: Option<SnapshotId>) -> Pass {
+        Pass {
+            evaluation: Evaluation::default(),
+            snapshot_id,
+            resolve_after: config.alerting.resolve_after,
+            count_resolve_after: config.alerting.rules.count.resolve_after,
+        }
+    }
+
     fn add(
         &mut self,
         rule: Rule,
@@ -50,9 +63,27 @@ impl Pass {
         outcome: Outcome,
         snapshot_id: Option<SnapshotId>,
     ) {
+        let fingerprint = alert::fingerprint(rule, source, subject);
+        let (label, reason) = match &outcome {
+            Outcome::Signal(_) => ("signal", None),
+            Outcome::Clear => ("clear", None),
+            Outcome::NotEnoughData(why) => ("not_enough_data", Some(why.clone())),
+        };
+        self.evaluation.statuses.push(RuleStatus {
+            fingerprint: fingerprint.clone(),
+            rule,
+            source: source.to_string(),
+            subject: subject.to_string(),
+            outcome: label,
+            reason,
+        });
         match outcome {
-            Outcome::Signal(signal) => self.findings.push(finding(&signal, snapshot_id)),
-            Outcome::Clear => self.clear.push(alert::fingerprint(rule, source, subject)),
+            Outcome::Signal(signal) => self.evaluation.findings.push(finding(&signal, snapshot_id)),
+            Outcome::Clear => {
+                let resolve_after =
+                    if rule.episode() == "count" { self.count_resolve_after } else { self.resolve_after };
+                self.evaluation.clear.push(Cleared { fingerprint, resolve_after });
+            }
             Outcome::NotEnoughData(_) => {}
         }
     }
@@ -101,17 +132,13 @@ pub fn apply_pass(
     pass: &Pass,
     now: DateTime<Utc>,
 ) -> Result<EvalOutcome> {
-    let life = Lifecycle {
-        now,
-        snapshot_id: pass.snapshot_id,
-        resend_after: config.alerting.resend_after,
-        resolve_after: config.alerting.resolve_after,
-    };
+    let life = Lifecycle { now, snapshot_id: pass.snapshot_id, resend_after: config.alerting.resend_after };
     let base = dashboard_base(config);
     let route = |severity: Severity| channels_for(config, severity);
-    let payload = |facts: &MessageFacts| message::payload(facts, &base);
+    let small = config.alerting.small_cell_max;
+    let payload = |facts: &MessageFacts| message::payload(facts, &base, small);
     let delivery = Delivery { route: &route, payload: &payload };
-    Ok(store.apply_findings(&pass.clear, &pass.findings, &life, &delivery)?)
+    Ok(store.apply_findings(&pass.evaluation, &life, &delivery)?)
 }
 
 /// The snapshot rules' findings for an applied or held snapshot, read on a read-only
@@ -121,7 +148,7 @@ pub fn snapshot_pass(config: &Config, source: &SourceConfig, outcome: &OwedAnaly
     let source_id = reader.source_id(&source.name)?.context("source not registered")?;
     let params = &config.alerting.rules;
     let snapshot_id = outcome.snapshot_id;
-    let mut pass = Pass { snapshot_id: Some(snapshot_id), ..Pass::default() };
+    let mut pass = Pass::new(config, Some(snapshot_id));
     let volumes = reader.volumes(source_id, snapshot_id)?;
     let applied: Vec<_> = volumes
         .iter()
@@ -295,7 +322,7 @@ fn counts(
         let daily_counts = all_days.iter().map(|d| by_day.get(d).copied().unwrap_or(0.0)).collect();
         let input =
             CountInput { source: source.to_string(), subject: subject.clone(), daily_counts, last_day: day };
-        for (rule, outcome) in rules::count_aberration(&input, p) {
+        if let Some((rule, outcome)) = rules::count_episode(rules::count_aberration(&input, p)) {
             pass.add(rule, source, &subject, outcome, Some(snapshot_id));
         }
     }
@@ -328,7 +355,7 @@ pub fn after_poll(
         consecutive_failures: failures,
     };
     let params = &config.alerting.rules;
-    let mut pass = Pass::default();
+    let mut pass = Pass::new(config, None);
     if params.enabled("stale_source") {
         pass.add(Rule::StaleSource, &source.name, "", rules::stale_source(&input), None);
     }
@@ -403,8 +430,11 @@ pub async fn deliver_due(
 }
 
 /// `tidemark alerts`: alerts (live first) with state, counts, last sent and dead letters.
-pub fn list(config: &Config, all: bool, format: OutputFormat) -> Result<String> {
+pub fn list(config: &Config, all: bool, as_of: Option<&str>, format: OutputFormat) -> Result<String> {
     let reader = Reader::open(&config.store.path)?;
+    if let Some(text) = as_of {
+        return as_of_listing(&reader, text, format);
+    }
     let mut table = Table::new(&[
         "id",
         "rule",
@@ -452,9 +482,26 @@ pub fn list(config: &Config, all: bool, format: OutputFormat) -> Result<String> 
                 error.as_deref().unwrap_or("-")
             ));
         }
+        for [rule, source, subject, reason, at] in reader.undecided_rules()? {
+            let subject = if subject.is_empty() { String::new() } else { format!(" ({subject})") };
+            text.push_str(&format!("not enough data: {rule} on {source}{subject} at {at}: {reason}\n"));
+        }
         text.push_str("Alerts are statistical signals for investigation, not confirmed events.\n");
     }
     Ok(text)
+}
+
+/// `tidemark alerts --as-of T`: the alerts live at data time `T` (opened by a snapshot as of
+/// `T` or earlier, not resolved by one), whatever their state today.
+fn as_of_listing(reader: &Reader, text: &str, format: OutputFormat) -> Result<String> {
+    let as_of = super::queries::parse_time_arg(text)?;
+    let table = reader.alerts_table(None, Some(as_of))?.unwrap_or_default();
+    let mut out = table.render(format);
+    if format == OutputFormat::Table {
+        out.push_str(&format!("Alerts live at data time {as_of}; the state column is today's.\n"));
+        out.push_str("Alerts are statistical signals for investigation, not confirmed events.\n");
+    }
+    Ok(out)
 }
 
 /// `tidemark alerts ack ID --note TEXT`.
@@ -473,7 +520,9 @@ pub fn test(config: &Config) -> Result<String> {
     }
     let mut store = AlertDesk::open(&config.store.path)?;
     let base = dashboard_base(config);
-    let event_id = store.enqueue_test(&channels, Utc::now(), &|facts| message::payload(facts, &base))?;
+    let event_id = store.enqueue_test(&channels, Utc::now(), &|facts| {
+        message::payload(facts, &base, config.alerting.small_cell_max)
+    })?;
     let runtime = tokio::runtime::Builder::new_current_thread().enable_all().build()?;
     let client = delivery_client(config);
     let items: Vec<OutboxItem> = store

@@ -377,6 +377,11 @@ fn nowcast_against_truth(
     Ok((recent, method.to_string(), backtest))
 }
 
+/// "0 days", "1 day", "3 days".
+fn days_text(n: i64) -> String {
+    if n == 1 { "1 day".into() } else { format!("{n} days") }
+}
+
 impl DemoReport {
     /// The summary a person reads.
     pub fn report(&self) -> String {
@@ -462,10 +467,15 @@ impl DemoReport {
             let _ = writeln!(out, "  day {:>3}  {}  (no injected cause)", a.day, a.line);
         }
         for i in &self.injections {
-            let caught = self.alerts.iter().any(|a| a.injected_day == Some(i.day));
+            let first = self.alerts.iter().filter(|a| a.injected_day == Some(i.day)).map(|a| a.day).min();
             let place =
                 if i.jurisdiction.is_empty() { String::new() } else { format!(" in {}", i.jurisdiction) };
-            let verdict = if caught { "detected" } else { "NOT detected" };
+            let verdict = match first {
+                Some(day) => {
+                    format!("detected on day {day}, {} after it began", days_text(day - i64::from(i.day)))
+                }
+                None => "NOT detected".to_string(),
+            };
             let _ = writeln!(out, "  injected day {:>3}: {}{place} ({}): {verdict}", i.day, i.kind, i.feed);
         }
         let _ = writeln!(out, "  Alerts are signals for investigation, not confirmed events.");

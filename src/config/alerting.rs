@@ -21,6 +21,9 @@ pub const DEFAULT_MAX_AGE: Duration = Duration::from_secs(24 * 3600);
 /// Default first retry delay and cap of the exponential backoff.
 pub const DEFAULT_RETRY_BASE: Duration = Duration::from_secs(30);
 pub const DEFAULT_RETRY_CAP: Duration = Duration::from_secs(30 * 60);
+/// Default small-cell threshold: counts of 1 to 4 are not released exactly (common practice
+/// in public-health releases, which suppress cells under 5).
+pub const DEFAULT_SMALL_CELL_MAX: u32 = 4;
 /// Default timeout of one delivery attempt.
 pub const DEFAULT_CHANNEL_TIMEOUT: Duration = Duration::from_secs(10);
 
@@ -53,6 +56,10 @@ pub struct AlertSettings {
     pub retry_cap: Duration,
     /// Consecutive failed polls of a source before the poll-failure rule fires.
     pub failed_polls: u32,
+    /// Case counts from 1 to this are written as a range ("1-4 cases") in alert summaries and
+    /// in the figures of outgoing messages, so a message that leaves the server cannot single
+    /// out a few people. Default [`DEFAULT_SMALL_CELL_MAX`]; 0 turns it off.
+    pub small_cell_max: u32,
     /// Typed rule parameters (defaults overridden by `[alert.rules.*]`).
     pub rules: super::rule_params::RuleParams,
 }
@@ -66,6 +73,7 @@ impl Default for AlertSettings {
             retry_base: DEFAULT_RETRY_BASE,
             retry_cap: DEFAULT_RETRY_CAP,
             failed_polls: 3,
+            small_cell_max: DEFAULT_SMALL_CELL_MAX,
             rules: super::rule_params::RuleParams::default(),
         }
     }

@@ -354,8 +354,11 @@ fn build_alert_settings(
         retry_base: duration_or(raw.retry_base.as_deref(), "alert.retry_base", d.retry_base, problems),
         retry_cap: duration_or(raw.retry_cap.as_deref(), "alert.retry_cap", d.retry_cap, problems),
         failed_polls: raw.failed_polls.unwrap_or(d.failed_polls).max(1),
+        small_cell_max: raw.small_cell_max.unwrap_or(d.small_cell_max),
         rules: rule_params::build(&raw.rules, problems, warnings),
     };
+    let mut settings = settings;
+    settings.rules.count.small_cell_max = settings.small_cell_max;
     if settings.retry_base.is_zero() {
         problems.push("alert.retry_base: must be more than zero".into());
     }
@@ -366,13 +369,14 @@ impl Config {
     fn describe_alerting(&self) -> String {
         let a = &self.alerting;
         let mut out = format!(
-            "alert: resend_after={}s resolve_after={} max_age={}s retry_base={}ms retry_cap={}ms failed_polls={}\n",
+            "alert: resend_after={}s resolve_after={} max_age={}s retry_base={}ms retry_cap={}ms failed_polls={} small_cell_max={}\n",
             a.resend_after.as_secs(),
             a.resolve_after,
             a.max_age.as_secs(),
             a.retry_base.as_millis(),
             a.retry_cap.as_millis(),
-            a.failed_polls
+            a.failed_polls,
+            a.small_cell_max
         );
         let _ = writeln!(out, "alert.rules: {:?}", a.rules);
         let lag: Vec<&str> = self.quality.lag_from.iter().map(|f| f.name()).collect();

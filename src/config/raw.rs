@@ -97,6 +97,7 @@ pub struct RawAlert {
     pub retry_base: Option<String>,
     pub retry_cap: Option<String>,
     pub failed_polls: Option<u32>,
+    pub small_cell_max: Option<u32>,
     #[serde(default)]
     pub rules: BTreeMap<String, toml::Table>,
 }

@@ -204,6 +204,10 @@ fn count(keys: &mut Keys<'_>, p: &mut CountParams) {
     }
     keys.float("min_sd", &mut p.z.min_sd);
     keys.float("min_expected", &mut p.min_expected);
+    keys.flag("poisson_sd_floor", &mut p.z.poisson_floor);
+    let mut resolve_after = p.resolve_after as usize;
+    keys.count("resolve_after", &mut resolve_after);
+    p.resolve_after = (resolve_after as u32).max(1);
     let mut cusum = p.cusum.is_some();
     keys.flag("cusum", &mut cusum);
     let mut c = p.cusum.unwrap_or_default();
@@ -229,6 +233,8 @@ fn count(keys: &mut Keys<'_>, p: &mut CountParams) {
         "z_guarded_3day_threshold",
         "min_sd",
         "min_expected",
+        "poisson_sd_floor",
+        "resolve_after",
         "cusum",
         "cusum_family",
         "cusum_shift_sds",

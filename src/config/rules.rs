@@ -48,7 +48,10 @@ pub struct LagParams {
     /// EWMA already selected the window, so the confirmation is kept strict.
     pub alpha: f64,
     /// Smallest rise (days) of the recent pooled median lag over the baseline's that can alarm.
-    /// Default 1 day: lags are counted in whole days, so a smaller rise is within rounding.
+    /// Default 2 days: lags are counted in whole days, and a one-day rise of the median of
+    /// the reports received happens without any change in the reporting process whenever
+    /// incidence falls (the reports arriving then come from older onsets), so it is noise
+    /// for paging; a backlog or a broken feed moves the median by more.
     pub min_effect_days: f64,
     /// Floor of the sd of the daily medians (days). Default 0.5: daily medians of whole days
     /// can be constant for weeks; half a day is the finest step they resolve.
@@ -64,7 +67,7 @@ impl Default for LagParams {
             min_baseline_days: 14,
             min_records: 20,
             alpha: 0.01,
-            min_effect_days: 1.0,
+            min_effect_days: 2.0,
             min_sd_days: 0.5,
         }
     }
@@ -169,6 +172,14 @@ pub struct CountParams {
     /// neither raise nor clear ("not enough data"). Default 1: with fewer than one case a day
     /// a z-score is driven by the sd floor, so two cases after a quiet week would page.
     pub min_expected: f64,
+    /// Clear evaluations in a row (one a snapshot) before a count episode resolves. Default
+    /// 14: two weeks without any count rule tripping, so a sustained rise (an epidemic wave)
+    /// whose daily statistic dips under its threshold for a week or more now and then stays
+    /// one episode rather than opening again and again.
+    pub resolve_after: u32,
+    /// Case counts from 1 to this are written as a range in summaries (set from `[alert]
+    /// small_cell_max`, default 4).
+    pub small_cell_max: u32,
     /// The count CUSUM, off by default (`None`): the z-score rules need only a week or two of
     /// history.
     pub cusum: Option<CountCusumParams>,
@@ -182,6 +193,8 @@ impl Default for CountParams {
             z_guarded: true,
             z_guarded_3day: true,
             min_expected: 1.0,
+            resolve_after: 14,
+            small_cell_max: 4,
             cusum: None,
         }
     }

@@ -249,6 +249,18 @@ impl TokenScope {
     }
 }
 
+impl Rule {
+    /// The episode a signal of this rule belongs to, the first part of its fingerprint: the
+    /// count rules of one source and subject share one (`count`), so one rise that trips
+    /// several of them is one alert; every other rule is its own.
+    pub fn episode(self) -> &'static str {
+        match self {
+            Rule::CountZRecent | Rule::CountZGuarded | Rule::CountZGuarded3Day | Rule::CountCusum => "count",
+            other => other.name(),
+        }
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -36,6 +36,36 @@ pub struct Finding {
     pub snapshot_id: Option<SnapshotId>,
 }
 
+/// A condition evaluated on enough data that did not trip: one clear evaluation of its
+/// live alert, which resolves after `resolve_after` of them in a row.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Cleared {
+    pub fingerprint: String,
+    pub resolve_after: u32,
+}
+
+/// The latest outcome of one rule for one subject, kept in `rule_status` so the operator can
+/// see which rules cannot decide yet and why.
+#[derive(Debug, Clone, PartialEq)]
+pub struct RuleStatus {
+    pub fingerprint: String,
+    pub rule: Rule,
+    pub source: String,
+    pub subject: String,
+    /// `signal`, `clear` or `not_enough_data`.
+    pub outcome: &'static str,
+    /// Why the rule could not decide (no patient-level value).
+    pub reason: Option<String>,
+}
+
+/// Everything one evaluation pass concluded.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Evaluation {
+    pub findings: Vec<Finding>,
+    pub clear: Vec<Cleared>,
+    pub statuses: Vec<RuleStatus>,
+}
+
 /// Lifecycle settings of one evaluation.
 #[derive(Debug, Clone, Copy)]
 pub struct Lifecycle {
@@ -44,7 +74,6 @@ pub struct Lifecycle {
     /// opens, sees and resolves); `None` for the rules evaluated after a poll.
     pub snapshot_id: Option<SnapshotId>,
     pub resend_after: Duration,
-    pub resolve_after: u32,
 }
 
 /// Everything a message about one event says; `app` turns it into the payload.
@@ -139,27 +168,30 @@ struct Live {
 }
 
 impl Store {
-    /// Applies one evaluation pass: `findings` tripped; `clear` lists the fingerprints that
-    /// were evaluated on enough data and did not trip (each counts one clear evaluation of a
-    /// live alert). A rule without enough data appears in neither and changes nothing.
+    /// Applies one evaluation pass: its findings tripped; its clear conditions were evaluated
+    /// on enough data and did not trip (each counts one clear evaluation of a live alert). A
+    /// rule without enough data appears in neither and changes no alert; every rule's latest
+    /// outcome goes to `rule_status`.
     pub fn apply_findings(
         &mut self,
-        clear: &[String],
-        findings: &[Finding],
+        evaluation: &Evaluation,
         life: &Lifecycle,
         delivery: &Delivery<'_>,
     ) -> Result<EvalOutcome, StoreError> {
         let tx = self.conn.transaction()?;
         let mut outcome = EvalOutcome::default();
         let mut seen = HashSet::new();
-        for finding in findings {
+        for status in &evaluation.statuses {
+            record_status(&tx, status, life)?;
+        }
+        for finding in &evaluation.findings {
             if !seen.insert(finding.fingerprint.clone()) {
                 continue;
             }
             raise(&tx, finding, life, delivery, &mut outcome)?;
         }
-        for fingerprint in clear.iter().filter(|f| !seen.contains(*f)) {
-            clear_one(&tx, fingerprint, life, delivery, &mut outcome)?;
+        for cleared in evaluation.clear.iter().filter(|c| !seen.contains(&c.fingerprint)) {
+            clear_one(&tx, cleared, life, delivery, &mut outcome)?;
         }
         tx.commit()?;
         Ok(outcome)
@@ -418,11 +450,32 @@ fn resend_due(last_sent_at: Option<&str>, life: &Lifecycle) -> bool {
     since >= life.resend_after
 }
 
-/// Counts a clear evaluation of the live alert of `fingerprint`, if any, and resolves it
-/// once it has been clear for `resolve_after` evaluations in a row.
+/// Keeps the latest outcome of one rule for one subject.
+fn record_status(tx: &Transaction<'_>, status: &RuleStatus, life: &Lifecycle) -> Result<(), StoreError> {
+    tx.execute(
+        "INSERT INTO rule_status (fingerprint, rule, source, subject, outcome, reason, snapshot_id, evaluated_at)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)
+         ON CONFLICT (fingerprint) DO UPDATE SET rule = excluded.rule, outcome = excluded.outcome,
+             reason = excluded.reason, snapshot_id = excluded.snapshot_id, evaluated_at = excluded.evaluated_at",
+        params![
+            status.fingerprint,
+            status.rule,
+            status.source,
+            status.subject,
+            status.outcome,
+            status.reason,
+            life.snapshot_id,
+            time_text(life.now)
+        ],
+    )?;
+    Ok(())
+}
+
+/// Counts a clear evaluation of the live alert of a fingerprint, if any, and resolves it
+/// once it has been clear for its `resolve_after` evaluations in a row.
 fn clear_one(
     tx: &Transaction<'_>,
-    fingerprint: &str,
+    cleared: &Cleared,
     life: &Lifecycle,
     delivery: &Delivery<'_>,
     outcome: &mut EvalOutcome,
@@ -430,12 +483,12 @@ fn clear_one(
     let live: Option<(i64, i64, i64)> = tx
         .query_row(
             "SELECT alert_id, clear_count, sent_count FROM alert WHERE fingerprint = ?1 AND state <> 'resolved'",
-            [fingerprint],
+            [&cleared.fingerprint],
             |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
         )
         .optional()?;
     let Some((alert_id, clear_count, sent_count)) = live else { return Ok(()) };
-    if clear_count + 1 < life.resolve_after as i64 {
+    if clear_count + 1 < i64::from(cleared.resolve_after.max(1)) {
         tx.execute("UPDATE alert SET clear_count = clear_count + 1 WHERE alert_id = ?1", [alert_id])?;
         return Ok(());
     }
@@ -574,6 +627,17 @@ impl Reader {
                 resolved_at: r.get(18)?,
             })
         })?;
+        Ok(rows.collect::<Result<_, _>>()?)
+    }
+
+    /// The rules that could not decide at their latest evaluation: (rule, source, subject,
+    /// reason, evaluated at), by source and rule.
+    pub fn undecided_rules(&self) -> Result<Vec<[String; 5]>, StoreError> {
+        let mut stmt = self.conn.prepare(
+            "SELECT rule, source, subject, coalesce(reason, ''), evaluated_at FROM rule_status
+             WHERE outcome = 'not_enough_data' ORDER BY source, rule, subject",
+        )?;
+        let rows = stmt.query_map([], |r| Ok([r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?]))?;
         Ok(rows.collect::<Result<_, _>>()?)
     }
 

@@ -19,7 +19,7 @@ use sha2::Sha256;
 
 use tidemark::app::alerting::{deliver_due, delivery_client};
 use tidemark::app::writer;
-use tidemark::store::alerts::{Delivery, Finding, Lifecycle, MessageFacts};
+use tidemark::store::alerts::{Cleared, Delivery, Evaluation, Finding, Lifecycle, MessageFacts};
 
 use crate::support::{Env, config_toml, count, day, open_store, source_toml, write_config};
 
@@ -125,12 +125,7 @@ fn lifecycle_dedupes_resends_acknowledges_and_resolves() {
     let mut store = open_store(&path);
     let t0: DateTime<Utc> = "2026-03-01T08:00:00Z".parse().unwrap();
     let at = |hours: i64| t0 + chrono::Duration::hours(hours);
-    let life = |now| Lifecycle {
-        now,
-        snapshot_id: None,
-        resend_after: Duration::from_secs(6 * 3600),
-        resolve_after: 3,
-    };
+    let life = |now| Lifecycle { now, snapshot_id: None, resend_after: Duration::from_secs(6 * 3600) };
     let route = |_: tidemark::model::Severity| vec!["webhook"];
     let payload = |f: &MessageFacts| format!("{{\"event_id\":{},\"kind\":\"{}\"}}", f.event_id, f.kind);
     let delivery = Delivery { route: &route, payload: &payload };
@@ -144,28 +139,31 @@ fn lifecycle_dedupes_resends_acknowledges_and_resolves() {
         figures: "{\"new\":12}".into(),
         snapshot_id: None,
     };
-    let fp = vec![finding.fingerprint.clone()];
-    let found = std::slice::from_ref(&finding);
-    let first = store.apply_findings(&[], found, &life(at(0)), &delivery).unwrap();
+    let fp = &Evaluation {
+        clear: vec![Cleared { fingerprint: finding.fingerprint.clone(), resolve_after: 3 }],
+        ..Evaluation::default()
+    };
+    let found = &Evaluation { findings: vec![finding.clone()], ..Evaluation::default() };
+    let first = store.apply_findings(found, &life(at(0)), &delivery).unwrap();
     assert_eq!((first.opened, first.enqueued), (1, 1));
-    let again = store.apply_findings(&[], found, &life(at(1)), &delivery).unwrap();
+    let again = store.apply_findings(found, &life(at(1)), &delivery).unwrap();
     assert_eq!((again.opened, again.updated, again.resent), (0, 1, 0), "deduplicated, not re-sent yet");
-    let later = store.apply_findings(&[], found, &life(at(7)), &delivery).unwrap();
+    let later = store.apply_findings(found, &life(at(7)), &delivery).unwrap();
     assert_eq!(later.resent, 1, "re-sent after 6 h unacknowledged");
     let alert_id: i64 = {
         let db = crate::support::open_ro(&path);
         db.query_row("SELECT alert_id FROM alert", [], |r| r.get(0)).unwrap()
     };
     store.ack_alert(alert_id, "looking into it", at(8)).unwrap();
-    let acked = store.apply_findings(&[], found, &life(at(20)), &delivery).unwrap();
+    let acked = store.apply_findings(found, &life(at(20)), &delivery).unwrap();
     assert_eq!(acked.resent, 0, "an acknowledged alert is not re-sent");
     for hours in [21, 22] {
-        let clear = store.apply_findings(&fp, &[], &life(at(hours)), &delivery).unwrap();
+        let clear = store.apply_findings(fp, &life(at(hours)), &delivery).unwrap();
         assert_eq!(clear.resolved, 0);
     }
-    let resolved = store.apply_findings(&fp, &[], &life(at(23)), &delivery).unwrap();
+    let resolved = store.apply_findings(fp, &life(at(23)), &delivery).unwrap();
     assert_eq!(resolved.resolved, 1, "resolved after 3 clear evaluations");
-    let reopened = store.apply_findings(&[], found, &life(at(24)), &delivery).unwrap();
+    let reopened = store.apply_findings(found, &life(at(24)), &delivery).unwrap();
     assert_eq!(reopened.opened, 1, "a new alert once the old one is resolved");
     let db = crate::support::open_ro(&path);
     assert_eq!(count(&db, "SELECT count(*) FROM alert"), 2);
@@ -180,6 +178,74 @@ fn lifecycle_dedupes_resends_acknowledges_and_resolves() {
     assert_eq!(kinds, ["opened", "resent", "acknowledged", "resolved", "opened"]);
     assert_eq!(count(&db, "SELECT count(*) FROM outbox"), 4, "opened, resent, resolved, opened");
     assert!(store.ack_alert(999, "x", at(25)).is_err());
+}
+
+/// One episode, one page: a live alert is sent again when it reaches a higher severity than
+/// it had, once, and not when it falls back and rises to that peak again; a count episode
+/// needs its own number of clear evaluations; every outcome, "not enough data" included, is
+/// kept in `rule_status`.
+#[test]
+fn a_live_alert_pages_again_only_on_a_new_peak_severity() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("store.db");
+    let mut store = open_store(&path);
+    let t0: DateTime<Utc> = "2026-03-01T08:00:00Z".parse().unwrap();
+    let life = |hours: i64| Lifecycle {
+        now: t0 + chrono::Duration::hours(hours),
+        snapshot_id: None,
+        resend_after: Duration::from_secs(24 * 3600),
+    };
+    let route = |_: tidemark::model::Severity| vec!["webhook"];
+    let payload = |f: &MessageFacts| format!("{{\"event_id\":{},\"kind\":\"{}\"}}", f.event_id, f.kind);
+    let delivery = Delivery { route: &route, payload: &payload };
+    let rule: tidemark::model::Rule = "count_z_guarded".parse().unwrap();
+    let fingerprint = tidemark::alert::fingerprint(rule, "feed", "North");
+    assert_eq!(fingerprint, "count|feed|North", "the count rules of a subject share one episode");
+    let at_severity = |severity| Evaluation {
+        findings: vec![Finding {
+            fingerprint: fingerprint.clone(),
+            rule,
+            source: "feed".into(),
+            subject: "North".into(),
+            severity,
+            summary: "a rise".into(),
+            figures: "{}".into(),
+            snapshot_id: None,
+        }],
+        ..Evaluation::default()
+    };
+    use tidemark::model::Severity::{Critical, Warning};
+    let mut kinds = Vec::new();
+    for (hour, severity) in [(0, Warning), (1, Critical), (2, Warning), (3, Critical)] {
+        let outcome = store.apply_findings(&at_severity(severity), &life(hour), &delivery).unwrap();
+        kinds.push((outcome.opened, outcome.resent));
+    }
+    assert_eq!(kinds, [(1, 0), (0, 1), (0, 0), (0, 0)], "escalated once, at the first critical");
+    let undecided = tidemark::store::alerts::RuleStatus {
+        fingerprint: fingerprint.clone(),
+        rule,
+        source: "feed".into(),
+        subject: "North".into(),
+        outcome: "not_enough_data",
+        reason: Some("needs 10 known days of counts, has 4 days".into()),
+    };
+    let clear = Evaluation {
+        clear: vec![Cleared { fingerprint: fingerprint.clone(), resolve_after: 7 }],
+        statuses: vec![undecided],
+        ..Evaluation::default()
+    };
+    let resolved: Vec<usize> =
+        (4..11).map(|hour| store.apply_findings(&clear, &life(hour), &delivery).unwrap().resolved).collect();
+    assert_eq!(resolved, [0, 0, 0, 0, 0, 0, 1], "a count episode resolves after 7 clear evaluations");
+    let db = crate::support::open_ro(&path);
+    let severity: String = db.query_row("SELECT severity FROM alert", [], |r| r.get(0)).unwrap();
+    assert_eq!(severity, "critical", "an episode keeps its peak severity");
+    let events = count(&db, "SELECT count(*) FROM alert_event WHERE kind = 'escalated'");
+    assert_eq!(events, 1);
+    let reason: String = db
+        .query_row("SELECT reason FROM rule_status WHERE outcome = 'not_enough_data'", [], |r| r.get(0))
+        .unwrap();
+    assert!(reason.starts_with("needs 10 known days"));
 }
 
 /// What the loopback receiver does with the next request.

@@ -6,7 +6,7 @@
 
 use chrono::{Days, NaiveDate};
 
-use super::{above, counted, subject_suffix, whole_or_decimal};
+use super::{above, cases, cell, subject_suffix, whole_or_decimal};
 use crate::alert::{Figure, Outcome, Rule, Severity, Signal};
 use crate::analysis::aberration::{self, C2_GUARD_DAYS, SHORT_BASELINE_DAYS, Standardised};
 use crate::config::rules::{CountCusumParams, CountFamily, CountParams};
@@ -74,6 +74,33 @@ pub fn count_aberration(input: &CountInput, params: &CountParams) -> Vec<(Rule, 
     outcomes
 }
 
+/// One outcome for the count episode of one subject (the count rules share one alert; see
+/// `Rule::episode`): the strongest signal (highest severity, then the largest statistic
+/// relative to its threshold), else clear when any rule decided, else not enough data with
+/// every rule's reason. `None` when no count rule is enabled.
+pub fn count_episode(outcomes: Vec<(Rule, Outcome)>) -> Option<(Rule, Outcome)> {
+    let strength = |s: &Signal| (s.severity, s.observed / s.threshold.max(f64::MIN_POSITIVE));
+    let strongest = outcomes
+        .iter()
+        .filter_map(|(rule, o)| o.signal().map(|s| (*rule, s)))
+        .max_by(|a, b| strength(a.1).partial_cmp(&strength(b.1)).unwrap_or(std::cmp::Ordering::Equal));
+    if let Some((rule, signal)) = strongest {
+        return Some((rule, Outcome::Signal(signal.clone())));
+    }
+    if let Some((rule, _)) = outcomes.iter().find(|(_, o)| o.is_clear()) {
+        return Some((*rule, Outcome::Clear));
+    }
+    let reasons: Vec<String> = outcomes
+        .iter()
+        .filter_map(|(rule, o)| match o {
+            Outcome::NotEnoughData(why) => Some(format!("{}: {why}", rule.name())),
+            _ => None,
+        })
+        .collect();
+    let first = outcomes.first()?.0;
+    Some((first, Outcome::NotEnoughData(reasons.join("; "))))
+}
+
 /// `NotEnoughData` when the series is shorter than the rule needs.
 fn too_short(input: &CountInput, rule: Rule, params: &CountParams) -> Option<Outcome> {
     let (needed, known) = (days_needed(rule, params), input.daily_counts.len());
@@ -103,8 +130,8 @@ fn standardised_outcome(input: &CountInput, params: &CountParams, rule: Rule) ->
     }
     let (counts, t, z) = (&input.daily_counts, input.daily_counts.len() - 1, &params.z);
     let (stat, threshold, lag) = match rule {
-        Rule::CountZRecent => (aberration::c1(counts, t, z.min_sd), z.recent_threshold, 1),
-        _ => (aberration::c2(counts, t, z.min_sd), z.guarded_threshold, 1 + C2_GUARD_DAYS),
+        Rule::CountZRecent => (aberration::c1(counts, t, z.floor()), z.recent_threshold, 1),
+        _ => (aberration::c2(counts, t, z.floor()), z.guarded_threshold, 1 + C2_GUARD_DAYS),
     };
     let Some(s) = stat else { return Outcome::NotEnoughData("no baseline".into()) };
     if let Some(few) = too_few_expected(s.baseline_mean, params) {
@@ -116,7 +143,7 @@ fn standardised_outcome(input: &CountInput, params: &CountParams, rule: Rule) ->
     let (from, to) = (input.day(t - lag + 1 - SHORT_BASELINE_DAYS), input.day(t - lag));
     let summary = format!(
         "{}: z = {} against the 7 report days {from} to {to} (mean {:.1}, sd {:.1} cases a day)",
-        headline(input, s.observed),
+        headline(input, s.observed, params),
         above(s.value, threshold),
         s.baseline_mean,
         s.baseline_sd
@@ -133,12 +160,12 @@ fn standardised_figures(s: &Standardised) -> Vec<Figure> {
 }
 
 /// "labs (North): 12 cases reported on 2026-03-11".
-fn headline(input: &CountInput, count: f64) -> String {
+fn headline(input: &CountInput, count: f64, params: &CountParams) -> String {
     format!(
         "{}{}: {} reported on {}",
         input.source,
         subject_suffix(&input.subject),
-        counted(count, "case", "cases"),
+        cases(count, params.small_cell_max),
         input.last_day
     )
 }
@@ -149,7 +176,7 @@ fn three_day_outcome(input: &CountInput, params: &CountParams) -> Outcome {
         return short;
     }
     let (counts, t, z) = (&input.daily_counts, input.daily_counts.len() - 1, &params.z);
-    let days: Option<Vec<Standardised>> = (t - 2..=t).map(|i| aberration::c2(counts, i, z.min_sd)).collect();
+    let days: Option<Vec<Standardised>> = (t - 2..=t).map(|i| aberration::c2(counts, i, z.floor())).collect();
     let Some(days) = days else { return Outcome::NotEnoughData("no baseline".into()) };
     let mean = days.iter().map(|s| s.baseline_mean).fold(f64::INFINITY, f64::min);
     if let Some(few) = too_few_expected(mean, params) {
@@ -160,7 +187,7 @@ fn three_day_outcome(input: &CountInput, params: &CountParams) -> Outcome {
     if value <= threshold {
         return Outcome::Clear;
     }
-    let counts_text: Vec<String> = days.iter().map(|s| whole_or_decimal(s.observed)).collect();
+    let counts_text: Vec<String> = days.iter().map(|s| cell(s.observed, params.small_cell_max)).collect();
     let total: f64 = days.iter().map(|s| s.observed).sum();
     let last = days[2];
     let summary = format!(
@@ -168,7 +195,7 @@ fn three_day_outcome(input: &CountInput, params: &CountParams) -> Outcome {
          (latest baseline mean {:.1}, sd {:.1} cases a day)",
         input.source,
         subject_suffix(&input.subject),
-        counted(total, "case", "cases"),
+        cases(total, params.small_cell_max),
         input.day(t - 2),
         input.last_day,
         counts_text.join(", "),
@@ -227,7 +254,7 @@ fn count_cusum_outcome(input: &CountInput, params: &CountParams, cusum: &CountCu
     let summary = format!(
         "{}: count CUSUM {} cases of excess over the reference value {:.1} cases a day \
          ({}-day baseline ending {})",
-        headline(input, counts[counts.len() - 1]),
+        headline(input, counts[counts.len() - 1], params),
         above(last.statistic, h),
         last.reference,
         cusum.baseline_days,

@@ -57,6 +57,25 @@ pub fn counted(n: f64, singular: &str, plural: &str) -> String {
     format!("{} {noun}", whole_or_decimal(n))
 }
 
+/// A case count as a message may release it: a range ("1-4") when it is from 1 to
+/// `small_cell_max` (small-cell suppression), else [`whole_or_decimal`]. 0 turns it off.
+pub fn cell(n: f64, small_cell_max: u32) -> String {
+    if n >= 1.0 && n <= f64::from(small_cell_max) {
+        format!("1-{small_cell_max}")
+    } else {
+        whole_or_decimal(n)
+    }
+}
+
+/// "1 case", "12 cases", or "1-4 cases" under small-cell suppression.
+pub fn cases(n: f64, small_cell_max: u32) -> String {
+    if n >= 1.0 && n <= f64::from(small_cell_max) {
+        format!("{} cases", cell(n, small_cell_max))
+    } else {
+        counted(n, "case", "cases")
+    }
+}
+
 /// A count as a whole number when it is one, else to one decimal.
 pub fn whole_or_decimal(n: f64) -> String {
     if n.fract() == 0.0 && n.abs() < 1e15 { format!("{n:.0}") } else { format!("{n:.1}") }

@@ -228,17 +228,24 @@ fn outcome(outcomes: &[(Rule, Outcome)], rule: Rule) -> &Outcome {
     &outcomes.iter().find(|(r, _)| *r == rule).unwrap().1
 }
 
+/// The count rules computing the published statistics (no Poisson sd floor).
+fn published() -> CountParams {
+    let mut params = CountParams::default();
+    params.z.poisson_floor = false;
+    params
+}
+
 /// On day 11 C1 = 5.6491 and C2 = 6.8274 alarm; C3 = 5.8274 too (day 9 and 10 contribute 0).
 /// On day 12 C3 = 8.3205; on day 13 C1 = 2.9542 does not alarm while C2 = 8.3452 does.
 #[test]
 fn count_aberration_matches_the_reference_series() {
-    let params = CountParams::default();
+    let params = published();
     let day11 = count_aberration(&counts_through(11), &params);
     let c1 = outcome(&day11, Rule::CountZRecent).signal().unwrap();
     assert!(close(c1.observed, 5.6491, 5e-5) && c1.threshold == 3.0);
     assert_eq!(c1.figure("count"), Some(12.0));
     assert!(close(c1.figure("baseline_mean").unwrap(), 40.0 / 7.0, 1e-12));
-    assert_eq!(c1.fingerprint(), "count_z_recent|labs|North");
+    assert_eq!(c1.fingerprint(), "count|labs|North", "the count rules share one episode per subject");
     assert!(close(outcome(&day11, Rule::CountZGuarded).signal().unwrap().observed, 6.8274, 5e-5));
     let day12 = count_aberration(&counts_through(12), &params);
     let c3 = outcome(&day12, Rule::CountZGuarded3Day).signal().unwrap();
@@ -254,14 +261,15 @@ fn count_aberration_matches_the_reference_series() {
 }
 
 /// The three-day rule names the three days' counts and the sum it tested, not the last
-/// day's count alone; a single case is "1 case".
+/// day's count alone; a single case is "1 case"; a day's count of 1-4 is released as "1-4"
+/// (small-cell suppression, default threshold 4).
 #[test]
 fn count_messages_state_what_was_tested() {
-    let outcomes = count_aberration(&counts_through(12), &CountParams::default());
+    let outcomes = count_aberration(&counts_through(12), &published());
     let c3 = outcome(&outcomes, Rule::CountZGuarded3Day).signal().unwrap();
     assert_eq!(c3.figure("three_day_count"), Some(4.0 + 12.0 + 9.0));
     assert!(
-        c3.summary.starts_with("labs (North): 25 cases reported on 2026-03-10 to 2026-03-12 (4, 12, 9); sum of the three days' guarded excesses 8.32 > 2.00"),
+        c3.summary.starts_with("labs (North): 25 cases reported on 2026-03-10 to 2026-03-12 (1-4, 12, 9); sum of the three days' guarded excesses 8.32 > 2.00"),
         "{}",
         c3.summary
     );
@@ -298,6 +306,41 @@ fn count_rules_need_known_days_and_an_expected_count() {
     }
     let lenient = CountParams { min_expected: 0.0, ..params };
     assert!(outcome(&count_aberration(&input, &lenient), Rule::CountZRecent).signal().is_some());
+}
+
+/// The count rules of one subject are one episode: its outcome is the strongest signal,
+/// else clear if any rule decided, else every rule's reason.
+#[test]
+fn count_episode_takes_the_strongest_signal() {
+    let params = published();
+    let (rule, outcome) = count_episode(count_aberration(&counts_through(12), &params)).unwrap();
+    assert_eq!((rule, outcome.signal().unwrap().severity), (Rule::CountZGuarded3Day, Severity::Critical));
+    let (_, day13) = count_episode(count_aberration(&counts_through(13), &params)).unwrap();
+    assert!(day13.signal().is_some(), "C2 still signals on day 13 although C1 is clear");
+    let (_, day9) = count_episode(count_aberration(&counts_through(9), &params)).unwrap();
+    assert!(day9.is_clear(), "C1 decided (clear) while C2 and C3 lack days");
+    let (_, short) = count_episode(count_aberration(&counts_through(5), &params)).unwrap();
+    let Outcome::NotEnoughData(why) = short else { panic!("5 days decide nothing") };
+    assert!(
+        why.starts_with("count_z_recent: needs 8") && why.contains("count_z_guarded_3day: needs 12"),
+        "{why}"
+    );
+}
+
+/// The Poisson floor: the reference series' day 11 (12 cases against a week of mean 5.71,
+/// sample sd 1.11) has C1 = 5.65 published, and (12 - 5.71) / sqrt(5.71) = 2.63 with the
+/// floor, under the threshold 3: a week that happened to vary little no longer makes a
+/// modest rise look extreme. A doubling of a mean of 20 still signals (z = 20 / sqrt 20).
+#[test]
+fn poisson_sd_floor_keeps_a_quiet_week_from_inflating_z() {
+    let day11 = count_aberration(&counts_through(11), &CountParams::default());
+    assert!(outcome(&day11, Rule::CountZRecent).is_clear());
+    let mut doubled = vec![20.0; 7];
+    doubled.push(40.0);
+    let input = CountInput { daily_counts: doubled, last_day: march(8), ..counts_through(8) };
+    let signal =
+        outcome(&count_aberration(&input, &CountParams::default()), Rule::CountZRecent).signal().cloned();
+    assert!(close(signal.unwrap().observed, 20.0 / 20f64.sqrt(), 1e-12));
 }
 
 #[test]
@@ -350,7 +393,7 @@ fn negative_binomial_cusum_uses_the_overdispersed_baseline() {
 
 #[test]
 fn summaries_hold_aggregates_only() {
-    let outcomes = count_aberration(&counts_through(11), &CountParams::default());
+    let outcomes = count_aberration(&counts_through(11), &published());
     let summary = &outcome(&outcomes, Rule::CountZRecent).signal().unwrap().summary;
     assert_eq!(
         summary,
