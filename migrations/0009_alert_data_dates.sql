@@ -27,7 +27,7 @@ UPDATE alert SET rule = 'count_z_guarded_3day' WHERE rule = 'ears_c3';
 
 -- The latest outcome of every rule for every subject it evaluated, including "not enough
 -- data" and its reason, so `alerts` can say which rules cannot decide yet.
-CREATE TABLE IF NOT EXISTS rule_status (
+CREATE TABLE rule_status (
     fingerprint  TEXT PRIMARY KEY,
     rule         TEXT NOT NULL,
     source       TEXT NOT NULL,
@@ -62,3 +62,10 @@ SELECT a.alert_id, a.rule, a.source, a.subject, a.severity, a.state, a.summary, 
          WHERE e.alert_id = a.alert_id AND o.dead_at IS NOT NULL) AS dead_letters
 FROM alert a
 WHERE a.state <> 'resolved';
+
+-- Digests: while the daemon catches up on a backlog, notifying events are written with their
+-- payload but held (`held = 1`, no outbox rows); at the end of the catch-up each channel gets
+-- one `digest` event listing them, and the held events point at it.
+ALTER TABLE alert_event ADD COLUMN held INTEGER NOT NULL DEFAULT 0;
+ALTER TABLE alert_event ADD COLUMN digest_event_id INTEGER;
+CREATE INDEX alert_event_held ON alert_event(held) WHERE held = 1 AND digest_event_id IS NULL;

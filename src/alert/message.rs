@@ -5,7 +5,7 @@
 
 use serde_json::{Value, json};
 
-use crate::store::alerts::MessageFacts;
+use crate::store::alerts::{DigestFacts, DigestItem, MessageFacts};
 
 /// Said in every message: a statistical signal is not an event.
 pub const CAUTION: &str = "This is a statistical signal that needs investigation; it is not a confirmed \
@@ -58,6 +58,51 @@ pub fn payload(facts: &MessageFacts, dashboard_base: &str, small_cell_max: u32) 
     body.to_string()
 }
 
+/// The JSON payload of one channel's catch-up digest: what opened, what resolved and what is
+/// still open, each alert with its data day and its summary (small cells already written
+/// as ranges by the rules).
+pub fn digest_payload(facts: &DigestFacts, dashboard_base: &str) -> String {
+    let items = |list: &[DigestItem]| -> Vec<Value> {
+        list.iter()
+            .map(|i| {
+                json!({
+                    "alert_id": i.alert_id,
+                    "rule": i.rule,
+                    "source": i.source,
+                    "subject": i.subject,
+                    "severity": i.severity,
+                    "summary": i.summary,
+                    "data_day": i.data_day,
+                    "opened_as_of": i.opened_as_of,
+                    "resolved_as_of": i.resolved_as_of,
+                })
+            })
+            .collect()
+    };
+    let reopened = facts.opened.iter().filter(|i| i.resolved_as_of.is_some()).count();
+    let summary = format!(
+        "catch-up digest: {} opened ({reopened} of them resolved again), {} resolved, {} still open; \
+         it stands for {} held messages",
+        facts.opened.len(),
+        facts.resolved.len(),
+        facts.still_open.len(),
+        facts.held_messages
+    );
+    json!({
+        "event_id": facts.event_id,
+        "kind": "digest",
+        "channel": facts.channel,
+        "summary": summary,
+        "opened": items(&facts.opened),
+        "resolved": items(&facts.resolved),
+        "still_open": items(&facts.still_open),
+        "sent_at": facts.at,
+        "dashboard": dashboard_link(dashboard_base, ""),
+        "caution": CAUTION,
+    })
+    .to_string()
+}
+
 /// An email's subject, plain text and HTML, rendered from a payload.
 #[derive(Debug, Clone, PartialEq)]
 pub struct EmailText {
@@ -69,6 +114,9 @@ pub struct EmailText {
 /// Renders a payload as an email. Unknown or missing keys render as `-`.
 pub fn email_text(payload: &str) -> EmailText {
     let v: Value = serde_json::from_str(payload).unwrap_or_else(|_| json!({}));
+    if v["kind"] == "digest" {
+        return digest_email(&v);
+    }
     let s = |key: &str| match &v[key] {
         Value::String(text) => text.clone(),
         Value::Null => "-".into(),
@@ -134,6 +182,61 @@ fn message_lines(v: &Value, s: &dyn Fn(&str) -> String) -> Vec<(String, String)>
         }
     }
     lines
+}
+
+/// A digest as an email: the summary, then one line per alert under each heading.
+fn digest_email(v: &Value) -> EmailText {
+    let text = |value: &Value| value.as_str().unwrap_or("-").to_string();
+    let count = |key: &str| v[key].as_array().map_or(0, Vec::len);
+    let subject = format!(
+        "[tidemark digest] catch-up: {} opened, {} resolved, {} still open (needs investigation)",
+        count("opened"),
+        count("resolved"),
+        count("still_open")
+    );
+    let mut sections = Vec::new();
+    for (key, heading) in [("opened", "Opened"), ("resolved", "Resolved"), ("still_open", "Still open")] {
+        let lines: Vec<String> = v[key]
+            .as_array()
+            .map(|items| {
+                items
+                    .iter()
+                    .map(|i| {
+                        let subject = text(&i["subject"]);
+                        let subject =
+                            if subject.is_empty() { String::new() } else { format!(" ({subject})") };
+                        format!(
+                            "[{}] {} on {}{subject}, data day {}: {}",
+                            text(&i["severity"]),
+                            text(&i["rule"]),
+                            text(&i["source"]),
+                            text(&i["data_day"]),
+                            text(&i["summary"])
+                        )
+                    })
+                    .collect()
+            })
+            .unwrap_or_default();
+        sections.push((heading, lines));
+    }
+    let mut plain = format!("{}\n", text(&v["summary"]));
+    let mut html = format!("<html><body><p><strong>{}</strong></p>", escape(&text(&v["summary"])));
+    for (heading, lines) in &sections {
+        plain.push_str(&format!("\n{heading} ({}):\n", lines.len()));
+        html.push_str(&format!("<h3>{heading} ({})</h3><ul>", lines.len()));
+        for line in lines {
+            plain.push_str(&format!("- {line}\n"));
+            html.push_str(&format!("<li>{}</li>", escape(line)));
+        }
+        html.push_str("</ul>");
+    }
+    plain.push_str(&format!("\n{CAUTION}\n"));
+    html.push_str(&format!(
+        "<p><em>{}</em></p><p><a href=\"{}\">Open the dashboard</a></p></body></html>",
+        escape(CAUTION),
+        escape(&text(&v["dashboard"]))
+    ));
+    EmailText { subject, plain, html }
 }
 
 fn escape(text: &str) -> String {

@@ -43,6 +43,8 @@ pub struct Pass {
     /// episodes `[alert.rules.count] resolve_after`.
     resolve_after: u32,
     count_resolve_after: u32,
+    /// The snapshot is part of a catch-up: its messages are held for a digest.
+    catch_up: bool,
 }
 
 impl Pass {
@@ -52,6 +54,7 @@ impl Pass {
             snapshot_id,
             resolve_after: config.alerting.resolve_after,
             count_resolve_after: config.alerting.rules.count.resolve_after,
+            catch_up: false,
         }
     }
 
@@ -125,7 +128,10 @@ pub fn channels_for(config: &Config, severity: Severity) -> Vec<&'static str> {
     channels
 }
 
-/// Writes a pass through the lifecycle.
+/// Writes a pass through the lifecycle. While the daemon catches up (this pass's snapshot is
+/// old or has later ones waiting), and after that while held messages wait for their digest,
+/// the pass's messages are held; the first snapshot pass that is not catching up ends the
+/// catch-up, and each channel gets one digest of everything held.
 pub fn apply_pass(
     store: &mut Store,
     config: &Config,
@@ -137,18 +143,50 @@ pub fn apply_pass(
     let route = |severity: Severity| channels_for(config, severity);
     let small = config.alerting.small_cell_max;
     let payload = |facts: &MessageFacts| message::payload(facts, &base, small);
-    let delivery = Delivery { route: &route, payload: &payload };
-    Ok(store.apply_findings(&pass.evaluation, &life, &delivery)?)
+    let hold = pass.catch_up || store.digest_pending()?;
+    let delivery = Delivery { route: &route, payload: &payload, hold };
+    let outcome = store.apply_findings(&pass.evaluation, &life, &delivery)?;
+    if hold && !pass.catch_up && pass.snapshot_id.is_some() {
+        let digests = flush_digest(store, config, now)?;
+        tracing::info!(digests, "catch-up over: one digest per channel queued");
+    }
+    Ok(outcome)
+}
+
+/// Queues one digest per channel of the held messages; returns how many.
+pub fn flush_digest(store: &mut Store, config: &Config, now: DateTime<Utc>) -> Result<usize> {
+    let base = dashboard_base(config);
+    let route = |severity: Severity| channels_for(config, severity);
+    Ok(store.flush_digest(now, &route, &|facts| message::digest_payload(facts, &base))?)
+}
+
+/// The delivery loop's safety net: a digest for messages held longer than `[alert]
+/// digest_wait` (a catch-up whose end never comes: every extract of a source arrives old).
+pub fn flush_stale_digest(store: &mut Store, config: &Config, now: DateTime<Utc>) -> Result<usize> {
+    let wait = chrono::Duration::from_std(config.alerting.digest_wait).unwrap_or_default();
+    match store.oldest_held()? {
+        Some(oldest) if now - oldest >= wait => flush_digest(store, config, now),
+        _ => Ok(0),
+    }
 }
 
 /// The snapshot rules' findings for an applied or held snapshot, read on a read-only
-/// connection; `apply_pass` stores them (the one short write).
-pub fn snapshot_pass(config: &Config, source: &SourceConfig, outcome: &OwedAnalysis) -> Result<Pass> {
+/// connection; `apply_pass` stores them (the one short write). `unattended`: the daemon is
+/// evaluating, so an old snapshot, or one with later snapshots waiting, is a catch-up.
+pub fn snapshot_pass(
+    config: &Config,
+    source: &SourceConfig,
+    outcome: &OwedAnalysis,
+    unattended: bool,
+) -> Result<Pass> {
     let reader = Reader::open(&config.store.path)?;
     let source_id = reader.source_id(&source.name)?.context("source not registered")?;
     let params = &config.alerting.rules;
     let snapshot_id = outcome.snapshot_id;
     let mut pass = Pass::new(config, Some(snapshot_id));
+    let older_than =
+        Utc::now() - chrono::Duration::from_std(config.alerting.catch_up_age).unwrap_or_default();
+    pass.catch_up = unattended && reader.catching_up(source_id, snapshot_id, older_than)?;
     let volumes = reader.volumes(source_id, snapshot_id)?;
     let applied: Vec<_> = volumes
         .iter()
@@ -404,6 +442,11 @@ pub async fn deliver_due(
     config: &Arc<Config>,
     client: &reqwest::Client,
 ) -> Result<(usize, usize)> {
+    let flush_config = config.clone();
+    let digests = writer.run(move |store| flush_stale_digest(store, &flush_config, Utc::now())).await??;
+    if digests > 0 {
+        tracing::info!(digests, "held messages waited too long: digest queued");
+    }
     let items = writer.run(|store| store.due_outbox(Utc::now(), DELIVERY_BATCH)).await??;
     let (mut delivered, mut failed) = (0, 0);
     for item in items {

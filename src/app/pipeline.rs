@@ -29,6 +29,12 @@ pub trait Writes {
         &mut self,
         job: impl FnOnce(&mut Store) -> Result<T> + Send + 'static,
     ) -> Result<T>;
+
+    /// Whether the writes come from the unattended daemon, whose alert messages are held for
+    /// one digest while it catches up on a backlog; a command a person runs pages as it goes.
+    fn unattended(&self) -> bool {
+        false
+    }
 }
 
 /// The CLI's and the tests' way: the store is at hand.
@@ -49,6 +55,10 @@ impl Writes for Writer {
         job: impl FnOnce(&mut Store) -> Result<T> + Send + 'static,
     ) -> Result<T> {
         self.run_blocking(job)?
+    }
+
+    fn unattended(&self) -> bool {
+        true
     }
 }
 
@@ -282,7 +292,7 @@ fn evaluate_alerts<W: Writes>(
     snapshot: &OwedAnalysis,
     now: DateTime<Utc>,
 ) -> Result<()> {
-    let pass = alerting::snapshot_pass(config, source, snapshot)?;
+    let pass = alerting::snapshot_pass(config, source, snapshot, writes.unattended())?;
     let config = config.clone();
     writes.write(move |store| alerting::apply_pass(store, &config, &pass, now))?;
     Ok(())

@@ -24,6 +24,12 @@ pub const DEFAULT_RETRY_CAP: Duration = Duration::from_secs(30 * 60);
 /// Default small-cell threshold: counts of 1 to 4 are not released exactly (common practice
 /// in public-health releases, which suppress cells under 5).
 pub const DEFAULT_SMALL_CELL_MAX: u32 = 4;
+/// Default age of an extract past which the daemon is catching up (its alerts' messages are
+/// held for one digest): two days, so a daily feed's normal extract never counts.
+pub const DEFAULT_CATCH_UP_AGE: Duration = Duration::from_secs(2 * 86_400);
+/// Default longest wait of a held message for its digest: a catch-up whose end never comes
+/// (every extract of a source arrives old) still reports within half an hour.
+pub const DEFAULT_DIGEST_WAIT: Duration = Duration::from_secs(30 * 60);
 /// Default timeout of one delivery attempt.
 pub const DEFAULT_CHANNEL_TIMEOUT: Duration = Duration::from_secs(10);
 
@@ -60,6 +66,12 @@ pub struct AlertSettings {
     /// in the figures of outgoing messages, so a message that leaves the server cannot single
     /// out a few people. Default [`DEFAULT_SMALL_CELL_MAX`]; 0 turns it off.
     pub small_cell_max: u32,
+    /// A snapshot whose as-of time is older than this when its rules are evaluated (or one
+    /// with a newer snapshot of its source already committed) is part of a catch-up: its
+    /// messages are held, and each channel receives one digest when the catch-up ends.
+    pub catch_up_age: Duration,
+    /// Longest a held message waits for its digest before the delivery loop sends one anyway.
+    pub digest_wait: Duration,
     /// Typed rule parameters (defaults overridden by `[alert.rules.*]`).
     pub rules: super::rule_params::RuleParams,
 }
@@ -74,6 +86,8 @@ impl Default for AlertSettings {
             retry_cap: DEFAULT_RETRY_CAP,
             failed_polls: 3,
             small_cell_max: DEFAULT_SMALL_CELL_MAX,
+            catch_up_age: DEFAULT_CATCH_UP_AGE,
+            digest_wait: DEFAULT_DIGEST_WAIT,
             rules: super::rule_params::RuleParams::default(),
         }
     }

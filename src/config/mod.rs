@@ -355,6 +355,13 @@ fn build_alert_settings(
         retry_cap: duration_or(raw.retry_cap.as_deref(), "alert.retry_cap", d.retry_cap, problems),
         failed_polls: raw.failed_polls.unwrap_or(d.failed_polls).max(1),
         small_cell_max: raw.small_cell_max.unwrap_or(d.small_cell_max),
+        catch_up_age: duration_or(
+            raw.catch_up_age.as_deref(),
+            "alert.catch_up_age",
+            d.catch_up_age,
+            problems,
+        ),
+        digest_wait: duration_or(raw.digest_wait.as_deref(), "alert.digest_wait", d.digest_wait, problems),
         rules: rule_params::build(&raw.rules, problems, warnings),
     };
     let mut settings = settings;
@@ -369,14 +376,16 @@ impl Config {
     fn describe_alerting(&self) -> String {
         let a = &self.alerting;
         let mut out = format!(
-            "alert: resend_after={}s resolve_after={} max_age={}s retry_base={}ms retry_cap={}ms failed_polls={} small_cell_max={}\n",
+            "alert: resend_after={}s resolve_after={} max_age={}s retry_base={}ms retry_cap={}ms failed_polls={} small_cell_max={} catch_up_age={}s digest_wait={}s\n",
             a.resend_after.as_secs(),
             a.resolve_after,
             a.max_age.as_secs(),
             a.retry_base.as_millis(),
             a.retry_cap.as_millis(),
             a.failed_polls,
-            a.small_cell_max
+            a.small_cell_max,
+            a.catch_up_age.as_secs(),
+            a.digest_wait.as_secs()
         );
         let _ = writeln!(out, "alert.rules: {:?}", a.rules);
         let lag: Vec<&str> = self.quality.lag_from.iter().map(|f| f.name()).collect();

@@ -98,6 +98,8 @@ pub struct RawAlert {
     pub retry_cap: Option<String>,
     pub failed_polls: Option<u32>,
     pub small_cell_max: Option<u32>,
+    pub catch_up_age: Option<String>,
+    pub digest_wait: Option<String>,
     #[serde(default)]
     pub rules: BTreeMap<String, toml::Table>,
 }

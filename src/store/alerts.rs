@@ -102,6 +102,40 @@ pub struct Delivery<'a> {
     pub route: &'a dyn Fn(Severity) -> Vec<&'static str>,
     /// The JSON payload stored with a notifying event.
     pub payload: &'a dyn Fn(&MessageFacts) -> String,
+    /// Hold the messages for a digest (the daemon is catching up on a backlog) instead of
+    /// queueing them.
+    pub hold: bool,
+}
+
+/// One alert as a digest lists it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct DigestItem {
+    pub alert_id: i64,
+    pub rule: String,
+    pub source: String,
+    pub subject: String,
+    pub severity: Severity,
+    pub summary: String,
+    pub data_day: Option<String>,
+    pub opened_as_of: Option<String>,
+    pub resolved_as_of: Option<String>,
+}
+
+/// Everything one channel's digest says: the alerts whose messages were held, by what
+/// happened to them, and every alert still live.
+#[derive(Debug, Clone, PartialEq)]
+pub struct DigestFacts {
+    pub event_id: i64,
+    pub channel: String,
+    pub at: String,
+    /// Opened while catching up (and resolved again, when `resolved_as_of` is set).
+    pub opened: Vec<DigestItem>,
+    /// Opened earlier, resolved while catching up.
+    pub resolved: Vec<DigestItem>,
+    /// Live now.
+    pub still_open: Vec<DigestItem>,
+    /// Messages the digest stands for.
+    pub held_messages: usize,
 }
 
 impl std::fmt::Debug for Delivery<'_> {
@@ -119,6 +153,8 @@ pub struct EvalOutcome {
     pub resolved: usize,
     /// Outbox rows written.
     pub enqueued: usize,
+    /// Messages held for a digest instead.
+    pub held: usize,
 }
 
 /// One row of `tidemark alerts`.
@@ -195,6 +231,82 @@ impl Store {
         }
         tx.commit()?;
         Ok(outcome)
+    }
+
+    /// Whether notifying events are held for a digest.
+    pub fn digest_pending(&self) -> Result<bool, StoreError> {
+        Ok(self.conn.query_row(
+            "SELECT EXISTS (SELECT 1 FROM alert_event WHERE held = 1 AND digest_event_id IS NULL)",
+            [],
+            |r| r.get(0),
+        )?)
+    }
+
+    /// When the oldest held event was written, if any.
+    pub fn oldest_held(&self) -> Result<Option<DateTime<Utc>>, StoreError> {
+        let at: Option<String> = self.conn.query_row(
+            "SELECT min(at) FROM alert_event WHERE held = 1 AND digest_event_id IS NULL",
+            [],
+            |r| r.get(0),
+        )?;
+        Ok(at.as_deref().and_then(super::parse_time))
+    }
+
+    /// Ends a catch-up: one digest event per channel that takes any of the held events'
+    /// alerts, queued in the outbox, and the held events marked as sent in it; all in one
+    /// transaction. Returns the digests queued.
+    pub fn flush_digest(
+        &mut self,
+        now: DateTime<Utc>,
+        route: &dyn Fn(Severity) -> Vec<&'static str>,
+        payload: &dyn Fn(&DigestFacts) -> String,
+    ) -> Result<usize, StoreError> {
+        let tx = self.conn.transaction()?;
+        let held = held_alerts(&tx)?;
+        if held.is_empty() {
+            return Ok(0);
+        }
+        let live = digest_items(&tx, "WHERE a.state <> 'resolved'")?;
+        let held_messages = tx.query_row(
+            "SELECT count(*) FROM alert_event WHERE held = 1 AND digest_event_id IS NULL",
+            [],
+            |r| r.get::<_, i64>(0),
+        )? as usize;
+        let at = time_text(now);
+        let mut channels: Vec<&'static str> =
+            held.iter().flat_map(|(item, _)| route(item.severity)).collect();
+        channels.sort_unstable();
+        channels.dedup();
+        let mut first_digest = None;
+        for channel in &channels {
+            let routed = |item: &DigestItem| route(item.severity).contains(channel);
+            tx.execute("INSERT INTO alert_event (kind, at) VALUES ('digest', ?1)", [&at])?;
+            let event_id = tx.last_insert_rowid();
+            first_digest.get_or_insert(event_id);
+            let mut facts = DigestFacts {
+                event_id,
+                channel: channel.to_string(),
+                at: at.clone(),
+                opened: Vec::new(),
+                resolved: Vec::new(),
+                still_open: live.iter().filter(|i| routed(i)).cloned().collect(),
+                held_messages,
+            };
+            for (item, opened) in held.iter().filter(|(item, _)| routed(item)) {
+                if *opened { facts.opened.push(item.clone()) } else { facts.resolved.push(item.clone()) }
+            }
+            tx.execute(
+                "UPDATE alert_event SET payload = ?2 WHERE event_id = ?1",
+                params![event_id, payload(&facts)],
+            )?;
+            enqueue(&tx, event_id, channel, &at)?;
+        }
+        tx.execute(
+            "UPDATE alert_event SET digest_event_id = ?1 WHERE held = 1 AND digest_event_id IS NULL",
+            [first_digest.unwrap_or(0)],
+        )?;
+        tx.commit()?;
+        Ok(channels.len())
     }
 
     /// Acknowledges a live alert (see [`AlertDesk::ack_alert`]).
@@ -345,6 +457,15 @@ impl<C: BorrowMut<Connection>> AlertDesk<C> {
                  (SELECT e.alert_id FROM outbox o JOIN alert_event e USING (event_id) WHERE o.outbox_id = ?1)",
             [outbox_id],
         )?;
+        // A digest notifies every alert whose held message it stands for.
+        tx.execute(
+            "UPDATE alert SET state = 'notified'
+             WHERE state = 'open' AND alert_id IN
+                 (SELECT h.alert_id FROM outbox o JOIN alert_event d ON d.event_id = o.event_id
+                  JOIN alert_event h ON h.digest_event_id = d.event_id
+                  WHERE o.outbox_id = ?1 AND d.kind = 'digest')",
+            [outbox_id],
+        )?;
         tx.commit()?;
         Ok(())
     }
@@ -448,6 +569,59 @@ fn resend_due(last_sent_at: Option<&str>, life: &Lifecycle) -> bool {
     let Some(last) = last_sent_at.and_then(super::parse_time) else { return false };
     let since = (life.now - last).to_std().unwrap_or_default();
     since >= life.resend_after
+}
+
+/// The alerts with held events: `(item, true)` for those opened while held (resolved again
+/// or not), `(item, false)` for those opened earlier that resolved while held. Alerts only
+/// re-sent or escalated while held are in the digest's still-open list.
+fn held_alerts(tx: &Transaction<'_>) -> Result<Vec<(DigestItem, bool)>, StoreError> {
+    let items = digest_items(
+        tx,
+        "WHERE a.alert_id IN (SELECT alert_id FROM alert_event WHERE held = 1 AND digest_event_id IS NULL)",
+    )?;
+    let mut out = Vec::new();
+    for item in items {
+        let held_kind = |kind: &str| -> rusqlite::Result<bool> {
+            tx.query_row(
+                "SELECT EXISTS (SELECT 1 FROM alert_event WHERE alert_id = ?1 AND held = 1
+                     AND digest_event_id IS NULL AND kind = ?2)",
+                params![item.alert_id, kind],
+                |r| r.get(0),
+            )
+        };
+        if held_kind("opened")? {
+            out.push((item, true));
+        } else if held_kind("resolved")? {
+            out.push((item, false));
+        }
+    }
+    Ok(out)
+}
+
+/// Alerts in digest order (critical first, then by id), filtered by `filter` (a WHERE
+/// clause written here, never from input).
+fn digest_items(tx: &Transaction<'_>, filter: &str) -> Result<Vec<DigestItem>, StoreError> {
+    let sql = format!(
+        "SELECT a.alert_id, a.rule, a.source, a.subject, a.severity, a.summary, a.data_day, a.opened_as_of,
+                CASE WHEN a.state = 'resolved' THEN coalesce(a.resolved_as_of, a.resolved_at) END
+         FROM alert a {filter}
+         ORDER BY CASE a.severity WHEN 'critical' THEN 0 WHEN 'warning' THEN 1 ELSE 2 END, a.alert_id"
+    );
+    let mut stmt = tx.prepare(&sql)?;
+    let rows = stmt.query_map([], |r| {
+        Ok(DigestItem {
+            alert_id: r.get(0)?,
+            rule: r.get(1)?,
+            source: r.get(2)?,
+            subject: r.get(3)?,
+            severity: r.get(4)?,
+            summary: r.get(5)?,
+            data_day: r.get(6)?,
+            opened_as_of: r.get(7)?,
+            resolved_as_of: r.get(8)?,
+        })
+    })?;
+    Ok(rows.collect::<Result<_, _>>()?)
 }
 
 /// Keeps the latest outcome of one rule for one subject.
@@ -555,10 +729,15 @@ fn notify(
         params![event_id, (delivery.payload)(&facts)],
     )?;
     let channels = (delivery.route)(facts.severity);
-    for channel in &channels {
-        enqueue(tx, event_id, channel, &at)?;
+    if delivery.hold && !channels.is_empty() {
+        tx.execute("UPDATE alert_event SET held = 1 WHERE event_id = ?1", [event_id])?;
+        outcome.held += 1;
+    } else {
+        for channel in &channels {
+            enqueue(tx, event_id, channel, &at)?;
+        }
+        outcome.enqueued += channels.len();
     }
-    outcome.enqueued += channels.len();
     if !channels.is_empty() && kind != "resolved" {
         tx.execute(
             "UPDATE alert SET last_sent_at = ?2, sent_count = sent_count + 1 WHERE alert_id = ?1",
@@ -628,6 +807,26 @@ impl Reader {
             })
         })?;
         Ok(rows.collect::<Result<_, _>>()?)
+    }
+
+    /// Whether evaluating `snapshot_id` is part of a catch-up: its as-of time is before
+    /// `older_than`, or a later snapshot of its source is already committed.
+    pub fn catching_up(
+        &self,
+        source_id: SourceId,
+        snapshot_id: SnapshotId,
+        older_than: DateTime<Utc>,
+    ) -> Result<bool, StoreError> {
+        let found: Option<bool> = self
+            .conn
+            .query_row(
+                "SELECT as_of < ?3 OR EXISTS (SELECT 1 FROM snapshot l WHERE l.source_id = ?1 AND l.snapshot_id > ?2)
+                 FROM snapshot WHERE snapshot_id = ?2",
+                params![source_id, snapshot_id, time_text(older_than)],
+                |r| r.get(0),
+            )
+            .optional()?;
+        Ok(found.unwrap_or(false))
     }
 
     /// The rules that could not decide at their latest evaluation: (rule, source, subject,

@@ -128,7 +128,7 @@ fn lifecycle_dedupes_resends_acknowledges_and_resolves() {
     let life = |now| Lifecycle { now, snapshot_id: None, resend_after: Duration::from_secs(6 * 3600) };
     let route = |_: tidemark::model::Severity| vec!["webhook"];
     let payload = |f: &MessageFacts| format!("{{\"event_id\":{},\"kind\":\"{}\"}}", f.event_id, f.kind);
-    let delivery = Delivery { route: &route, payload: &payload };
+    let delivery = Delivery { route: &route, payload: &payload, hold: false };
     let finding = Finding {
         fingerprint: "volume_drop|feed|".into(),
         rule: "volume_drop".parse().unwrap(),
@@ -197,7 +197,7 @@ fn a_live_alert_pages_again_only_on_a_new_peak_severity() {
     };
     let route = |_: tidemark::model::Severity| vec!["webhook"];
     let payload = |f: &MessageFacts| format!("{{\"event_id\":{},\"kind\":\"{}\"}}", f.event_id, f.kind);
-    let delivery = Delivery { route: &route, payload: &payload };
+    let delivery = Delivery { route: &route, payload: &payload, hold: false };
     let rule: tidemark::model::Rule = "count_z_guarded".parse().unwrap();
     let fingerprint = tidemark::alert::fingerprint(rule, "feed", "North");
     assert_eq!(fingerprint, "count|feed|North", "the count rules of a subject share one episode");
@@ -246,6 +246,60 @@ fn a_live_alert_pages_again_only_on_a_new_peak_severity() {
         .query_row("SELECT reason FROM rule_status WHERE outcome = 'not_enough_data'", [], |r| r.get(0))
         .unwrap();
     assert!(reason.starts_with("needs 10 known days"));
+}
+
+/// Held messages (a catch-up) go out as one digest per channel, each listing only the
+/// alerts routed to it, in one transaction that marks the held events as sent.
+#[test]
+fn held_messages_go_out_as_one_digest_per_channel() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("store.db");
+    let mut store = open_store(&path);
+    let now: DateTime<Utc> = "2026-03-01T08:00:00Z".parse().unwrap();
+    let life = Lifecycle { now, snapshot_id: None, resend_after: Duration::from_secs(3600) };
+    use tidemark::model::Severity::{Critical, Info};
+    // Email takes critical only; the webhook takes everything.
+    let route =
+        |s: tidemark::model::Severity| if s == Critical { vec!["email", "webhook"] } else { vec!["webhook"] };
+    let payload = |f: &MessageFacts| format!("{{\"event_id\":{}}}", f.event_id);
+    let found = |rule: &str, severity| Finding {
+        fingerprint: format!("{rule}|feed|"),
+        rule: rule.parse().unwrap(),
+        source: "feed".into(),
+        subject: String::new(),
+        severity,
+        summary: format!("{rule} fired"),
+        figures: "{}".into(),
+        snapshot_id: None,
+    };
+    let evaluation = Evaluation {
+        findings: vec![found("held_snapshot", Critical), found("volume_drop", Info)],
+        ..Evaluation::default()
+    };
+    let held = Delivery { route: &route, payload: &payload, hold: true };
+    let outcome = store.apply_findings(&evaluation, &life, &held).unwrap();
+    assert_eq!((outcome.opened, outcome.enqueued, outcome.held), (2, 0, 2));
+    assert!(store.digest_pending().unwrap());
+    let digest = |facts: &tidemark::store::alerts::DigestFacts| {
+        let rules: Vec<&str> = facts.opened.iter().map(|i| i.rule.as_str()).collect();
+        format!("{}:{}", facts.channel, rules.join(","))
+    };
+    assert_eq!(store.flush_digest(now, &route, &digest).unwrap(), 2);
+    assert!(!store.digest_pending().unwrap());
+    let db = crate::support::open_ro(&path);
+    let mut stmt = db
+        .prepare("SELECT o.channel, e.payload FROM outbox o JOIN alert_event e USING (event_id) ORDER BY o.channel")
+        .unwrap();
+    let rows: Vec<(String, String)> =
+        stmt.query_map([], |r| Ok((r.get(0)?, r.get(1)?))).unwrap().map(|r| r.unwrap()).collect();
+    assert_eq!(
+        rows,
+        [
+            ("email".to_string(), "email:held_snapshot".to_string()),
+            ("webhook".to_string(), "webhook:held_snapshot,volume_drop".to_string())
+        ]
+    );
+    assert_eq!(store.flush_digest(now, &route, &digest).unwrap(), 0, "nothing held any more");
 }
 
 /// What the loopback receiver does with the next request.
@@ -443,7 +497,8 @@ fn check_config_redacts_channel_secrets() {
 }
 
 /// The daemon killed (SIGKILL) while its outbox holds undelivered messages: after a restart
-/// they are delivered, each event id once.
+/// they are delivered, each event id once. (The extracts are dated in the past, so the
+/// catch-up age is set long: this test is about pages, not digests.)
 #[test]
 fn pending_outbox_rows_survive_sigkill_and_are_delivered_once() {
     let dir = tempfile::tempdir().unwrap();
@@ -457,7 +512,7 @@ fn pending_outbox_rows_survive_sigkill_and_are_delivered_once() {
              [[source]]\nname = \"county\"\nkind = \"folder\"\npath = \"inbox\"\npattern = \"*.csv\"\n\
              schedule = \"* * * * * *\"\nsettle = \"100ms\"\nas_of = \"name:%Y-%m-%d\"\nkey = \"case_id\"\n\
              [source.fields]\njurisdiction = \"district\"\nonset_date = \"onset\"\nreport_date = \"reported\"\nage = \"age\"\n\
-             [alert]\nretry_base = \"1s\"\nretry_cap = \"1s\"\n\
+             [alert]\nretry_base = \"1s\"\nretry_cap = \"1s\"\ncatch_up_age = \"3650d\"\n\
              [alert.webhook]\nurl = \"http://127.0.0.1:{hook_port}/hook\"\ntimeout = \"500ms\"\n"
         ),
     )

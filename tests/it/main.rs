@@ -9,6 +9,7 @@ mod cli;
 mod crash;
 mod dashboard_browser;
 mod delays;
+mod digest;
 mod exports;
 mod folder_source;
 mod hardening;
