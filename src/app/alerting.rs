@@ -271,6 +271,10 @@ fn calibration(
     Ok(())
 }
 
+/// The missingness rule per field for the whole source, and per field and jurisdiction
+/// where feeds usually break (subject `field (jurisdiction)`, the rule's `min_records`
+/// keeping small units from paging on noise). A field whose whole-source share jumped is
+/// reported once, for the source, not again for every jurisdiction.
 fn missingness(
     reader: &Reader,
     source_id: SourceId,
@@ -279,27 +283,67 @@ fn missingness(
     config: &Config,
     pass: &mut Pass,
 ) -> Result<()> {
-    let rows = reader.quality_history(source_id, snapshot_id, "new_changed", "all")?;
-    let mut by_field: BTreeMap<String, Vec<(SnapshotId, MissingCount)>> = BTreeMap::new();
-    for r in rows {
-        let count = MissingCount { missing: r.missing as u64, records: r.records as u64 };
-        by_field.entry(r.field).or_default().push((r.snapshot_id, count));
+    let params = &config.alerting.rules.missingness;
+    let mut source_wide = BTreeMap::new();
+    for (field, series) in missing_series(reader, source_id, snapshot_id, "all")? {
+        let outcome = missingness_outcome(source, &field, series, snapshot_id, params);
+        if let Some(outcome) = outcome {
+            source_wide.insert(field.clone(), outcome.signal().is_some());
+            pass.add(Rule::MissingnessJump, source, &field, outcome, Some(snapshot_id));
+        }
     }
-    for (field, mut series) in by_field {
-        let Some((last_id, latest)) = series.pop() else { continue };
-        if last_id != snapshot_id {
+    let stratum_params = rules::MissingnessParams { min_records: params.stratum_min_records, ..*params };
+    for (key, series) in missing_series(reader, source_id, snapshot_id, "jurisdiction")? {
+        let Some((field, jurisdiction)) = key.split_once('\u{1f}') else { continue };
+        if jurisdiction == crate::store::quality::NO_JURISDICTION
+            || source_wide.get(field).copied().unwrap_or(false)
+        {
             continue;
         }
-        let input = MissingnessInput {
-            source: source.to_string(),
-            subject: field.clone(),
-            latest,
-            baseline: series.into_iter().map(|(_, c)| c).collect(),
-        };
-        let outcome = rules::missingness_jump(&input, &config.alerting.rules.missingness);
-        pass.add(Rule::MissingnessJump, source, &field, outcome, Some(snapshot_id));
+        let subject = format!("{field} ({jurisdiction})");
+        if let Some(outcome) = missingness_outcome(source, &subject, series, snapshot_id, &stratum_params) {
+            pass.add(Rule::MissingnessJump, source, &subject, outcome, Some(snapshot_id));
+        }
     }
     Ok(())
+}
+
+/// Missing counts of new or changed records by snapshot, oldest first, per field (and, for
+/// `jurisdiction`, per field and jurisdiction, keyed `field\u{1f}jurisdiction`).
+fn missing_series(
+    reader: &Reader,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
+    stratum_kind: &str,
+) -> Result<BTreeMap<String, Vec<(SnapshotId, MissingCount)>>> {
+    let mut by_key: BTreeMap<String, Vec<(SnapshotId, MissingCount)>> = BTreeMap::new();
+    for r in reader.quality_history(source_id, snapshot_id, "new_changed", stratum_kind)? {
+        let count = MissingCount { missing: r.missing as u64, records: r.records as u64 };
+        let key = if stratum_kind == "all" { r.field } else { format!("{}\u{1f}{}", r.field, r.stratum) };
+        by_key.entry(key).or_default().push((r.snapshot_id, count));
+    }
+    Ok(by_key)
+}
+
+/// The rule on one series, `None` when the series has no row for this snapshot.
+fn missingness_outcome(
+    source: &str,
+    subject: &str,
+    mut series: Vec<(SnapshotId, MissingCount)>,
+    snapshot_id: SnapshotId,
+    params: &rules::MissingnessParams,
+) -> Option<Outcome> {
+    let (last_id, latest) = series.pop()?;
+    if last_id != snapshot_id {
+        return None;
+    }
+    let input = MissingnessInput {
+        source: source.to_string(),
+        subject: subject.to_string(),
+        latest,
+        baseline: series.into_iter().map(|(_, c)| c).collect(),
+    };
+    Some(rules::missingness_jump(&input, params))
 }
 
 /// The days `first..=last`, as ISO dates.

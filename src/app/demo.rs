@@ -77,7 +77,8 @@ pub struct DemoAlert {
 }
 
 /// The injection an alert matches: same source, a rule expected for it, the same subject
-/// (or the whole source, which a problem in one part also moves), fired on or after it.
+/// (or the whole source, which a problem in one part also moves, or a jurisdiction's part of
+/// the subject, `field (jurisdiction)`), fired on or after it.
 fn matching_injection(
     injections: &[demo::Injection],
     rule: &str,
@@ -88,7 +89,10 @@ fn matching_injection(
     injections
         .iter()
         .filter(|i| {
-            i.feed == source && i.rules.contains(&rule) && (subject.is_empty() || subject == i.subject)
+            let within = subject.strip_prefix(i.subject).is_some_and(|rest| rest.starts_with(" ("));
+            i.feed == source
+                && i.rules.contains(&rule)
+                && (subject.is_empty() || subject == i.subject || within)
         })
         .filter(|i| day >= i64::from(i.day))
         .map(|i| i.day)

@@ -126,8 +126,11 @@ fn missingness(keys: &mut Keys<'_>, p: &mut MissingnessParams) {
     let mut min_records = p.min_records as usize;
     keys.count("min_records", &mut min_records);
     p.min_records = min_records as u64;
+    let mut stratum_min_records = p.stratum_min_records as usize;
+    keys.count("stratum_min_records", &mut stratum_min_records);
+    p.stratum_min_records = stratum_min_records as u64;
     keys.float("sigmas", &mut p.sigmas);
-    keys.only(&["baseline_snapshots", "min_effect", "min_records", "sigmas"]);
+    keys.only(&["baseline_snapshots", "min_effect", "min_records", "sigmas", "stratum_min_records"]);
 }
 
 fn lag(keys: &mut Keys<'_>, p: &mut LagParams) {

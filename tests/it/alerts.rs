@@ -302,6 +302,46 @@ fn held_messages_go_out_as_one_digest_per_channel() {
     assert_eq!(store.flush_digest(now, &route, &digest).unwrap(), 0, "nothing held any more");
 }
 
+/// Missingness per jurisdiction: a feed that stops sending onset dates for one small
+/// jurisdiction (too small to move the source's share by the minimum effect) raises
+/// `missingness_jump` for `onset_date (Brackwater)` only; a share that jumps for the whole
+/// source is reported once, for the source.
+#[test]
+fn missingness_is_watched_per_jurisdiction_too() {
+    let mut env = env_with("");
+    let extract = |day_index: usize, blank_in: &[&str]| {
+        let mut text = String::from("case_id,district,onset,reported,age,sex,symptoms\n");
+        for i in 0..1_100 {
+            let district = if i < 1_000 { "Amberlee" } else { "Brackwater" };
+            let onset = if blank_in.contains(&district) { String::new() } else { "2026-02-20".into() };
+            text.push_str(&format!("D{day_index}-{i:05},{district},{onset},2026-02-25,40,F,cough\n"));
+        }
+        text
+    };
+    let mut rows = String::new();
+    for d in 0..8 {
+        let day_rows = extract(d, &[]);
+        rows.push_str(if d == 0 { &day_rows } else { day_rows.split_once('\n').unwrap().1 });
+        env.ingest("feed", &rows, day(d as i64));
+    }
+    let subjects = |env: &Env| -> Vec<String> {
+        let db = env.db();
+        let mut stmt = db
+            .prepare("SELECT subject FROM alert WHERE rule = 'missingness_jump' ORDER BY alert_id")
+            .unwrap();
+        stmt.query_map([], |r| r.get(0)).unwrap().map(|r| r.unwrap()).collect()
+    };
+    assert!(subjects(&env).is_empty(), "a steady feed raises nothing");
+    rows.push_str(extract(8, &["Brackwater"]).split_once('\n').unwrap().1);
+    env.ingest("feed", &rows, day(8));
+    assert_eq!(subjects(&env), ["onset_date (Brackwater)"], "one jurisdiction broke");
+    rows.push_str(extract(9, &["Amberlee", "Brackwater"]).split_once('\n').unwrap().1);
+    env.ingest("feed", &rows, day(9));
+    let now = subjects(&env);
+    assert_eq!(now.iter().filter(|s| *s == "onset_date").count(), 1, "the source's share jumped: {now:?}");
+    assert!(!now.iter().any(|s| s == "onset_date (Amberlee)"), "reported once, for the source: {now:?}");
+}
+
 /// What the loopback receiver does with the next request.
 #[derive(Debug, Clone, Copy)]
 enum Answer {
