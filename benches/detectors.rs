@@ -36,6 +36,7 @@ fn main() {
     lags();
     missingness();
     volume();
+    default_count_rules();
     eprintln!(
         "{RUNS} series per scenario, {DAYS} days each; done in {:.1} s",
         started.elapsed().as_secs_f64()
@@ -183,6 +184,127 @@ fn volume() {
             .collect();
         row("volume drop", &format!("40 new/snapshot, falls to {:.0}%", 100.0 * factor), &results);
     }
+}
+
+/// Days of the series the default count rules are scored on; in control from
+/// [`EVALUATE_FROM`] to [`EPISODE_INJECT_AT`] (70 days each).
+const EPISODE_DAYS: usize = 126;
+const EPISODE_INJECT_AT: usize = 112;
+
+/// The default count rules together, as the daemon pages them: one episode per series
+/// (the strongest of C1, C2 and C3), resolving after 14 clear days. Series with a flat
+/// mean of 20, with weekly seasonality, and with weekly seasonality and a trend of +1% a
+/// day, Poisson and negative binomial (size 10); a doubling of the expected count lasting 3
+/// or 7 days. Reports false episodes per 100 in-control series-days (episodes opened
+/// before the doubling) and the share of doublings signalled within 3 days of their start.
+fn default_count_rules() {
+    println!();
+    println!(
+        "| default count rules (one episode per series) | scenario | doublings signalled within 3 days | false episodes / 100 in-control days | median days to detection |"
+    );
+    println!("|---|---|---|---|---|");
+    /// Reporting by weekday, Monday first: fewer reports at the weekend (mean 1).
+    const WEEKDAY: [f64; 7] = [1.25, 1.1, 1.05, 1.05, 1.0, 0.8, 0.75];
+    let shapes: [(&str, bool, f64); 3] =
+        [("flat", false, 0.0), ("weekly", true, 0.0), ("weekly, +1%/day", true, 0.01)];
+    for dispersion in [None, Some(10.0)] {
+        for (shape, weekly, trend) in shapes {
+            for length in [3usize, 7] {
+                let seed = 5_000
+                    + length as u64
+                    + 10 * u64::from(weekly)
+                    + (trend * 1000.0) as u64
+                    + dispersion.map_or(0, |_| 100);
+                let mut rng = StdRng::seed_from_u64(seed);
+                let doubling = Injection { start: EPISODE_INJECT_AT, length };
+                let series: Vec<Vec<f64>> = (0..RUNS)
+                    .map(|_| {
+                        let mean = |day: usize| {
+                            let season = if weekly { WEEKDAY[day % 7] } else { 1.0 };
+                            let growth = (1.0 + trend).powi(day as i32 - EVALUATE_FROM as i32);
+                            let doubled = if doubling.active(day) { 2.0 } else { 1.0 };
+                            20.0 * season * growth * doubled
+                        };
+                        (0..EPISODE_DAYS).map(|d| draw(&mut rng, mean(d), dispersion)).collect()
+                    })
+                    .collect();
+                let family = dispersion.map_or("Poisson".to_string(), |size| format!("NB size {size}"));
+                for (name, params) in rule_sets() {
+                    let results: Vec<RunResult> =
+                        series.iter().map(|counts| episodes(counts, doubling, &params)).collect();
+                    let p = performance(&results);
+                    let delay =
+                        if p.median_delay.is_nan() { "-".to_string() } else { format!("{}", p.median_delay) };
+                    println!(
+                        "| {name} | {family} mean 20, {shape}, doubling for {length} days | {:.0}% | {:.2} | {delay} |",
+                        100.0 * p.detection_rate,
+                        p.false_alarms_per_100_days
+                    );
+                }
+            }
+        }
+    }
+}
+
+/// The default rule set, and variants to compare it with.
+fn rule_sets() -> Vec<(&'static str, CountParams)> {
+    let default = CountParams::default();
+    vec![
+        ("default (C1 + C2 + C3)", default),
+        ("C1 + C2", CountParams { z_guarded_3day: false, ..default }),
+        ("C2 + C3, C3 threshold 3", {
+            let mut p = CountParams { z_recent: false, ..default };
+            p.z.guarded_3day_threshold = 3.0;
+            p
+        }),
+    ]
+}
+
+/// One count drawn with mean `mu` (Poisson, or negative binomial of the given size).
+fn draw(rng: &mut StdRng, mu: f64, dispersion: Option<f64>) -> f64 {
+    use rand_distr::{Distribution, Gamma, Poisson};
+    let rate = match dispersion {
+        Some(size) => Gamma::new(size, mu / size).expect("valid gamma").sample(rng),
+        None => mu,
+    };
+    if rate <= 0.0 { 0.0 } else { Poisson::new(rate).expect("valid rate").sample(rng) }
+}
+
+/// Runs the default count rules every day as one episode: `false_alarms` are the episodes
+/// opened in control, `delay` the first signal within 3 days of the doubling.
+fn episodes(counts: &[f64], doubling: Injection, params: &CountParams) -> RunResult {
+    let (mut live, mut clear_days, mut opened) = (false, 0u32, 0usize);
+    let mut delay = None;
+    for day in EVALUATE_FROM..counts.len() {
+        let input = CountInput {
+            source: "sim".into(),
+            subject: String::new(),
+            daily_counts: counts[..=day].to_vec(),
+            last_day: sim_day(day),
+        };
+        let Some((_, outcome)) = rules::count_episode(rules::count_aberration(&input, params)) else {
+            continue;
+        };
+        match outcome {
+            Outcome::Signal(_) => {
+                if day >= doubling.start && day < doubling.start + 3 && delay.is_none() {
+                    delay = Some(day - doubling.start);
+                }
+                if !live && day < doubling.start {
+                    opened += 1;
+                }
+                (live, clear_days) = (true, 0);
+            }
+            Outcome::Clear => {
+                clear_days += 1;
+                if clear_days >= params.resolve_after {
+                    live = false;
+                }
+            }
+            Outcome::NotEnoughData(_) => {}
+        }
+    }
+    RunResult { false_alarms: opened, in_control_days: doubling.start - EVALUATE_FROM, delay }
 }
 
 fn fires(outcome: &Outcome) -> bool {
