@@ -5,7 +5,11 @@
 //! nor a notification queued for an alert that was rolled back. Delivery (in `app`) takes
 //! due outbox rows and reports back; it is at-least-once, the event id being the
 //! idempotency key. States: open -> notified (a message was delivered) -> acknowledged ->
-//! resolved; a fingerprint (rule, source, subject) has at most one alert not resolved.
+//! resolved; a fingerprint (episode, source, subject; the count rules share the episode
+//! `count`) has at most one alert not resolved. While the daemon catches up, messages are
+//! held (events without outbox rows) and later go out as one digest per channel. Every
+//! rule's latest outcome is kept in `rule_status`. [`AlertDesk`] does the operator's writes
+//! (acknowledge, test) on a connection of its own, beside a running daemon.
 
 use std::borrow::BorrowMut;
 use std::collections::HashSet;
