@@ -21,7 +21,7 @@ use tidemark::app::alerting::{deliver_due, delivery_client};
 use tidemark::app::writer;
 use tidemark::store::alerts::{Cleared, Delivery, Evaluation, Finding, Lifecycle, MessageFacts};
 
-use crate::support::{Env, config_toml, count, day, open_store, source_toml, write_config};
+use crate::support::{Env, Mailbox, config_toml, count, day, open_store, source_toml, write_config};
 
 const SECRET_ENV: &str = "TIDEMARK_IT_ALERT_HOOK_SECRET";
 const SECRET: &str = "it-secret-4f1c";
@@ -437,26 +437,6 @@ async fn webhook_is_signed_keyed_and_retried_through_timeout_and_500() {
     }
     let bodies: Vec<String> = requests.into_iter().map(|r| r.2).collect();
     assert_private(&bodies, &patient_tokens(&env));
-}
-
-/// An SMTP handler that keeps every message it receives.
-#[derive(Clone, Default)]
-struct Mailbox {
-    current: Arc<Mutex<Vec<u8>>>,
-    messages: Arc<Mutex<Vec<String>>>,
-}
-
-impl mailin_embedded::Handler for Mailbox {
-    fn data(&mut self, buf: &[u8]) -> std::io::Result<()> {
-        self.current.lock().unwrap().extend_from_slice(buf);
-        Ok(())
-    }
-
-    fn data_end(&mut self) -> mailin_embedded::Response {
-        let bytes = std::mem::take(&mut *self.current.lock().unwrap());
-        self.messages.lock().unwrap().push(String::from_utf8_lossy(&bytes).into_owned());
-        mailin_embedded::response::OK
-    }
 }
 
 /// Undoes quoted-printable soft breaks and escapes, enough to read lettre's parts.

@@ -19,27 +19,7 @@ use tidemark::app::daemon::{self, Hooks};
 use tidemark::config::Config;
 use tokio_util::sync::CancellationToken;
 
-use crate::support::{count, open_ro};
-
-/// An SMTP handler that keeps every message it receives.
-#[derive(Clone, Default)]
-struct Mailbox {
-    current: Arc<Mutex<Vec<u8>>>,
-    messages: Arc<Mutex<Vec<String>>>,
-}
-
-impl mailin_embedded::Handler for Mailbox {
-    fn data(&mut self, buf: &[u8]) -> std::io::Result<()> {
-        self.current.lock().unwrap().extend_from_slice(buf);
-        Ok(())
-    }
-
-    fn data_end(&mut self) -> mailin_embedded::Response {
-        let bytes = std::mem::take(&mut *self.current.lock().unwrap());
-        self.messages.lock().unwrap().push(String::from_utf8_lossy(&bytes).into_owned());
-        mailin_embedded::response::OK
-    }
-}
+use crate::support::{Mailbox, count, open_ro};
 
 async fn receive(State(bodies): State<Arc<Mutex<Vec<String>>>>, body: Bytes) -> StatusCode {
     bodies.lock().unwrap().push(String::from_utf8_lossy(&body).into_owned());

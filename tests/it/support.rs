@@ -239,3 +239,23 @@ pub fn proc_status_kib(pid: u32, key: &str) -> Option<u64> {
     let line = status.lines().find(|l| l.strip_prefix(key).is_some_and(|rest| rest.starts_with(':')))?;
     line.split_whitespace().nth(1)?.parse().ok()
 }
+
+/// A real SMTP server's handler (mailin-embedded) that keeps every message it receives.
+#[derive(Clone, Default)]
+pub struct Mailbox {
+    current: std::sync::Arc<std::sync::Mutex<Vec<u8>>>,
+    pub messages: std::sync::Arc<std::sync::Mutex<Vec<String>>>,
+}
+
+impl mailin_embedded::Handler for Mailbox {
+    fn data(&mut self, buf: &[u8]) -> std::io::Result<()> {
+        self.current.lock().unwrap().extend_from_slice(buf);
+        Ok(())
+    }
+
+    fn data_end(&mut self) -> mailin_embedded::Response {
+        let bytes = std::mem::take(&mut *self.current.lock().unwrap());
+        self.messages.lock().unwrap().push(String::from_utf8_lossy(&bytes).into_owned());
+        mailin_embedded::response::OK
+    }
+}
