@@ -31,8 +31,7 @@ pub fn payload(facts: &MessageFacts, dashboard_base: &str, small_cell_max: u32) 
     if let Value::Object(map) = &mut figures {
         for key in CASE_COUNT_FIGURES {
             if let Some(n) = map.get(key).and_then(Value::as_f64)
-                && n >= 1.0
-                && n <= f64::from(small_cell_max)
+                && crate::alert::rules::is_small_cell(n, small_cell_max)
             {
                 map.insert(key.to_string(), json!(crate::alert::rules::cell(n, small_cell_max)));
             }

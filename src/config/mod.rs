@@ -342,7 +342,7 @@ fn build_alert_settings(
 ) -> AlertSettings {
     use alerting::duration_or;
     let d = AlertSettings::default();
-    let settings = AlertSettings {
+    let mut settings = AlertSettings {
         resend_after: duration_or(
             raw.resend_after.as_deref(),
             "alert.resend_after",
@@ -364,7 +364,6 @@ fn build_alert_settings(
         digest_wait: duration_or(raw.digest_wait.as_deref(), "alert.digest_wait", d.digest_wait, problems),
         rules: rule_params::build(&raw.rules, problems, warnings),
     };
-    let mut settings = settings;
     settings.rules.count.small_cell_max = settings.small_cell_max;
     if settings.retry_base.is_zero() {
         problems.push("alert.retry_base: must be more than zero".into());

@@ -6,7 +6,7 @@
 
 use chrono::{Days, NaiveDate};
 
-use super::{above, cases, cell, subject_suffix, whole_or_decimal};
+use super::{above, cases, cell, counted, subject_suffix, whole_or_decimal};
 use crate::alert::{Figure, Outcome, Rule, Severity, Signal};
 use crate::analysis::aberration::{self, C2_GUARD_DAYS, SHORT_BASELINE_DAYS, Standardised};
 use crate::config::rules::{CountCusumParams, CountFamily, CountParams};
@@ -105,12 +105,11 @@ pub fn count_episode(outcomes: Vec<(Rule, Outcome)>) -> Option<(Rule, Outcome)> 
 fn too_short(input: &CountInput, rule: Rule, params: &CountParams) -> Option<Outcome> {
     let (needed, known) = (days_needed(rule, params), input.daily_counts.len());
     (known < needed).then(|| {
-        Outcome::NotEnoughData(format!("needs {needed} known days of counts, has {}", counted_days(known)))
+        Outcome::NotEnoughData(format!(
+            "needs {needed} known days of counts, has {}",
+            counted(known as f64, "day", "days")
+        ))
     })
-}
-
-fn counted_days(n: usize) -> String {
-    if n == 1 { "1 day".into() } else { format!("{n} days") }
 }
 
 /// `NotEnoughData` when the baseline mean is under the minimum expected count.

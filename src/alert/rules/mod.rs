@@ -57,19 +57,20 @@ pub fn counted(n: f64, singular: &str, plural: &str) -> String {
     format!("{} {noun}", whole_or_decimal(n))
 }
 
+/// Whether a case count is a small cell: from 1 to `small_cell_max` (0 turns it off).
+pub fn is_small_cell(n: f64, small_cell_max: u32) -> bool {
+    n >= 1.0 && n <= f64::from(small_cell_max)
+}
+
 /// A case count as a message may release it: a range ("1-4") when it is from 1 to
 /// `small_cell_max` (small-cell suppression), else [`whole_or_decimal`]. 0 turns it off.
 pub fn cell(n: f64, small_cell_max: u32) -> String {
-    if n >= 1.0 && n <= f64::from(small_cell_max) {
-        format!("1-{small_cell_max}")
-    } else {
-        whole_or_decimal(n)
-    }
+    if is_small_cell(n, small_cell_max) { format!("1-{small_cell_max}") } else { whole_or_decimal(n) }
 }
 
 /// "1 case", "12 cases", or "1-4 cases" under small-cell suppression.
 pub fn cases(n: f64, small_cell_max: u32) -> String {
-    if n >= 1.0 && n <= f64::from(small_cell_max) {
+    if is_small_cell(n, small_cell_max) {
         format!("{} cases", cell(n, small_cell_max))
     } else {
         counted(n, "case", "cases")
