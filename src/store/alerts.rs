@@ -579,27 +579,25 @@ fn resend_due(last_sent_at: Option<&str>, life: &Lifecycle) -> bool {
 /// or not), `(item, false)` for those opened earlier that resolved while held. Alerts only
 /// re-sent or escalated while held are in the digest's still-open list.
 fn held_alerts(tx: &Transaction<'_>) -> Result<Vec<(DigestItem, bool)>, StoreError> {
+    // Per alert with held events: whether one of them opened it, and whether one resolved it.
+    let mut stmt = tx.prepare(
+        "SELECT alert_id, max(kind = 'opened'), max(kind = 'resolved') FROM alert_event
+         WHERE held = 1 AND digest_event_id IS NULL AND alert_id IS NOT NULL GROUP BY alert_id",
+    )?;
+    let kinds: std::collections::HashMap<i64, (bool, bool)> =
+        stmt.query_map([], |r| Ok((r.get(0)?, (r.get(1)?, r.get(2)?))))?.collect::<Result<_, _>>()?;
     let items = digest_items(
         tx,
         "WHERE a.alert_id IN (SELECT alert_id FROM alert_event WHERE held = 1 AND digest_event_id IS NULL)",
     )?;
-    let mut out = Vec::new();
-    for item in items {
-        let held_kind = |kind: &str| -> rusqlite::Result<bool> {
-            tx.query_row(
-                "SELECT EXISTS (SELECT 1 FROM alert_event WHERE alert_id = ?1 AND held = 1
-                     AND digest_event_id IS NULL AND kind = ?2)",
-                params![item.alert_id, kind],
-                |r| r.get(0),
-            )
-        };
-        if held_kind("opened")? {
-            out.push((item, true));
-        } else if held_kind("resolved")? {
-            out.push((item, false));
-        }
-    }
-    Ok(out)
+    Ok(items
+        .into_iter()
+        .filter_map(|item| match kinds.get(&item.alert_id) {
+            Some((true, _)) => Some((item, true)),
+            Some((false, true)) => Some((item, false)),
+            _ => None,
+        })
+        .collect())
 }
 
 /// Alerts in digest order (critical first, then by id), filtered by `filter` (a WHERE
