@@ -31,11 +31,13 @@ fn main() {
         "| detector | scenario | detection rate | false alarms / 100 in-control days | median days to detection |"
     );
     println!("|---|---|---|---|---|");
-    counts(20.0, None);
-    counts(20.0, Some(10.0));
-    lags();
-    missingness();
-    volume();
+    if std::env::var_os("DETECTORS_ONLY_DEFAULT_SET").is_none() {
+        counts(20.0, None);
+        counts(20.0, Some(10.0));
+        lags();
+        missingness();
+        volume();
+    }
     default_count_rules();
     eprintln!(
         "{RUNS} series per scenario, {DAYS} days each; done in {:.1} s",
@@ -67,14 +69,17 @@ fn counts(mean: f64, dispersion: Option<f64>) {
         None => format!("Poisson mean {mean}"),
         Some(size) => format!("NB mean {mean} size {size}"),
     };
-    let poisson = CountCusumParams::default();
+    let poisson =
+        CountCusumParams { family: CountFamily::Poisson, follow_trend: false, ..CountCusumParams::default() };
     let nb = CountCusumParams { family: CountFamily::NegativeBinomial, ..poisson };
-    let detectors: [(&str, Rule, CountParams); 5] = [
-        ("z recent week (C1)", Rule::CountZRecent, CountParams::default()),
-        ("z guarded week (C2)", Rule::CountZGuarded, CountParams::default()),
-        ("z guarded 3-day (C3)", Rule::CountZGuarded3Day, CountParams::default()),
-        ("Poisson CUSUM", Rule::CountCusum, CountParams { cusum: Some(poisson), ..only_cusum() }),
-        ("NB CUSUM", Rule::CountCusum, CountParams { cusum: Some(nb), ..only_cusum() }),
+    let z = z_rules();
+    let detectors: [(&str, Rule, CountParams); 6] = [
+        ("z recent week (C1)", Rule::CountZRecent, z),
+        ("z guarded week (C2)", Rule::CountZGuarded, z),
+        ("z guarded 3-day (C3)", Rule::CountZGuarded3Day, z),
+        ("Poisson CUSUM (level)", Rule::CountCusum, CountParams { cusum: Some(poisson), ..only_cusum() }),
+        ("NB CUSUM (level)", Rule::CountCusum, CountParams { cusum: Some(nb), ..only_cusum() }),
+        ("NB CUSUM following trend (default)", Rule::CountCusum, CountParams::default()),
     ];
     for multiplier in [1.5, 2.0, 3.0] {
         let mut rng = StdRng::seed_from_u64(1_000 + (multiplier * 10.0) as u64);
@@ -246,15 +251,32 @@ fn default_count_rules() {
     }
 }
 
+/// The three short-baseline z-score rules (C1, C2, C3) without the CUSUM.
+fn z_rules() -> CountParams {
+    CountParams {
+        z_recent: true,
+        z_guarded: true,
+        z_guarded_3day: true,
+        cusum: None,
+        ..CountParams::default()
+    }
+}
+
 /// The default rule set, and variants to compare it with.
 fn rule_sets() -> Vec<(&'static str, CountParams)> {
     let default = CountParams::default();
+    let published = z_rules();
+    let nb = default.cusum.expect("the default count rules include the CUSUM");
     vec![
-        ("default (C1 + C2 + C3)", default),
-        ("C1 + C2", CountParams { z_guarded_3day: false, ..default }),
-        ("C2 + C3, C3 threshold 3", {
-            let mut p = CountParams { z_recent: false, ..default };
-            p.z.guarded_3day_threshold = 3.0;
+        ("default (NB CUSUM following trend, ARL 365)", default),
+        (
+            "NB CUSUM on the level (no trend)",
+            CountParams { cusum: Some(CountCusumParams { follow_trend: false, ..nb }), ..default },
+        ),
+        ("C1 + C2 + C3 (earlier default)", published),
+        ("C2 (threshold 4) + default", {
+            let mut p = CountParams { z_guarded: true, ..default };
+            p.z.guarded_threshold = 4.0;
             p
         }),
     ]

@@ -4,6 +4,7 @@
 //! values and problems out. Randomness takes an explicit seed so results are reproducible.
 
 pub mod aberration;
+pub mod arl;
 pub mod backtest;
 pub mod change;
 pub mod delay;

@@ -209,13 +209,13 @@ pub fn snapshot_pass(
                 latest_new: outcome.rows_new,
                 baseline_new: applied.iter().map(|v| v.rows_new as u64).collect(),
             };
-            pass.add(
-                Rule::VolumeDrop,
-                &source.name,
-                "",
-                rules::volume_drop(&input, &params.volume),
-                Some(snapshot_id),
-            );
+            let whole = rules::volume_drop(&input, &params.volume);
+            let whole_dropped = whole.signal().is_some();
+            pass.add(Rule::VolumeDrop, &source.name, "", whole, Some(snapshot_id));
+            if !whole_dropped {
+                let baseline: Vec<SnapshotId> = applied.iter().map(|v| v.snapshot_id).collect();
+                stratum_volumes(&reader, source_id, snapshot_id, &baseline, &source.name, config, &mut pass)?;
+            }
         }
         if params.enabled("missingness_jump") {
             missingness(&reader, source_id, snapshot_id, &source.name, config, &mut pass)?;
@@ -376,6 +376,43 @@ fn lags(
         let daily_lags = all_days.iter().map(|d| by_day.get(d).cloned().unwrap_or_default()).collect();
         let input = LagInput { source: source.to_string(), subject: subject.clone(), daily_lags };
         pass.add(Rule::LagJump, source, &subject, rules::lag_jump(&input, p), Some(snapshot_id));
+    }
+    Ok(())
+}
+
+/// `volume_drop` per jurisdiction, with its own (stricter) fraction and minimum, from the new
+/// records of each stratum in the latest snapshot and the baseline snapshots (a stratum with
+/// no row in a snapshot had no new records in it). Not run when the whole source dropped, so
+/// one broken extract is one page.
+fn stratum_volumes(
+    reader: &Reader,
+    source_id: SourceId,
+    snapshot_id: SnapshotId,
+    baseline: &[SnapshotId],
+    source: &str,
+    config: &Config,
+    pass: &mut Pass,
+) -> Result<()> {
+    let params = config.alerting.rules.volume.for_stratum();
+    let baseline = &baseline[baseline.len().saturating_sub(params.baseline_snapshots)..];
+    let mut new_records: BTreeMap<String, BTreeMap<SnapshotId, u64>> = BTreeMap::new();
+    for row in reader.lag_rows(source_id, snapshot_id, true)? {
+        if row.stratum_kind == "all"
+            || (row.snapshot_id != snapshot_id && !baseline.contains(&row.snapshot_id))
+        {
+            continue;
+        }
+        let slot = new_records.entry(row.stratum).or_default().entry(row.snapshot_id).or_default();
+        *slot = (*slot).max(row.new_records.max(0) as u64);
+    }
+    for (subject, by_snapshot) in new_records {
+        let input = VolumeInput {
+            source: source.to_string(),
+            subject: subject.clone(),
+            latest_new: by_snapshot.get(&snapshot_id).copied().unwrap_or(0),
+            baseline_new: baseline.iter().map(|id| by_snapshot.get(id).copied().unwrap_or(0)).collect(),
+        };
+        pass.add(Rule::VolumeDrop, source, &subject, rules::volume_drop(&input, &params), Some(snapshot_id));
     }
     Ok(())
 }

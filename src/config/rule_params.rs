@@ -6,7 +6,8 @@
 use std::collections::{BTreeMap, BTreeSet};
 
 use crate::config::rules::{
-    CountFamily, CountParams, LagParams, MissingnessParams, StalenessParams, VolumeParams,
+    CountCusumParams, CountFamily, CountParams, CusumInterval, LagParams, MissingnessParams, StalenessParams,
+    VolumeParams,
 };
 
 /// The rule tables `[alert.rules.*]` accepts.
@@ -161,7 +162,16 @@ fn volume(keys: &mut Keys<'_>, p: &mut VolumeParams) {
     keys.float("drop_fraction", &mut p.drop_fraction);
     keys.float("min_baseline_median", &mut p.min_baseline_median);
     keys.count("min_baseline_snapshots", &mut p.min_baseline_snapshots);
-    keys.only(&["baseline_snapshots", "drop_fraction", "min_baseline_median", "min_baseline_snapshots"]);
+    keys.float("stratum_drop_fraction", &mut p.stratum_drop_fraction);
+    keys.float("stratum_min_baseline_median", &mut p.stratum_min_baseline_median);
+    keys.only(&[
+        "baseline_snapshots",
+        "drop_fraction",
+        "min_baseline_median",
+        "min_baseline_snapshots",
+        "stratum_drop_fraction",
+        "stratum_min_baseline_median",
+    ]);
 }
 
 /// Keys of `[alert.rules.count]` renamed to describe their method, accepted for one release
@@ -224,7 +234,8 @@ fn count(keys: &mut Keys<'_>, p: &mut CountParams) {
         )),
     }
     keys.float("cusum_shift_sds", &mut c.shift_sds);
-    keys.float("cusum_h_sds", &mut c.h_sds);
+    cusum_interval(keys, &mut c);
+    keys.flag("cusum_follow_trend", &mut c.follow_trend);
     keys.count("cusum_baseline_days", &mut c.baseline_days);
     p.cusum = cusum.then_some(c);
     let mut known = vec![
@@ -242,10 +253,37 @@ fn count(keys: &mut Keys<'_>, p: &mut CountParams) {
         "cusum_family",
         "cusum_shift_sds",
         "cusum_h_sds",
+        "cusum_in_control_arl_days",
+        "cusum_follow_trend",
         "cusum_baseline_days",
     ];
     known.extend(DEPRECATED_COUNT_KEYS.iter().map(|(old, _)| *old));
     keys.only(&known);
+}
+
+/// `cusum_in_control_arl_days` (calibrated interval) or `cusum_h_sds` (fixed); not both.
+fn cusum_interval(keys: &mut Keys, c: &mut CountCusumParams) {
+    let has = |key: &str| keys.table.contains_key(key);
+    if has("cusum_h_sds") && has("cusum_in_control_arl_days") {
+        keys.problems.push(format!(
+            "{}: give cusum_in_control_arl_days (a calibrated interval) or cusum_h_sds (a fixed one), not both",
+            keys.label
+        ));
+        return;
+    }
+    if has("cusum_h_sds") {
+        let mut h_sds = 3.0;
+        keys.float("cusum_h_sds", &mut h_sds);
+        c.interval = CusumInterval::FixedSds(h_sds);
+    } else if has("cusum_in_control_arl_days") {
+        let mut days = 365.0;
+        keys.float("cusum_in_control_arl_days", &mut days);
+        if days < 10.0 {
+            keys.problems.push(format!("{}.cusum_in_control_arl_days: must be at least 10 days", keys.label));
+            return;
+        }
+        c.interval = CusumInterval::Calibrated { in_control_arl_days: days };
+    }
 }
 
 #[cfg(test)]
@@ -267,22 +305,48 @@ mod tests {
         assert!(problems[1].contains("alert.rules.nope: unknown rule"));
     }
 
+    /// The CUSUM's interval is calibrated (to the given run length) or fixed, not both.
+    #[test]
+    fn cusum_interval_is_calibrated_or_fixed() {
+        let parse = |text: &str| {
+            let tables: BTreeMap<String, toml::Table> = toml::from_str(text).unwrap();
+            let (mut problems, mut warnings) = (Vec::new(), Vec::new());
+            let p = build(&tables, &mut problems, &mut warnings);
+            (p.count.cusum, problems)
+        };
+        let (cusum, problems) =
+            parse("[count]\ncusum_in_control_arl_days = 180\ncusum_follow_trend = false\n");
+        let cusum = cusum.unwrap();
+        assert!(problems.is_empty());
+        assert_eq!(cusum.interval, CusumInterval::Calibrated { in_control_arl_days: 180.0 });
+        assert!(!cusum.follow_trend);
+        let (cusum, _) = parse("[count]\ncusum_h_sds = 4\n");
+        assert_eq!(cusum.unwrap().interval, CusumInterval::FixedSds(4.0));
+        let (_, problems) = parse("[count]\ncusum_h_sds = 4\ncusum_in_control_arl_days = 180\n");
+        assert!(problems[0].contains("not both"), "{problems:?}");
+        let (cusum, problems) = parse("[count]\ncusum = false\n");
+        assert!(cusum.is_none() && problems.is_empty());
+    }
+
     /// The count rules' old key names still work for one release, each with a warning that
     /// names the new key; giving both names is a problem.
     #[test]
     fn old_count_keys_work_with_a_deprecation_warning() {
-        let text = "[count]\nc1 = false\nc3_threshold = 2.5\nz_guarded_threshold = 4.0\n";
+        let text =
+            "[count]\nc1 = false\nc2 = true\nc3 = true\nc3_threshold = 2.5\nz_guarded_threshold = 4.0\n";
         let tables: BTreeMap<String, toml::Table> = toml::from_str(text).unwrap();
         let (mut problems, mut warnings) = (Vec::new(), Vec::new());
         let p = build(&tables, &mut problems, &mut warnings);
         assert!(problems.is_empty(), "{problems:?}");
         assert!(!p.count.z_recent && p.count.z_guarded && p.count.z_guarded_3day);
         assert_eq!((p.count.z.guarded_3day_threshold, p.count.z.guarded_threshold), (2.5, 4.0));
-        assert_eq!(warnings.len(), 2, "{warnings:?}");
+        assert_eq!(warnings.len(), 4, "{warnings:?}");
         assert!(
             warnings[0].contains("alert.rules.count.c1 is deprecated") && warnings[0].contains("z_recent")
         );
-        assert!(warnings[1].contains("c3_threshold") && warnings[1].contains("z_guarded_3day_threshold"));
+        assert!(
+            warnings.iter().any(|w| w.contains("c3_threshold") && w.contains("z_guarded_3day_threshold"))
+        );
 
         let both: BTreeMap<String, toml::Table> =
             toml::from_str("[count]\nc2 = true\nz_guarded = true\n").unwrap();

@@ -97,6 +97,26 @@ pub struct VolumeParams {
     pub min_baseline_median: f64,
     /// Smallest number of baseline snapshots. Default 3.
     pub min_baseline_snapshots: usize,
+    /// Per jurisdiction: alarm when its new records fall below this fraction of its baseline
+    /// median. Default 0.1: a jurisdiction whose feed broke goes (nearly) silent, while a
+    /// falling epidemic or noise does not lose 90% of a jurisdiction's reports in one snapshot
+    /// (Poisson: P(X <= 1) is 0.0005 at a mean of 10). A halving in one jurisdiction is
+    /// ordinary, so the whole-source fraction would page on noise.
+    pub stratum_drop_fraction: f64,
+    /// Per jurisdiction: smallest baseline median of new records for the rule to decide.
+    /// Default 10.
+    pub stratum_min_baseline_median: f64,
+}
+
+impl VolumeParams {
+    /// The parameters of the per-jurisdiction check.
+    pub fn for_stratum(&self) -> VolumeParams {
+        VolumeParams {
+            drop_fraction: self.stratum_drop_fraction,
+            min_baseline_median: self.stratum_min_baseline_median,
+            ..*self
+        }
+    }
 }
 
 impl Default for VolumeParams {
@@ -106,6 +126,8 @@ impl Default for VolumeParams {
             drop_fraction: 0.5,
             min_baseline_median: 20.0,
             min_baseline_snapshots: 3,
+            stratum_drop_fraction: 0.1,
+            stratum_min_baseline_median: 10.0,
         }
     }
 }
@@ -134,6 +156,18 @@ pub enum CountFamily {
     NegativeBinomial,
 }
 
+/// The decision interval of the count CUSUM.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum CusumInterval {
+    /// Chosen for each day's baseline so that the chart, run on counts distributed as the
+    /// baseline says (Poisson, or negative binomial for `NegativeBinomial`), raises a false
+    /// alarm once in this many days on average (exact Markov chain on a lattice; see
+    /// `analysis::arl`). 365: one false alarm a year per series when nothing changes.
+    Calibrated { in_control_arl_days: f64 },
+    /// A fixed number of baseline sds (`h = h_sds * sd0` cases), as in earlier releases.
+    FixedSds(f64),
+}
+
 /// Parameters of the count CUSUM (an option beside the short-baseline z-score rules).
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct CountCusumParams {
@@ -145,25 +179,30 @@ pub struct CountCusumParams {
     pub guard_days: usize,
     /// The rise to detect, in baseline sds: `mu1 = mu0 + shift_sds * sd0`. Default 2.
     pub shift_sds: f64,
-    /// Decision interval in baseline sds (`h = h_sds * sd0` cases). Default 3: with a 2-sd
-    /// shift this is the standardised CUSUM k = 1, h = 3 whose in-control ARL for normal data
-    /// is about 2,000 days (Siegmund's approximation); count skewness and an estimated baseline
-    /// bring it down (see the detector benchmark for the measured false-alarm rate).
-    pub h_sds: f64,
+    /// How the decision interval `h` is set. Default: calibrated to an in-control average run
+    /// length of 365 days.
+    pub interval: CusumInterval,
     /// Floor of the baseline mean (cases per day). Default 0.5, so a run of zeros still gives
     /// a finite reference value.
     pub min_mean: f64,
+    /// Project the baseline mean to the day tested along the baseline's own log-linear growth
+    /// (see `aberration::fit_trend`), so a steadily growing or falling series is compared with
+    /// where its trend has taken it rather than with its level two weeks earlier; the
+    /// projection's sampling variance is added to the count variance the chart is designed
+    /// for. Default true (with the `NegativeBinomial` family).
+    pub follow_trend: bool,
 }
 
 impl Default for CountCusumParams {
     fn default() -> CountCusumParams {
         CountCusumParams {
-            family: CountFamily::Poisson,
+            family: CountFamily::NegativeBinomial,
             baseline_days: 28,
             guard_days: 2,
             shift_sds: 2.0,
-            h_sds: 3.0,
+            interval: CusumInterval::Calibrated { in_control_arl_days: 365.0 },
             min_mean: 0.5,
+            follow_trend: true,
         }
     }
 }
@@ -200,13 +239,13 @@ impl Default for CountParams {
     fn default() -> CountParams {
         CountParams {
             z: ShortBaselineParams::default(),
-            z_recent: true,
-            z_guarded: true,
-            z_guarded_3day: true,
+            z_recent: false,
+            z_guarded: false,
+            z_guarded_3day: false,
             min_expected: 1.0,
             resolve_after: 14,
             small_cell_max: 4,
-            cusum: None,
+            cusum: Some(CountCusumParams::default()),
         }
     }
 }

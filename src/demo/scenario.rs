@@ -63,7 +63,7 @@ pub fn injections(days: u32) -> Vec<Injection> {
             feed: "county-reports",
             jurisdiction: "Brackwater",
             kind: "reporting lag jump",
-            rules: &["lag_jump"],
+            rules: &["lag_jump", "volume_drop"],
             subject: "Brackwater",
         },
         Injection {

@@ -103,9 +103,11 @@ fn patient_tokens(env: &Env) -> Vec<String> {
 }
 
 /// Fails if any message contains a patient token as a whole token (a figure 0.47 is not
-/// the age 47; the date 2026-02-01 is found inside 2026-02-01T00:00:00Z).
+/// the age 47; the date 2026-02-01 is found inside 2026-02-01T00:00:00Z; the minute of a
+/// time 21:47:05 is not the age 47 either).
 fn assert_private(messages: &[String], tokens: &[String]) {
     for message in messages {
+        let message = &join_clock_times(message);
         let words: Vec<&str> =
             message.split(|c: char| !(c.is_ascii_alphanumeric() || c == '-' || c == '.')).collect();
         for token in tokens {
@@ -116,6 +118,18 @@ fn assert_private(messages: &[String], tokens: &[String]) {
             );
         }
     }
+}
+
+/// A colon between two digits (a clock time) becomes a letter, so a time is one word.
+fn join_clock_times(message: &str) -> String {
+    let chars: Vec<char> = message.chars().collect();
+    let digit = |i: Option<&char>| i.is_some_and(|c| c.is_ascii_digit());
+    (0..chars.len())
+        .map(|i| {
+            let clock = chars[i] == ':' && i > 0 && digit(chars.get(i - 1)) && digit(chars.get(i + 1));
+            if clock { 'h' } else { chars[i] }
+        })
+        .collect()
 }
 
 #[test]

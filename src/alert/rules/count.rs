@@ -9,7 +9,8 @@ use chrono::{Days, NaiveDate};
 use super::{above, cases, cell, counted, subject_suffix, whole_or_decimal};
 use crate::alert::{Figure, Outcome, Rule, Severity, Signal};
 use crate::analysis::aberration::{self, C2_GUARD_DAYS, SHORT_BASELINE_DAYS, Standardised};
-use crate::config::rules::{CountCusumParams, CountFamily, CountParams};
+use crate::analysis::arl;
+use crate::config::rules::{CountCusumParams, CountFamily, CountParams, CusumInterval};
 
 /// Input of [`count_aberration`]: daily counts by report date for one jurisdiction, oldest
 /// first, from the first day the source has data for, the day to test last.
@@ -217,21 +218,36 @@ pub fn count_cusum_references(counts: &[f64], params: &CountCusumParams) -> Vec<
 fn cusum_reference(counts: &[f64], t: usize, params: &CountCusumParams) -> Option<(f64, f64)> {
     let end = t.checked_sub(params.guard_days + 1)?;
     let start = (end + 1).checked_sub(params.baseline_days)?;
-    let (mean, sd) = aberration::mean_and_sd(&counts[start..=end]);
-    let mu0 = mean.max(params.min_mean);
+    let baseline = &counts[start..=end];
+    let (mean, sd) = aberration::mean_and_sd(baseline);
+    let (expected, ratio, uncertainty) = if params.follow_trend {
+        let lead = (params.baseline_days as f64 - 1.0) / 2.0 + params.guard_days as f64 + 1.0;
+        let fit = aberration::fit_trend(baseline);
+        (mean * fit.projection(lead), fit.dispersion, fit.projection_variance(lead))
+    } else {
+        (mean, if mean > 0.0 { sd * sd / mean } else { 1.0 }, 0.0)
+    };
+    let mu0 = expected.max(params.min_mean);
     let variance = match params.family {
         CountFamily::Poisson => mu0,
-        CountFamily::NegativeBinomial => (sd * sd).max(mu0),
+        CountFamily::NegativeBinomial => ratio.max(1.0) * mu0 + uncertainty * mu0 * mu0,
     };
-    let sd0 = variance.sqrt();
-    let mu1 = mu0 + params.shift_sds * sd0;
-    let k = if variance > mu0 * (1.0 + 1e-9) {
-        let size = mu0 * mu0 / (variance - mu0);
-        aberration::negative_binomial_reference_value(mu0, mu1, size)
-    } else {
-        aberration::poisson_reference_value(mu0, mu1)
-    };
-    Some((k, params.h_sds * sd0))
+    match params.interval {
+        CusumInterval::Calibrated { in_control_arl_days } => {
+            let design = arl::design_count_cusum(mu0, variance, params.shift_sds, in_control_arl_days);
+            Some((design.reference, design.interval))
+        }
+        CusumInterval::FixedSds(h_sds) => {
+            let sd0 = variance.sqrt();
+            let mu1 = mu0 + params.shift_sds * sd0;
+            let k = if variance > mu0 * (1.0 + 1e-9) {
+                aberration::negative_binomial_reference_value(mu0, mu1, mu0 * mu0 / (variance - mu0))
+            } else {
+                aberration::poisson_reference_value(mu0, mu1)
+            };
+            Some((k, h_sds * sd0))
+        }
+    }
 }
 
 /// The CUSUM over the whole known series (the caller passes up to its configured history),

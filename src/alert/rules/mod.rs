@@ -26,7 +26,8 @@ mod staleness;
 mod volume;
 
 pub use crate::config::rules::{
-    CountCusumParams, CountFamily, CountParams, LagParams, MissingnessParams, StalenessParams, VolumeParams,
+    CountCusumParams, CountFamily, CountParams, CusumInterval, LagParams, MissingnessParams, StalenessParams,
+    VolumeParams,
 };
 pub use calibration::*;
 pub use count::*;

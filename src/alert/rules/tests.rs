@@ -170,6 +170,28 @@ fn volume_drop_compares_with_the_baseline_median() {
     assert!(matches!(volume_drop(&input(0, &[40, 40]), &params), Outcome::NotEnoughData(_)));
 }
 
+/// Per jurisdiction only (near) silence pages: a halving of 12 new records is noise for one
+/// jurisdiction, none at all is a broken feed; under a median of 10 it does not decide.
+#[test]
+fn volume_drop_per_jurisdiction_pages_on_silence_only() {
+    let input = |latest_new, baseline_new: &[u64]| VolumeInput {
+        source: "county".into(),
+        subject: "Brackwater".into(),
+        latest_new,
+        baseline_new: baseline_new.to_vec(),
+    };
+    let stratum = VolumeParams::default().for_stratum();
+    let week = [12, 10, 14, 11, 13, 12, 12];
+    let halving = VolumeParams { min_baseline_median: 10.0, ..VolumeParams::default() };
+    assert!(volume_drop(&input(5, &week), &halving).signal().is_some());
+    assert!(volume_drop(&input(5, &week), &stratum).is_clear());
+    let silent = volume_drop(&input(0, &week), &stratum);
+    let signal = silent.signal().unwrap();
+    assert_eq!((signal.subject.as_str(), signal.severity), ("Brackwater", Severity::Critical));
+    assert!(signal.summary.starts_with("county (Brackwater): 0 new records"), "{}", signal.summary);
+    assert!(matches!(volume_drop(&input(0, &[6; 7]), &stratum), Outcome::NotEnoughData(_)));
+}
+
 fn staleness(hours_since: Option<i64>, failures: u32) -> StalenessInput {
     let now = Utc.with_ymd_and_hms(2026, 3, 10, 12, 0, 0).unwrap();
     StalenessInput {
@@ -228,9 +250,26 @@ fn outcome(outcomes: &[(Rule, Outcome)], rule: Rule) -> &Outcome {
     &outcomes.iter().find(|(r, _)| *r == rule).unwrap().1
 }
 
+/// The three short-baseline z-score rules alone (off by default; the default count rule is
+/// the calibrated CUSUM), with the Poisson sd floor.
+fn z_rules() -> CountParams {
+    CountParams {
+        z_recent: true,
+        z_guarded: true,
+        z_guarded_3day: true,
+        cusum: None,
+        ..CountParams::default()
+    }
+}
+
+/// A Poisson count CUSUM on the baseline's level (no trend), calibrated as by default.
+fn poisson_level_cusum() -> CountCusumParams {
+    CountCusumParams { family: CountFamily::Poisson, follow_trend: false, ..CountCusumParams::default() }
+}
+
 /// The count rules computing the published statistics (no Poisson sd floor).
 fn published() -> CountParams {
-    let mut params = CountParams::default();
+    let mut params = z_rules();
     params.z.poisson_floor = false;
     params
 }
@@ -276,8 +315,7 @@ fn count_messages_state_what_was_tested() {
     let mut quiet = vec![1.0, 2.0, 1.0, 1.0, 2.0, 1.0, 1.0];
     quiet.push(9.0);
     let one = CountInput { daily_counts: quiet, last_day: march(8), ..counts_through(8) };
-    let signal =
-        outcome(&count_aberration(&one, &CountParams::default()), Rule::CountZRecent).signal().cloned();
+    let signal = outcome(&count_aberration(&one, &z_rules()), Rule::CountZRecent).signal().cloned();
     assert!(signal.unwrap().summary.contains("9 cases reported on 2026-03-08"));
     assert_eq!(counted(1.0, "case", "cases"), "1 case");
     assert_eq!(above(10.1304, 10.1301), "10.1304 > 10.1301");
@@ -288,7 +326,7 @@ fn count_messages_state_what_was_tested() {
 /// either, so two cases after a quiet week do not page.
 #[test]
 fn count_rules_need_known_days_and_an_expected_count() {
-    let params = CountParams::default();
+    let params = z_rules();
     let short = CountInput { daily_counts: vec![0.0, 1.0, 2.0], last_day: march(3), ..counts_through(3) };
     let outcomes = count_aberration(&short, &params);
     let Outcome::NotEnoughData(why) = outcome(&outcomes, Rule::CountZRecent) else {
@@ -333,19 +371,19 @@ fn count_episode_takes_the_strongest_signal() {
 /// modest rise look extreme. A doubling of a mean of 20 still signals (z = 20 / sqrt 20).
 #[test]
 fn poisson_sd_floor_keeps_a_quiet_week_from_inflating_z() {
-    let day11 = count_aberration(&counts_through(11), &CountParams::default());
+    let day11 = count_aberration(&counts_through(11), &z_rules());
     assert!(outcome(&day11, Rule::CountZRecent).is_clear());
     let mut doubled = vec![20.0; 7];
     doubled.push(40.0);
     let input = CountInput { daily_counts: doubled, last_day: march(8), ..counts_through(8) };
-    let signal =
-        outcome(&count_aberration(&input, &CountParams::default()), Rule::CountZRecent).signal().cloned();
+    let signal = outcome(&count_aberration(&input, &z_rules()), Rule::CountZRecent).signal().cloned();
     assert!(close(signal.unwrap().observed, 20.0 / 20f64.sqrt(), 1e-12));
 }
 
 #[test]
 fn count_cusum_option_signals_a_lasting_rise() {
-    let params = CountParams { cusum: Some(CountCusumParams::default()), ..CountParams::default() };
+    let fixed = CountCusumParams { interval: CusumInterval::FixedSds(3.0), ..poisson_level_cusum() };
+    let params = CountParams { cusum: Some(fixed), ..z_rules() };
     // A week-long pattern with mean 10, so every 28-day baseline has mean exactly 10.
     let mut counts = [10.0, 12.0, 9.0, 11.0, 8.0, 10.0, 10.0].repeat(5);
     let flat = CountInput {
@@ -370,6 +408,11 @@ fn count_cusum_option_signals_a_lasting_rise() {
     let k = aberration::poisson_reference_value(10.0, 10.0 + 2.0 * 10f64.sqrt());
     assert!(close(signal.figure("reference_value").unwrap(), k, 1e-9));
     assert!(close(signal.threshold, 3.0 * 10f64.sqrt(), 1e-9));
+    // Calibrated (the default): the interval is the one whose in-control ARL is a year.
+    let calibrated = CountParams { cusum: Some(poisson_level_cusum()), ..z_rules() };
+    let signal = outcome(&count_aberration(&risen, &calibrated), Rule::CountCusum).signal().cloned().unwrap();
+    let design = crate::analysis::arl::design_count_cusum(10.0, 10.0, 2.0, 365.0);
+    assert!(close(signal.threshold, design.interval, 1e-9) && design.in_control_arl >= 365.0);
     let short = CountInput { daily_counts: vec![5.0; 20], ..risen.clone() };
     assert!(matches!(
         outcome(&count_aberration(&short, &params), Rule::CountCusum),
@@ -380,15 +423,22 @@ fn count_cusum_option_signals_a_lasting_rise() {
 #[test]
 fn negative_binomial_cusum_uses_the_overdispersed_baseline() {
     let counts: Vec<f64> = [4.0, 16.0, 7.0, 13.0, 10.0, 2.0, 18.0].repeat(5);
-    let nb = CountCusumParams { family: CountFamily::NegativeBinomial, ..CountCusumParams::default() };
+    let fixed = CountCusumParams { interval: CusumInterval::FixedSds(3.0), ..poisson_level_cusum() };
+    let nb = CountCusumParams { family: CountFamily::NegativeBinomial, ..fixed };
     let (k_nb, h_nb) = *count_cusum_references(&counts, &nb).last().unwrap();
-    let (k_p, h_p) = *count_cusum_references(&counts, &CountCusumParams::default()).last().unwrap();
+    let (k_p, h_p) = *count_cusum_references(&counts, &fixed).last().unwrap();
     // Over-dispersed baseline: the NB chart allows more noise (larger k and h) than Poisson.
     assert!(k_nb > k_p && h_nb > h_p, "{k_nb} {k_p} {h_nb} {h_p}");
     let (mean, sd) = aberration::mean_and_sd(&counts[34 - 30..34 - 2]);
     let size = mean * mean / (sd * sd - mean);
     let want = aberration::negative_binomial_reference_value(mean, mean + 2.0 * sd, size);
     assert!(close(k_nb, want, 1e-9));
+    // Calibrated to an in-control ARL of a year, the NB chart also needs a larger interval,
+    // and its reference value is the one asked for to within the chain's lattice step.
+    let calibrated = CountCusumParams { family: CountFamily::NegativeBinomial, ..poisson_level_cusum() };
+    let (k_cal, h_cal) = *count_cusum_references(&counts, &calibrated).last().unwrap();
+    let (_, h_poisson) = *count_cusum_references(&counts, &poisson_level_cusum()).last().unwrap();
+    assert!(h_cal > h_poisson && (k_cal - want).abs() < 0.1, "{k_cal} {want} {h_cal} {h_poisson}");
 }
 
 #[test]
