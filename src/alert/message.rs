@@ -57,7 +57,8 @@ pub fn payload(facts: &MessageFacts, dashboard_base: &str, small_cell_max: u32) 
     body.to_string()
 }
 
-/// The JSON payload of one channel's catch-up digest: what opened, what resolved and what is
+/// The JSON payload of one channel's digest (after a catch-up, or on the channel's digest
+/// schedule): what opened, what resolved and what is
 /// still open, each alert with its data day and its summary (small cells already written
 /// as ranges by the rules).
 pub fn digest_payload(facts: &DigestFacts, dashboard_base: &str) -> String {
@@ -79,8 +80,9 @@ pub fn digest_payload(facts: &DigestFacts, dashboard_base: &str) -> String {
             .collect()
     };
     let reopened = facts.opened.iter().filter(|i| i.resolved_as_of.is_some()).count();
+    let label = digest_label(facts.reason);
     let summary = format!(
-        "catch-up digest: {} opened ({reopened} of them resolved again), {} resolved, {} still open; \
+        "{label} digest: {} opened ({reopened} of them resolved again), {} resolved, {} still open; \
          it stands for {} held messages",
         facts.opened.len(),
         facts.resolved.len(),
@@ -90,6 +92,7 @@ pub fn digest_payload(facts: &DigestFacts, dashboard_base: &str) -> String {
     json!({
         "event_id": facts.event_id,
         "kind": "digest",
+        "reason": facts.reason,
         "channel": facts.channel,
         "summary": summary,
         "opened": items(&facts.opened),
@@ -100,6 +103,11 @@ pub fn digest_payload(facts: &DigestFacts, dashboard_base: &str) -> String {
         "caution": CAUTION,
     })
     .to_string()
+}
+
+/// How a digest names why its messages waited.
+fn digest_label(reason: &str) -> &'static str {
+    if reason == "scheduled" { "scheduled" } else { "catch-up" }
 }
 
 /// An email's subject, plain text and HTML, rendered from a payload.
@@ -188,7 +196,8 @@ fn digest_email(v: &Value) -> EmailText {
     let text = |value: &Value| value.as_str().unwrap_or("-").to_string();
     let count = |key: &str| v[key].as_array().map_or(0, Vec::len);
     let subject = format!(
-        "[tidemark digest] catch-up: {} opened, {} resolved, {} still open (needs investigation)",
+        "[tidemark digest] {}: {} opened, {} resolved, {} still open (needs investigation)",
+        digest_label(v["reason"].as_str().unwrap_or("catch_up")),
         count("opened"),
         count("resolved"),
         count("still_open")

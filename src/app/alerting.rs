@@ -19,11 +19,12 @@ use crate::alert::rules::{
     self, CountInput, HeldInput, LagInput, MissingCount, MissingnessInput, StalenessInput, VolumeInput,
 };
 use crate::alert::{self, DeliveryError, Outcome, Rule, Severity, Signal, email, message, webhook};
+use crate::config::schedule::Schedule;
 use crate::config::{Config, SourceConfig};
 use crate::model::{SnapshotId, SnapshotStatus, SourceId};
 use crate::store::alerts::{
-    AlertDesk, Cleared, Delivery, EvalOutcome, Evaluation, Finding, Lifecycle, MessageFacts, OutboxItem,
-    RuleStatus, TEST_HANDOVER,
+    AlertDesk, Cleared, Delivery, DigestFacts, EvalOutcome, Evaluation, Finding, Lifecycle, MessageFacts,
+    OutboxItem, RuleStatus, TEST_HANDOVER,
 };
 use crate::store::{OwedAnalysis, Reader, Store};
 use crate::table::{OutputFormat, Table};
@@ -128,6 +129,45 @@ pub fn channels_for(config: &Config, severity: Severity) -> Vec<&'static str> {
     channels
 }
 
+/// The channels that take an alert of this severity in their scheduled digest rather than
+/// at once: those with a `digest` schedule, for alerts below critical.
+pub fn scheduled_channels_for(config: &Config, severity: Severity) -> Vec<&'static str> {
+    if severity >= Severity::Critical {
+        return Vec::new();
+    }
+    let mut channels = Vec::new();
+    if config.email.as_ref().is_some_and(|e| e.digest.is_some()) {
+        channels.push("email");
+    }
+    if config.webhook.as_ref().is_some_and(|w| w.digest.is_some()) {
+        channels.push("webhook");
+    }
+    channels
+}
+
+/// The channels with a digest schedule, each with the severities it takes.
+fn digest_schedules(config: &Config) -> Vec<(&'static str, &Schedule, Severity)> {
+    let email = config.email.as_ref().and_then(|e| Some(("email", e.digest.as_ref()?, e.min_severity)));
+    let webhook = config.webhook.as_ref().and_then(|w| Some(("webhook", w.digest.as_ref()?, w.min_severity)));
+    email.into_iter().chain(webhook).collect()
+}
+
+/// Queues each scheduled channel's digest whose fire time has come (see
+/// `Store::flush_scheduled_digest`); returns how many were queued.
+pub fn flush_scheduled_digests(store: &mut Store, config: &Config, now: DateTime<Utc>) -> Result<usize> {
+    let base = dashboard_base(config);
+    let mut queued = 0;
+    for (channel, schedule, min_severity) in digest_schedules(config) {
+        let Some(fired) = schedule.latest_at_or_before(now) else { continue };
+        let takes = |severity: Severity| severity >= min_severity;
+        let payload = |facts: &DigestFacts| message::digest_payload(facts, &base);
+        if store.flush_scheduled_digest(channel, fired, now, &takes, &payload)? {
+            queued += 1;
+        }
+    }
+    Ok(queued)
+}
+
 /// Writes a pass through the lifecycle. While the daemon catches up (this pass's snapshot is
 /// old or has later ones waiting), and after that while held messages wait for their digest,
 /// the pass's messages are held; the first snapshot pass that is not catching up ends the
@@ -144,7 +184,8 @@ pub fn apply_pass(
     let small = config.alerting.small_cell_max;
     let payload = |facts: &MessageFacts| message::payload(facts, &base, small);
     let hold = pass.catch_up || store.digest_pending()?;
-    let delivery = Delivery { route: &route, payload: &payload, hold };
+    let scheduled = |severity: Severity| scheduled_channels_for(config, severity);
+    let delivery = Delivery { route: &route, payload: &payload, hold, scheduled: &scheduled };
     let outcome = store.apply_findings(&pass.evaluation, &life, &delivery)?;
     if hold && !pass.catch_up && pass.snapshot_id.is_some() {
         let digests = flush_digest(store, config, now)?;
@@ -527,6 +568,12 @@ pub async fn deliver_due(
     let digests = writer.run(move |store| flush_stale_digest(store, &flush_config, Utc::now())).await??;
     if digests > 0 {
         tracing::info!(digests, "held messages waited too long: digest queued");
+    }
+    let schedule_config = config.clone();
+    let scheduled =
+        writer.run(move |store| flush_scheduled_digests(store, &schedule_config, Utc::now())).await??;
+    if scheduled > 0 {
+        tracing::info!(digests = scheduled, "scheduled digest queued");
     }
     let items = writer.run(|store| store.due_outbox(Utc::now(), DELIVERY_BATCH)).await??;
     let (mut delivered, mut failed) = (0, 0);

@@ -11,6 +11,7 @@ pub mod query;
 mod raw;
 pub mod rule_params;
 pub mod rules;
+pub mod schedule;
 mod source;
 
 use std::fmt::Write as _;
@@ -21,6 +22,7 @@ use std::time::Duration;
 pub use self::alerting::{AlertSettings, QualitySettings, Severity};
 pub use self::analysis::{AGE_BAND_EDGES, AnalysisConfig, DelayEnd, TriangleSpec};
 use self::raw::RawConfig;
+use self::schedule::Schedule;
 pub use self::source::{
     AsOfRule, FolderSettings, HOLD_REMOVED_MIN, Location, SourceConfig, UrlSettings, defaults,
 };
@@ -101,6 +103,9 @@ pub struct EmailConfig {
     pub password_env: Option<String>,
     /// Only alerts at or above this severity go to this channel.
     pub min_severity: Severity,
+    /// When set, this channel takes alerts below critical as one digest at each fire time of
+    /// the schedule instead of one message each; critical ones go out at once.
+    pub digest: Option<Schedule>,
     pub timeout: Duration,
 }
 
@@ -109,6 +114,8 @@ pub struct WebhookConfig {
     pub url: String,
     pub secret_env: Option<String>,
     pub min_severity: Severity,
+    /// As for email: a digest schedule for alerts below critical.
+    pub digest: Option<Schedule>,
     pub timeout: Duration,
 }
 
@@ -174,7 +181,7 @@ impl Config {
         if let Some(email) = &self.email {
             let _ = writeln!(
                 out,
-                "email: {}:{} tls={:?} from={} to={} username={} password={} min_severity={} timeout={}ms",
+                "email: {}:{} tls={:?} from={} to={} username={} password={} min_severity={} digest={} timeout={}ms",
                 email.smtp_host,
                 email.smtp_port,
                 email.tls,
@@ -183,16 +190,18 @@ impl Config {
                 env_state(email.username_env.as_deref()),
                 env_state(email.password_env.as_deref()),
                 email.min_severity.name(),
+                email.digest.as_ref().map_or("none", |d| d.text()),
                 email.timeout.as_millis(),
             );
         }
         if let Some(webhook) = &self.webhook {
             let _ = writeln!(
                 out,
-                "webhook: {} secret={} min_severity={} timeout={}ms",
+                "webhook: {} secret={} min_severity={} digest={} timeout={}ms",
                 redact_url(&webhook.url),
                 env_state(webhook.secret_env.as_deref()),
                 webhook.min_severity.name(),
+                webhook.digest.as_ref().map_or("none", |d| d.text()),
                 webhook.timeout.as_millis()
             );
         }
@@ -426,6 +435,7 @@ fn build_email(raw: raw::RawEmail, problems: &mut Vec<String>) -> Option<EmailCo
             "alert.email.min_severity",
             problems,
         ),
+        digest: digest_schedule(raw.digest.as_deref(), "alert.email.digest", problems),
         timeout: alerting::duration_or(
             raw.timeout.as_deref(),
             "alert.email.timeout",
@@ -446,6 +456,7 @@ fn build_webhook(raw: raw::RawWebhook, problems: &mut Vec<String>) -> Option<Web
             "alert.webhook.min_severity",
             problems,
         ),
+        digest: digest_schedule(raw.digest.as_deref(), "alert.webhook.digest", problems),
         timeout: alerting::duration_or(
             raw.timeout.as_deref(),
             "alert.webhook.timeout",
@@ -455,6 +466,17 @@ fn build_webhook(raw: raw::RawWebhook, problems: &mut Vec<String>) -> Option<Web
         url: raw.url,
         secret_env: raw.secret_env,
     })
+}
+
+/// A channel's `digest` schedule, if given and valid.
+fn digest_schedule(text: Option<&str>, key: &str, problems: &mut Vec<String>) -> Option<Schedule> {
+    match Schedule::parse(text?) {
+        Ok(schedule) => Some(schedule),
+        Err(why) => {
+            problems.push(format!("{key}: {why}"));
+            None
+        }
+    }
 }
 
 /// Parses `250ms`, `90s`, `15m`, `26h`, `2d` (a whole number and one unit).

@@ -114,6 +114,7 @@ pub struct RawEmail {
     pub username_env: Option<String>,
     pub password_env: Option<String>,
     pub min_severity: Option<String>,
+    pub digest: Option<String>,
     pub timeout: Option<String>,
 }
 
@@ -123,6 +124,7 @@ pub struct RawWebhook {
     pub url: String,
     pub secret_env: Option<String>,
     pub min_severity: Option<String>,
+    pub digest: Option<String>,
     pub timeout: Option<String>,
 }
 

@@ -119,3 +119,17 @@ fn channels_default_to_warning_and_above() {
     let routed = Config::parse(&example, Path::new("/srv/tidemark/tidemark.toml")).unwrap();
     assert_eq!(routed.webhook.unwrap().min_severity, Severity::Info);
 }
+
+/// A channel's digest schedule is parsed, and a bad one names the key and the field.
+#[test]
+fn channel_digest_schedules_are_checked() {
+    let email = |digest: &str| {
+        format!(
+            "{MINIMAL}[alert.email]\nsmtp = \"127.0.0.1:25\"\nfrom = \"t@x.example\"\nto = [\"o@x.example\"]\ndigest = \"{digest}\"\n"
+        )
+    };
+    let config = Config::parse(&email("0 0 7 * * *"), Path::new("/x/t.toml")).unwrap();
+    assert_eq!(config.email.unwrap().digest.unwrap().text(), "0 0 7 * * *");
+    let err = Config::parse(&email("0 0 25 * * *"), Path::new("/x/t.toml")).unwrap_err().to_string();
+    assert!(err.contains("alert.email.digest: hour"), "{err}");
+}

@@ -109,6 +109,9 @@ pub struct Delivery<'a> {
     /// Hold the messages for a digest (the daemon is catching up on a backlog) instead of
     /// queueing them.
     pub hold: bool,
+    /// The channels of `route` that take this severity in their scheduled digest instead of
+    /// at once (channels with a `digest` schedule, below critical).
+    pub scheduled: &'a dyn Fn(Severity) -> Vec<&'static str>,
 }
 
 /// One alert as a digest lists it.
@@ -132,9 +135,12 @@ pub struct DigestFacts {
     pub event_id: i64,
     pub channel: String,
     pub at: String,
-    /// Opened while catching up (and resolved again, when `resolved_as_of` is set).
+    /// Why the messages waited: `catch_up` (a backlog) or `scheduled` (the channel's digest
+    /// schedule).
+    pub reason: &'static str,
+    /// Opened while the messages waited (and resolved again, when `resolved_as_of` is set).
     pub opened: Vec<DigestItem>,
-    /// Opened earlier, resolved while catching up.
+    /// Opened earlier, resolved while the messages waited.
     pub resolved: Vec<DigestItem>,
     /// Live now.
     pub still_open: Vec<DigestItem>,
@@ -159,6 +165,8 @@ pub struct EvalOutcome {
     pub enqueued: usize,
     /// Messages held for a digest instead.
     pub held: usize,
+    /// Messages left for a channel's scheduled digest.
+    pub scheduled: usize,
 }
 
 /// One row of `tidemark alerts`.
@@ -290,6 +298,7 @@ impl Store {
             let mut facts = DigestFacts {
                 event_id,
                 channel: channel.to_string(),
+                reason: "catch_up",
                 at: at.clone(),
                 opened: Vec::new(),
                 resolved: Vec::new(),
@@ -311,6 +320,70 @@ impl Store {
         )?;
         tx.commit()?;
         Ok(channels.len())
+    }
+
+    /// A channel's scheduled digest: when a message for `channel` has waited since `fired` or
+    /// earlier (the schedule's latest fire time), one digest event lists every waiting one
+    /// (what opened, what resolved) and every live alert the channel `takes`, is queued for
+    /// the channel, and the waiting messages point at it; one transaction. Returns whether a
+    /// digest was queued.
+    pub fn flush_scheduled_digest(
+        &mut self,
+        channel: &str,
+        fired: DateTime<Utc>,
+        now: DateTime<Utc>,
+        takes: &dyn Fn(Severity) -> bool,
+        payload: &dyn Fn(&DigestFacts) -> String,
+    ) -> Result<bool, StoreError> {
+        let tx = self.conn.transaction()?;
+        let due: bool = tx.query_row(
+            "SELECT EXISTS (SELECT 1 FROM digest_wait WHERE channel = ?1 AND digest_event_id IS NULL AND at <= ?2)",
+            params![channel, time_text(fired)],
+            |r| r.get(0),
+        )?;
+        if !due {
+            return Ok(false);
+        }
+        let waiting = waiting_alerts(
+            &tx,
+            &format!(
+                "SELECT event_id FROM digest_wait WHERE channel = {} AND digest_event_id IS NULL",
+                sql_text(channel)
+            ),
+        )?;
+        let held_messages = tx.query_row(
+            "SELECT count(*) FROM digest_wait WHERE channel = ?1 AND digest_event_id IS NULL",
+            [channel],
+            |r| r.get::<_, i64>(0),
+        )? as usize;
+        let at = time_text(now);
+        tx.execute("INSERT INTO alert_event (kind, at) VALUES ('digest', ?1)", [&at])?;
+        let event_id = tx.last_insert_rowid();
+        let live = digest_items(&tx, "WHERE a.state <> 'resolved'")?;
+        let mut facts = DigestFacts {
+            event_id,
+            channel: channel.to_string(),
+            reason: "scheduled",
+            at: at.clone(),
+            opened: Vec::new(),
+            resolved: Vec::new(),
+            still_open: live.into_iter().filter(|i| takes(i.severity)).collect(),
+            held_messages,
+        };
+        for (item, opened) in waiting {
+            if opened { facts.opened.push(item) } else { facts.resolved.push(item) }
+        }
+        tx.execute(
+            "UPDATE alert_event SET payload = ?2 WHERE event_id = ?1",
+            params![event_id, payload(&facts)],
+        )?;
+        enqueue(&tx, event_id, channel, &at)?;
+        tx.execute(
+            "UPDATE digest_wait SET digest_event_id = ?2 WHERE channel = ?1 AND digest_event_id IS NULL",
+            params![channel, event_id],
+        )?;
+        tx.commit()?;
+        Ok(true)
     }
 
     /// Acknowledges a live alert (see [`AlertDesk::ack_alert`]).
@@ -470,6 +543,14 @@ impl<C: BorrowMut<Connection>> AlertDesk<C> {
                   WHERE o.outbox_id = ?1 AND d.kind = 'digest')",
             [outbox_id],
         )?;
+        tx.execute(
+            "UPDATE alert SET state = 'notified'
+             WHERE state = 'open' AND alert_id IN
+                 (SELECT h.alert_id FROM outbox o JOIN digest_wait w ON w.digest_event_id = o.event_id
+                  JOIN alert_event h ON h.event_id = w.event_id
+                  WHERE o.outbox_id = ?1)",
+            [outbox_id],
+        )?;
         tx.commit()?;
         Ok(())
     }
@@ -579,16 +660,22 @@ fn resend_due(last_sent_at: Option<&str>, life: &Lifecycle) -> bool {
 /// or not), `(item, false)` for those opened earlier that resolved while held. Alerts only
 /// re-sent or escalated while held are in the digest's still-open list.
 fn held_alerts(tx: &Transaction<'_>) -> Result<Vec<(DigestItem, bool)>, StoreError> {
-    // Per alert with held events: whether one of them opened it, and whether one resolved it.
-    let mut stmt = tx.prepare(
+    waiting_alerts(tx, "SELECT event_id FROM alert_event WHERE held = 1 AND digest_event_id IS NULL")
+}
+
+/// As [`held_alerts`], for the events selected by `events` (a query of event ids written
+/// here, never from input).
+fn waiting_alerts(tx: &Transaction<'_>, events: &str) -> Result<Vec<(DigestItem, bool)>, StoreError> {
+    // Per alert with waiting events: whether one of them opened it, and whether one resolved it.
+    let mut stmt = tx.prepare(&format!(
         "SELECT alert_id, max(kind = 'opened'), max(kind = 'resolved') FROM alert_event
-         WHERE held = 1 AND digest_event_id IS NULL AND alert_id IS NOT NULL GROUP BY alert_id",
-    )?;
+         WHERE event_id IN ({events}) AND alert_id IS NOT NULL GROUP BY alert_id"
+    ))?;
     let kinds: std::collections::HashMap<i64, (bool, bool)> =
         stmt.query_map([], |r| Ok((r.get(0)?, (r.get(1)?, r.get(2)?))))?.collect::<Result<_, _>>()?;
     let items = digest_items(
         tx,
-        "WHERE a.alert_id IN (SELECT alert_id FROM alert_event WHERE held = 1 AND digest_event_id IS NULL)",
+        &format!("WHERE a.alert_id IN (SELECT alert_id FROM alert_event WHERE event_id IN ({events}))"),
     )?;
     Ok(items
         .into_iter()
@@ -598,6 +685,12 @@ fn held_alerts(tx: &Transaction<'_>) -> Result<Vec<(DigestItem, bool)>, StoreErr
             _ => None,
         })
         .collect())
+}
+
+/// A channel name as an SQL string literal (channel names are fixed words; quotes doubled
+/// all the same).
+fn sql_text(text: &str) -> String {
+    format!("'{}'", text.replace('\'', "''"))
 }
 
 /// Alerts in digest order (critical first, then by id), filtered by `filter` (a WHERE
@@ -735,10 +828,19 @@ fn notify(
         tx.execute("UPDATE alert_event SET held = 1 WHERE event_id = ?1", [event_id])?;
         outcome.held += 1;
     } else {
+        let scheduled = (delivery.scheduled)(facts.severity);
         for channel in &channels {
-            enqueue(tx, event_id, channel, &at)?;
+            if scheduled.contains(channel) {
+                tx.execute(
+                    "INSERT INTO digest_wait (event_id, channel, at) VALUES (?1, ?2, ?3)",
+                    params![event_id, channel, at],
+                )?;
+                outcome.scheduled += 1;
+            } else {
+                enqueue(tx, event_id, channel, &at)?;
+                outcome.enqueued += 1;
+            }
         }
-        outcome.enqueued += channels.len();
     }
     if !channels.is_empty() && kind != "resolved" {
         tx.execute(

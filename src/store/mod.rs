@@ -53,6 +53,7 @@ const MIGRATIONS: &[(i64, &str)] = &[
     (7, include_str!("../../migrations/0007_analysis_owed.sql")),
     (8, include_str!("../../migrations/0008_nowcast_scores.sql")),
     (9, include_str!("../../migrations/0009_alert_data_dates.sql")),
+    (10, include_str!("../../migrations/0010_digest_schedule.sql")),
 ];
 
 /// The schema version this build writes and understands.

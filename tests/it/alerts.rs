@@ -17,7 +17,9 @@ use chrono::{DateTime, Utc};
 use hmac::{Hmac, KeyInit, Mac};
 use sha2::Sha256;
 
-use tidemark::app::alerting::{deliver_due, delivery_client};
+use tidemark::app::alerting::{
+    channels_for, deliver_due, delivery_client, flush_scheduled_digests, scheduled_channels_for,
+};
 use tidemark::app::writer;
 use tidemark::store::alerts::{Cleared, Delivery, Evaluation, Finding, Lifecycle, MessageFacts};
 
@@ -142,7 +144,8 @@ fn lifecycle_dedupes_resends_acknowledges_and_resolves() {
     let life = |now| Lifecycle { now, snapshot_id: None, resend_after: Duration::from_secs(6 * 3600) };
     let route = |_: tidemark::model::Severity| vec!["webhook"];
     let payload = |f: &MessageFacts| format!("{{\"event_id\":{},\"kind\":\"{}\"}}", f.event_id, f.kind);
-    let delivery = Delivery { route: &route, payload: &payload, hold: false };
+    let none = |_: tidemark::model::Severity| Vec::new();
+    let delivery = Delivery { route: &route, payload: &payload, hold: false, scheduled: &none };
     let finding = Finding {
         fingerprint: "volume_drop|feed|".into(),
         rule: "volume_drop".parse().unwrap(),
@@ -211,7 +214,8 @@ fn a_live_alert_pages_again_only_on_a_new_peak_severity() {
     };
     let route = |_: tidemark::model::Severity| vec!["webhook"];
     let payload = |f: &MessageFacts| format!("{{\"event_id\":{},\"kind\":\"{}\"}}", f.event_id, f.kind);
-    let delivery = Delivery { route: &route, payload: &payload, hold: false };
+    let none = |_: tidemark::model::Severity| Vec::new();
+    let delivery = Delivery { route: &route, payload: &payload, hold: false, scheduled: &none };
     let rule: tidemark::model::Rule = "count_z_guarded".parse().unwrap();
     let fingerprint = tidemark::alert::fingerprint(rule, "feed", "North");
     assert_eq!(fingerprint, "count|feed|North", "the count rules of a subject share one episode");
@@ -290,7 +294,8 @@ fn held_messages_go_out_as_one_digest_per_channel() {
         findings: vec![found("held_snapshot", Critical), found("volume_drop", Info)],
         ..Evaluation::default()
     };
-    let held = Delivery { route: &route, payload: &payload, hold: true };
+    let none = |_: tidemark::model::Severity| Vec::new();
+    let held = Delivery { route: &route, payload: &payload, hold: true, scheduled: &none };
     let outcome = store.apply_findings(&evaluation, &life, &held).unwrap();
     assert_eq!((outcome.opened, outcome.enqueued, outcome.held), (2, 0, 2));
     assert!(store.digest_pending().unwrap());
@@ -518,6 +523,79 @@ async fn email_arrives_once_after_the_smtp_server_comes_up() {
     let (headers, body) = mail.split_once("\r\n\r\n").or_else(|| mail.split_once("\n\n")).unwrap();
     let subject: Vec<&str> = headers.lines().filter(|line| line.starts_with("Subject:")).collect();
     assert_private(&[subject.join("\n"), body.to_string()], &patient_tokens(&env));
+}
+
+/// A channel with a digest schedule takes warnings in one digest at the schedule's fire time
+/// and critical alerts at once: both arrive through a real SMTP server, and the digest
+/// notifies the alert it lists.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn scheduled_digest_takes_warnings_and_lets_critical_through() {
+    use tidemark::model::Severity::{Critical, Warning};
+    let port = free_port();
+    let alert = format!(
+        "[alert.email]\nsmtp = \"127.0.0.1:{port}\"\ntls = \"none\"\nfrom = \"tidemark@health.example\"\nto = [\"oncall@health.example\"]\ntimeout = \"2s\"\ndigest = \"0 0 7 * * *\"\n"
+    );
+    let env = env_with(&alert);
+    let config = env.config.clone();
+    let mut store = open_store(&config.store.path);
+    let t0: DateTime<Utc> = "2026-03-01T08:00:00Z".parse().unwrap();
+    let life = Lifecycle { now: t0, snapshot_id: None, resend_after: Duration::from_secs(6 * 3600) };
+    let route = |severity| channels_for(&config, severity);
+    let scheduled = |severity| scheduled_channels_for(&config, severity);
+    let payload = |f: &MessageFacts| tidemark::alert::message::payload(f, "", 4);
+    let delivery = Delivery { route: &route, payload: &payload, hold: false, scheduled: &scheduled };
+    let found = |rule: &str, severity| Finding {
+        fingerprint: format!("{rule}|feed|"),
+        rule: rule.parse().unwrap(),
+        source: "feed".into(),
+        subject: String::new(),
+        severity,
+        summary: format!("feed: {rule} fired"),
+        figures: "{}".into(),
+        snapshot_id: None,
+    };
+    let evaluation = Evaluation {
+        findings: vec![found("volume_drop", Warning), found("held_snapshot", Critical)],
+        ..Evaluation::default()
+    };
+    let outcome = store.apply_findings(&evaluation, &life, &delivery).unwrap();
+    assert_eq!((outcome.opened, outcome.enqueued, outcome.scheduled), (2, 1, 1));
+    let at = |text: &str| text.parse::<DateTime<Utc>>().unwrap();
+    assert_eq!(flush_scheduled_digests(&mut store, &config, at("2026-03-02T06:59:00Z")).unwrap(), 0);
+    assert_eq!(flush_scheduled_digests(&mut store, &config, at("2026-03-02T07:00:05Z")).unwrap(), 1);
+    assert_eq!(flush_scheduled_digests(&mut store, &config, at("2026-03-02T07:30:00Z")).unwrap(), 0, "once");
+    drop(store);
+
+    let mailbox = Mailbox::default();
+    let listener = StdListener::bind(("127.0.0.1", port)).unwrap();
+    let mut server = mailin_embedded::Server::new(mailbox.clone());
+    server.with_name("it.invalid").with_tcp_listener(listener);
+    std::thread::spawn(move || {
+        let _ = server.serve();
+    });
+    let config = Arc::new(config);
+    let (writer, thread) = writer::start(open_store(&config.store.path)).unwrap();
+    let client = delivery_client(&config);
+    let deadline = std::time::Instant::now() + Duration::from_secs(20);
+    while mailbox.messages.lock().unwrap().len() < 2 && std::time::Instant::now() < deadline {
+        deliver_due(&writer, &config, &client).await.unwrap();
+        tokio::time::sleep(Duration::from_millis(200)).await;
+    }
+    drop(writer);
+    thread.join();
+    let mails: Vec<String> = mailbox.messages.lock().unwrap().iter().map(|m| decode_qp(m)).collect();
+    assert_eq!(mails.len(), 2, "the critical alert and one digest");
+    let digest =
+        mails.iter().find(|m| m.contains("[tidemark digest] scheduled: 1 opened")).expect("a digest");
+    assert!(digest.contains("volume_drop") && !digest.contains("Opened\n[critical]"), "{digest}");
+    assert!(mails.iter().any(|m| m.contains("held_snapshot") && !m.contains("[tidemark digest]")));
+    let db = env.db();
+    assert_eq!(
+        count(&db, "SELECT count(*) FROM alert WHERE state = 'notified'"),
+        2,
+        "the digest notified its alert"
+    );
+    assert_eq!(count(&db, "SELECT count(*) FROM digest_wait WHERE digest_event_id IS NOT NULL"), 1);
 }
 
 #[test]

@@ -139,6 +139,7 @@ fn migration_6_fills_first_seen_for_stored_versions() {
          ALTER TABLE alert DROP COLUMN resolved_as_of;
          ALTER TABLE alert DROP COLUMN data_day;
          DROP TABLE rule_status;
+         DROP TABLE digest_wait;
          DROP INDEX alert_event_held;
          ALTER TABLE alert_event DROP COLUMN held;
          ALTER TABLE alert_event DROP COLUMN digest_event_id;
