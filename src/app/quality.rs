@@ -116,10 +116,14 @@ pub fn quality(
     }
     lag_rows(&mut table, &lag);
     field_rows(&mut table, &rows);
+    if let Some(source) = config.sources.iter().find(|s| s.name == source_name) {
+        not_captured_rows(&mut table, source);
+    }
     let mut text = table.render(format);
     if format == OutputFormat::Table {
         text = format!(
-            "quality of snapshot {snapshot_id} ({source_name}); shares are of `records`; lag = days from {} to first appearance\n{text}",
+            "quality of snapshot {snapshot_id} ({source_name}); shares are of `records`; scope `not_captured`: \
+             the feed does not send the field (not missing, not measured); lag = days from {} to first appearance\n{text}",
             lag.first().map(|l| l.ref_fields.replace(',', " (else) ")).unwrap_or_else(|| "-".into())
         );
     }
@@ -173,6 +177,18 @@ fn field_rows(table: &mut Table, rows: &[QualityRow]) {
             Cell::Null,
             Cell::Null,
         ]);
+    }
+}
+
+/// One row per canonical field the source does not map: not captured by this feed, which is
+/// not the same as missing (the missingness rule never measures it).
+fn not_captured_rows(table: &mut Table, source: &SourceConfig) {
+    for field in
+        Field::ALL.into_iter().filter(|f| *f != Field::CaseKey && !source.mapping.columns.contains_key(f))
+    {
+        let mut row = vec![Cell::from("field"), "not_captured".into(), "(all)".into(), field.name().into()];
+        row.extend(std::iter::repeat_n(Cell::Null, 7));
+        table.push(row);
     }
 }
 

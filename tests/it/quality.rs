@@ -22,6 +22,30 @@ fn the_whole_source_lag_histogram_adds_up_jurisdictions_with_the_same_lag() {
     assert!(count(&db, "SELECT count(*) FROM quality") > 0, "the field measures were stored too");
 }
 
+/// `tidemark quality` lists the fields a feed does not map as `not_captured`, with no
+/// missing count, while the mapped ones are measured (a blank onset is missing).
+#[test]
+fn fields_a_feed_does_not_map_are_not_captured_rather_than_missing() {
+    let mut env = Env::new();
+    let as_of = day(10);
+    let onset = (as_of - chrono::Duration::days(3)).date_naive();
+    let rows = [format!("A1,North,{onset},{onset},40,F,"), format!("A2,North,,{onset},41,M,")];
+    let refs: Vec<&str> = rows.iter().map(String::as_str).collect();
+    env.ingest("full", &csv(&refs), as_of);
+    let text = tidemark::app::quality::quality(&env.config, "full", None, tidemark::table::OutputFormat::Csv)
+        .unwrap();
+    let line = |scope: &str, field: &str| {
+        text.lines().find(|l| l.starts_with(&format!("field,{scope},(all),{field},"))).map(str::to_string)
+    };
+    assert_eq!(
+        line("not_captured", "death_date").as_deref(),
+        Some("field,not_captured,(all),death_date,,,,,,,")
+    );
+    assert!(line("not_captured", "specimen_date").is_some(), "{text}");
+    assert!(line("not_captured", "onset_date").is_none() && line("not_captured", "case_key").is_none());
+    assert!(line("current", "onset_date").is_some_and(|l| l.contains(",2,1,0.5,")), "{text}");
+}
+
 /// One stored quality cell: (scope, stratum kind, stratum, field, records, missing, invalid).
 type QualityCell = (String, String, String, String, i64, i64, i64);
 
