@@ -437,14 +437,9 @@ fn stratum_volumes(
     let params = config.alerting.rules.volume.for_stratum();
     let baseline = &baseline[baseline.len().saturating_sub(params.baseline_snapshots)..];
     let mut new_records: BTreeMap<String, BTreeMap<SnapshotId, u64>> = BTreeMap::new();
-    for row in reader.lag_rows(source_id, snapshot_id, true)? {
-        if row.stratum_kind == "all"
-            || (row.snapshot_id != snapshot_id && !baseline.contains(&row.snapshot_id))
-        {
-            continue;
-        }
-        let slot = new_records.entry(row.stratum).or_default().entry(row.snapshot_id).or_default();
-        *slot = (*slot).max(row.new_records.max(0) as u64);
+    let wanted: Vec<SnapshotId> = baseline.iter().copied().chain([snapshot_id]).collect();
+    for (id, stratum, n) in reader.stratum_new_records(source_id, &wanted)? {
+        new_records.entry(stratum).or_default().insert(id, n.max(0) as u64);
     }
     for (subject, by_snapshot) in new_records {
         let input = VolumeInput {

@@ -457,6 +457,30 @@ impl Reader {
         Ok(rows.collect::<Result<_, _>>()?)
     }
 
+    /// New records per stratum (not the whole-source rows) of the given snapshots of a
+    /// source: `(snapshot, stratum, new records)`, the largest over the lag rows' reference
+    /// fields. Reads only those snapshots' rows.
+    pub fn stratum_new_records(
+        &self,
+        source_id: SourceId,
+        snapshots: &[SnapshotId],
+    ) -> Result<Vec<(SnapshotId, String, i64)>, StoreError> {
+        let mut stmt = self.conn.prepare(
+            "SELECT snapshot_id, stratum, max(new_records) FROM quality_lag
+             WHERE source_id = ?1 AND snapshot_id = ?2 AND stratum_kind <> 'all'
+             GROUP BY snapshot_id, stratum",
+        )?;
+        let mut rows = Vec::new();
+        for snapshot_id in snapshots {
+            let found =
+                stmt.query_map(params![source_id, snapshot_id], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))?;
+            for row in found {
+                rows.push(row?);
+            }
+        }
+        Ok(rows)
+    }
+
     /// Volume of every snapshot of a source (any status) up to and including `upto`,
     /// oldest first.
     pub fn volumes(&self, source_id: SourceId, upto: SnapshotId) -> Result<Vec<VolumeRow>, StoreError> {
