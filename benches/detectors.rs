@@ -72,7 +72,7 @@ fn counts(mean: f64, dispersion: Option<f64>) {
     let poisson =
         CountCusumParams { family: CountFamily::Poisson, follow_trend: false, ..CountCusumParams::default() };
     let nb = CountCusumParams { family: CountFamily::NegativeBinomial, ..poisson };
-    let z = z_rules();
+    let z = CountParams::z_scores_only();
     let detectors: [(&str, Rule, CountParams); 6] = [
         ("z recent week (C1)", Rule::CountZRecent, z),
         ("z guarded week (C2)", Rule::CountZGuarded, z),
@@ -251,21 +251,10 @@ fn default_count_rules() {
     }
 }
 
-/// The three short-baseline z-score rules (C1, C2, C3) without the CUSUM.
-fn z_rules() -> CountParams {
-    CountParams {
-        z_recent: true,
-        z_guarded: true,
-        z_guarded_3day: true,
-        cusum: None,
-        ..CountParams::default()
-    }
-}
-
 /// The default rule set, and variants to compare it with.
 fn rule_sets() -> Vec<(&'static str, CountParams)> {
     let default = CountParams::default();
-    let published = z_rules();
+    let published = CountParams::z_scores_only();
     let nb = default.cusum.expect("the default count rules include the CUSUM");
     vec![
         ("default (NB CUSUM following trend, ARL 365)", default),

@@ -235,6 +235,20 @@ pub struct CountParams {
     pub cusum: Option<CountCusumParams>,
 }
 
+impl CountParams {
+    /// The three short-baseline z-score rules (C1, C2, C3) alone, without the CUSUM; the
+    /// other settings as by default.
+    pub fn z_scores_only() -> CountParams {
+        CountParams {
+            z_recent: true,
+            z_guarded: true,
+            z_guarded_3day: true,
+            cusum: None,
+            ..CountParams::default()
+        }
+    }
+}
+
 impl Default for CountParams {
     fn default() -> CountParams {
         CountParams {

@@ -148,6 +148,16 @@ pub struct DigestFacts {
     pub held_messages: usize,
 }
 
+impl DigestFacts {
+    /// Files each waiting alert under `opened` (opened while its messages waited) or
+    /// `resolved` (opened earlier, resolved while they waited).
+    fn add_waiting(&mut self, waiting: impl IntoIterator<Item = (DigestItem, bool)>) {
+        for (item, opened) in waiting {
+            if opened { self.opened.push(item) } else { self.resolved.push(item) }
+        }
+    }
+}
+
 impl std::fmt::Debug for Delivery<'_> {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         f.write_str("Delivery")
@@ -305,9 +315,7 @@ impl Store {
                 still_open: live.iter().filter(|i| routed(i)).cloned().collect(),
                 held_messages,
             };
-            for (item, opened) in held.iter().filter(|(item, _)| routed(item)) {
-                if *opened { facts.opened.push(item.clone()) } else { facts.resolved.push(item.clone()) }
-            }
+            facts.add_waiting(held.iter().filter(|(item, _)| routed(item)).cloned());
             tx.execute(
                 "UPDATE alert_event SET payload = ?2 WHERE event_id = ?1",
                 params![event_id, payload(&facts)],
@@ -370,9 +378,7 @@ impl Store {
             still_open: live.into_iter().filter(|i| takes(i.severity)).collect(),
             held_messages,
         };
-        for (item, opened) in waiting {
-            if opened { facts.opened.push(item) } else { facts.resolved.push(item) }
-        }
+        facts.add_waiting(waiting);
         tx.execute(
             "UPDATE alert_event SET payload = ?2 WHERE event_id = ?1",
             params![event_id, payload(&facts)],

@@ -134,6 +134,25 @@ fn join_clock_times(message: &str) -> String {
         .collect()
 }
 
+/// A finding of `rule` for the whole of source `feed`.
+fn finding(rule: &str, severity: tidemark::model::Severity) -> Finding {
+    Finding {
+        fingerprint: format!("{rule}|feed|"),
+        rule: rule.parse().unwrap(),
+        source: "feed".into(),
+        subject: String::new(),
+        severity,
+        summary: format!("{rule} fired"),
+        figures: "{}".into(),
+        snapshot_id: None,
+    }
+}
+
+/// Routing without digest schedules: no channel waits for one.
+fn no_schedule(_: tidemark::model::Severity) -> Vec<&'static str> {
+    Vec::new()
+}
+
 #[test]
 fn lifecycle_dedupes_resends_acknowledges_and_resolves() {
     let dir = tempfile::tempdir().unwrap();
@@ -144,8 +163,7 @@ fn lifecycle_dedupes_resends_acknowledges_and_resolves() {
     let life = |now| Lifecycle { now, snapshot_id: None, resend_after: Duration::from_secs(6 * 3600) };
     let route = |_: tidemark::model::Severity| vec!["webhook"];
     let payload = |f: &MessageFacts| format!("{{\"event_id\":{},\"kind\":\"{}\"}}", f.event_id, f.kind);
-    let none = |_: tidemark::model::Severity| Vec::new();
-    let delivery = Delivery { route: &route, payload: &payload, hold: false, scheduled: &none };
+    let delivery = Delivery { route: &route, payload: &payload, hold: false, scheduled: &no_schedule };
     let finding = Finding {
         fingerprint: "volume_drop|feed|".into(),
         rule: "volume_drop".parse().unwrap(),
@@ -214,8 +232,7 @@ fn a_live_alert_pages_again_only_on_a_new_peak_severity() {
     };
     let route = |_: tidemark::model::Severity| vec!["webhook"];
     let payload = |f: &MessageFacts| format!("{{\"event_id\":{},\"kind\":\"{}\"}}", f.event_id, f.kind);
-    let none = |_: tidemark::model::Severity| Vec::new();
-    let delivery = Delivery { route: &route, payload: &payload, hold: false, scheduled: &none };
+    let delivery = Delivery { route: &route, payload: &payload, hold: false, scheduled: &no_schedule };
     let rule: tidemark::model::Rule = "count_z_guarded".parse().unwrap();
     let fingerprint = tidemark::alert::fingerprint(rule, "feed", "North");
     assert_eq!(fingerprint, "count|feed|North", "the count rules of a subject share one episode");
@@ -280,22 +297,11 @@ fn held_messages_go_out_as_one_digest_per_channel() {
     let route =
         |s: tidemark::model::Severity| if s == Critical { vec!["email", "webhook"] } else { vec!["webhook"] };
     let payload = |f: &MessageFacts| format!("{{\"event_id\":{}}}", f.event_id);
-    let found = |rule: &str, severity| Finding {
-        fingerprint: format!("{rule}|feed|"),
-        rule: rule.parse().unwrap(),
-        source: "feed".into(),
-        subject: String::new(),
-        severity,
-        summary: format!("{rule} fired"),
-        figures: "{}".into(),
-        snapshot_id: None,
-    };
     let evaluation = Evaluation {
-        findings: vec![found("held_snapshot", Critical), found("volume_drop", Info)],
+        findings: vec![finding("held_snapshot", Critical), finding("volume_drop", Info)],
         ..Evaluation::default()
     };
-    let none = |_: tidemark::model::Severity| Vec::new();
-    let held = Delivery { route: &route, payload: &payload, hold: true, scheduled: &none };
+    let held = Delivery { route: &route, payload: &payload, hold: true, scheduled: &no_schedule };
     let outcome = store.apply_findings(&evaluation, &life, &held).unwrap();
     assert_eq!((outcome.opened, outcome.enqueued, outcome.held), (2, 0, 2));
     assert!(store.digest_pending().unwrap());
@@ -544,18 +550,8 @@ async fn scheduled_digest_takes_warnings_and_lets_critical_through() {
     let scheduled = |severity| scheduled_channels_for(&config, severity);
     let payload = |f: &MessageFacts| tidemark::alert::message::payload(f, "", 4);
     let delivery = Delivery { route: &route, payload: &payload, hold: false, scheduled: &scheduled };
-    let found = |rule: &str, severity| Finding {
-        fingerprint: format!("{rule}|feed|"),
-        rule: rule.parse().unwrap(),
-        source: "feed".into(),
-        subject: String::new(),
-        severity,
-        summary: format!("feed: {rule} fired"),
-        figures: "{}".into(),
-        snapshot_id: None,
-    };
     let evaluation = Evaluation {
-        findings: vec![found("volume_drop", Warning), found("held_snapshot", Critical)],
+        findings: vec![finding("volume_drop", Warning), finding("held_snapshot", Critical)],
         ..Evaluation::default()
     };
     let outcome = store.apply_findings(&evaluation, &life, &delivery).unwrap();

@@ -250,18 +250,6 @@ fn outcome(outcomes: &[(Rule, Outcome)], rule: Rule) -> &Outcome {
     &outcomes.iter().find(|(r, _)| *r == rule).unwrap().1
 }
 
-/// The three short-baseline z-score rules alone (off by default; the default count rule is
-/// the calibrated CUSUM), with the Poisson sd floor.
-fn z_rules() -> CountParams {
-    CountParams {
-        z_recent: true,
-        z_guarded: true,
-        z_guarded_3day: true,
-        cusum: None,
-        ..CountParams::default()
-    }
-}
-
 /// A Poisson count CUSUM on the baseline's level (no trend), calibrated as by default.
 fn poisson_level_cusum() -> CountCusumParams {
     CountCusumParams { family: CountFamily::Poisson, follow_trend: false, ..CountCusumParams::default() }
@@ -269,7 +257,7 @@ fn poisson_level_cusum() -> CountCusumParams {
 
 /// The count rules computing the published statistics (no Poisson sd floor).
 fn published() -> CountParams {
-    let mut params = z_rules();
+    let mut params = CountParams::z_scores_only();
     params.z.poisson_floor = false;
     params
 }
@@ -315,7 +303,8 @@ fn count_messages_state_what_was_tested() {
     let mut quiet = vec![1.0, 2.0, 1.0, 1.0, 2.0, 1.0, 1.0];
     quiet.push(9.0);
     let one = CountInput { daily_counts: quiet, last_day: march(8), ..counts_through(8) };
-    let signal = outcome(&count_aberration(&one, &z_rules()), Rule::CountZRecent).signal().cloned();
+    let signal =
+        outcome(&count_aberration(&one, &CountParams::z_scores_only()), Rule::CountZRecent).signal().cloned();
     assert!(signal.unwrap().summary.contains("9 cases reported on 2026-03-08"));
     assert_eq!(counted(1.0, "case", "cases"), "1 case");
     assert_eq!(above(10.1304, 10.1301), "10.1304 > 10.1301");
@@ -326,7 +315,7 @@ fn count_messages_state_what_was_tested() {
 /// either, so two cases after a quiet week do not page.
 #[test]
 fn count_rules_need_known_days_and_an_expected_count() {
-    let params = z_rules();
+    let params = CountParams::z_scores_only();
     let short = CountInput { daily_counts: vec![0.0, 1.0, 2.0], last_day: march(3), ..counts_through(3) };
     let outcomes = count_aberration(&short, &params);
     let Outcome::NotEnoughData(why) = outcome(&outcomes, Rule::CountZRecent) else {
@@ -371,19 +360,21 @@ fn count_episode_takes_the_strongest_signal() {
 /// modest rise look extreme. A doubling of a mean of 20 still signals (z = 20 / sqrt 20).
 #[test]
 fn poisson_sd_floor_keeps_a_quiet_week_from_inflating_z() {
-    let day11 = count_aberration(&counts_through(11), &z_rules());
+    let day11 = count_aberration(&counts_through(11), &CountParams::z_scores_only());
     assert!(outcome(&day11, Rule::CountZRecent).is_clear());
     let mut doubled = vec![20.0; 7];
     doubled.push(40.0);
     let input = CountInput { daily_counts: doubled, last_day: march(8), ..counts_through(8) };
-    let signal = outcome(&count_aberration(&input, &z_rules()), Rule::CountZRecent).signal().cloned();
+    let signal = outcome(&count_aberration(&input, &CountParams::z_scores_only()), Rule::CountZRecent)
+        .signal()
+        .cloned();
     assert!(close(signal.unwrap().observed, 20.0 / 20f64.sqrt(), 1e-12));
 }
 
 #[test]
 fn count_cusum_option_signals_a_lasting_rise() {
     let fixed = CountCusumParams { interval: CusumInterval::FixedSds(3.0), ..poisson_level_cusum() };
-    let params = CountParams { cusum: Some(fixed), ..z_rules() };
+    let params = CountParams { cusum: Some(fixed), ..CountParams::z_scores_only() };
     // A week-long pattern with mean 10, so every 28-day baseline has mean exactly 10.
     let mut counts = [10.0, 12.0, 9.0, 11.0, 8.0, 10.0, 10.0].repeat(5);
     let flat = CountInput {
@@ -409,7 +400,7 @@ fn count_cusum_option_signals_a_lasting_rise() {
     assert!(close(signal.figure("reference_value").unwrap(), k, 1e-9));
     assert!(close(signal.threshold, 3.0 * 10f64.sqrt(), 1e-9));
     // Calibrated (the default): the interval is the one whose in-control ARL is a year.
-    let calibrated = CountParams { cusum: Some(poisson_level_cusum()), ..z_rules() };
+    let calibrated = CountParams { cusum: Some(poisson_level_cusum()), ..CountParams::z_scores_only() };
     let signal = outcome(&count_aberration(&risen, &calibrated), Rule::CountCusum).signal().cloned().unwrap();
     let design = crate::analysis::arl::design_count_cusum(10.0, 10.0, 2.0, 365.0);
     assert!(close(signal.threshold, design.interval, 1e-9) && design.in_control_arl >= 365.0);
