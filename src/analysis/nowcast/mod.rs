@@ -59,23 +59,67 @@ pub fn row_from_draws(
         draws.iter_mut().for_each(|d| *d = observed);
     }
     draws.sort_by(|a, b| a.total_cmp(b));
-    let q = |p: f64| quantile_sorted(draws, p);
     let mean = if draws.is_empty() { observed } else { draws.iter().sum::<f64>() / draws.len() as f64 };
     let completeness =
         if observed > 0.0 && mean > 0.0 { (observed / mean).min(1.0) } else { completeness.min(1.0) };
+    let median = quantile_sorted(draws, 0.5);
+    let (lower95, upper95) = central_interval(draws, 0.95, (f64::NEG_INFINITY, f64::INFINITY));
+    let (lower90, upper90) = central_interval(draws, 0.90, (lower95, upper95));
+    let (lower50, upper50) = central_interval(draws, 0.50, (lower90, upper90));
     NowcastRow {
         date,
         horizon,
         observed,
-        median: q(0.5),
+        median,
         mean,
-        lower50: q(0.25),
-        upper50: q(0.75),
-        lower90: q(0.05),
-        upper90: q(0.95),
-        lower95: q(0.025),
-        upper95: q(0.975),
+        lower50,
+        upper50,
+        lower90,
+        upper90,
+        lower95,
+        upper95,
         completeness,
+    }
+}
+
+/// The central interval of sorted draws whose coverage is nearest to `level`, within
+/// `within` (so that narrower levels nest inside wider ones). It starts from the type-1
+/// quantiles at `(1 - level) / 2` and `(1 + level) / 2`, which always cover at least `level`,
+/// and gives up the end value (an atom of a count) whose removal brings the coverage nearer
+/// to `level`, while one does and the median stays inside. For a count whose predictive
+/// puts much mass on a few values (a low count, or a nearly complete date) the type-1 ends
+/// cover far more than the level (a 90% interval of `observed + Poisson(0.1)` covers 99.5%),
+/// and the intervals are then conservative on average; rounding to the nearest attainable
+/// coverage instead makes them right on average (on the discreteness of count predictives,
+/// Czado, Gneiting & Held 2009, from memory). For many distinct values the ends move by at
+/// most a draw or two.
+pub fn central_interval(sorted: &[f64], level: f64, within: (f64, f64)) -> (f64, f64) {
+    if sorted.is_empty() {
+        return (f64::NAN, f64::NAN);
+    }
+    let n = sorted.len() as f64;
+    let median = quantile_sorted(sorted, 0.5);
+    let mut lower = quantile_sorted(sorted, (1.0 - level) / 2.0).max(within.0);
+    let mut upper = quantile_sorted(sorted, (1.0 + level) / 2.0).min(within.1);
+    // Coverage of [lower, upper] and the draws at each end.
+    let below = |x: f64| sorted.partition_point(|d| *d < x);
+    let at_or_below = |x: f64| sorted.partition_point(|d| *d <= x);
+    let coverage = |lo: f64, hi: f64| (at_or_below(hi) - below(lo)) as f64 / n;
+    loop {
+        let now = (coverage(lower, upper) - level).abs();
+        let raised = sorted.get(at_or_below(lower)).copied().filter(|&x| x <= median);
+        let dropped = below(upper).checked_sub(1).map(|i| sorted[i]).filter(|&x| x >= median);
+        let mut options: Vec<(f64, f64)> = Vec::new();
+        options.extend(raised.map(|lo| (lo, upper)));
+        options.extend(dropped.map(|hi| (lower, hi)));
+        let best = options
+            .into_iter()
+            .map(|(lo, hi)| ((coverage(lo, hi) - level).abs(), lo, hi))
+            .min_by(|a, b| a.0.total_cmp(&b.0));
+        match best {
+            Some((gap, lo, hi)) if gap < now => (lower, upper) = (lo, hi),
+            _ => return (lower, upper),
+        }
     }
 }
 
@@ -108,6 +152,26 @@ mod tests {
         assert!(open.upper95 > open.lower95);
         // Nothing observed: the model's completeness.
         assert_eq!(row_from_draws(date, 0, 0.0, 0.05, &mut [0.0, 3.0]).completeness, 0.05);
+    }
+
+    #[test]
+    fn count_intervals_round_to_the_nearest_coverage() {
+        // Check (by hand): a count that is 10 with probability 0.905, 11 with 0.080 and
+        // 12 with 0.015. The type-1 90% interval [10, 11] covers 0.985; [10, 10] covers
+        // 0.905, nearer 0.90. The 95% interval keeps 11 (0.985 is 0.035 from 0.95, 0.905
+        // is 0.045 from it), and the 50% interval is [10, 10].
+        let mut draws: Vec<f64> = [(10.0, 905), (11.0, 80), (12.0, 15)]
+            .into_iter()
+            .flat_map(|(value, n)| std::iter::repeat_n(value, n))
+            .collect();
+        assert_eq!(central_interval(&draws, 0.90, (f64::NEG_INFINITY, f64::INFINITY)), (10.0, 10.0));
+        let row = row_from_draws(NaiveDate::from_ymd_opt(2026, 3, 1).unwrap(), 3, 10.0, 0.99, &mut draws);
+        assert_eq!((row.lower90, row.upper90, row.lower50, row.upper50), (10.0, 10.0, 10.0, 10.0));
+        assert_eq!((row.lower95, row.upper95), (10.0, 11.0));
+        // Many distinct values: a draw's worth of change at most (the type-1 [50, 950]
+        // covers 0.901 of the draws, [51, 950] exactly 0.900).
+        let spread: Vec<f64> = (1..=1000).map(f64::from).collect();
+        assert_eq!(central_interval(&spread, 0.90, (f64::NEG_INFINITY, f64::INFINITY)), (51.0, 950.0));
     }
 
     #[test]

@@ -44,6 +44,8 @@ pub(super) struct DelayModel<'a> {
     pub(super) dof: f64,
     /// Whether report-day effects are modelled (a weekday factor and a per-date factor).
     pub(super) report_days: bool,
+    /// Half-life in rows of the rows' weights (infinite: equal weights).
+    pub(super) half_life: f64,
 }
 
 #[derive(Debug)]
@@ -58,8 +60,17 @@ impl<'a> DelayModel<'a> {
         let knots = Knots::new(window.len(), params.delay_trend_knots);
         let dof = if params.delay_change_dof > 0.0 { params.delay_change_dof } else { f64::INFINITY };
         let report_days = params.report_day_effects;
-        let mut model =
-            DelayModel { window, terms, knots, penalty: Matrix::zeros(0), trend_penalty, dof, report_days };
+        let half_life = delay_half_life(window, params.delay_half_life_cases);
+        let mut model = DelayModel {
+            window,
+            terms,
+            knots,
+            penalty: Matrix::zeros(0),
+            trend_penalty,
+            dof,
+            report_days,
+            half_life,
+        };
         model.penalty = model.baseline_penalty(params.delay_shape_penalty);
         model
     }
@@ -264,7 +275,14 @@ impl<'a> DelayModel<'a> {
         let masses = self.cell_masses(baseline, theta, r, k);
         let sum: f64 =
             self.window.n[r].iter().zip(&masses).filter(|(n, _)| **n > 0.0).map(|(n, m)| n * m.ln()).sum();
-        sum - self.window.totals[r] * masses.iter().sum::<f64>().ln()
+        self.row_weight(r) * (sum - self.window.totals[r] * masses.iter().sum::<f64>().ln())
+    }
+
+    /// Weight of row r's split in the fit: 1 for the latest row, halving every
+    /// `half_life` rows back.
+    pub(super) fn row_weight(&self, r: usize) -> f64 {
+        let age = (self.window.len() - 1 - r) as f64;
+        if self.half_life.is_finite() { 0.5f64.powf(age / self.half_life) } else { 1.0 }
     }
 
     /// Adds row r's score and Fisher information. With `x_d` the gradient of `ln m_d` (m_d
@@ -289,7 +307,8 @@ impl<'a> DelayModel<'a> {
     ) {
         let (stretch, knots) = self.stretch(theta, r);
         let k = self.window.observed[r];
-        let total = self.window.totals[r];
+        let row_weight = self.row_weight(r);
+        let total = self.window.totals[r] * row_weight;
         let top = (((k + 1) as f64 / stretch).floor() as usize + 1).min(self.window.max_delay);
         // Global indices of the local coordinates: baseline days 0..=top, the knots, then
         // the report dates' coefficients.
@@ -357,7 +376,7 @@ impl<'a> DelayModel<'a> {
             if q <= 0.0 {
                 continue;
             }
-            let residual = self.window.n[r][d] - total * q;
+            let residual = self.window.n[r][d] * row_weight - total * q;
             for (i, &v) in x.iter().enumerate().filter(|(_, v)| **v != 0.0) {
                 xbar[i] += q * v;
                 gradient[index[i]] -= residual * v;
@@ -375,6 +394,14 @@ impl<'a> DelayModel<'a> {
             }
         }
     }
+}
+
+/// Half-life in rows of the delay fit's weights: `cases` over the window's mean daily
+/// count, at least `MIN_DELAY_HALF_LIFE_DAYS`; infinite without forgetting.
+pub(super) fn delay_half_life(window: &Window, cases: Option<f64>) -> f64 {
+    let Some(cases) = cases.filter(|c| c.is_finite() && *c > 0.0) else { return f64::INFINITY };
+    let daily = window.totals.iter().sum::<f64>() / window.len().max(1) as f64;
+    if daily > 0.0 { (cases / daily).max(MIN_DELAY_HALF_LIFE_DAYS) } else { f64::INFINITY }
 }
 
 impl Objective for DelayModel<'_> {

@@ -18,7 +18,10 @@
 //! stays smooth); its step precision is chosen by Laplace marginal likelihood. A stretch
 //! reads the well-reported short delays of the baseline to predict the long delays of recent
 //! rows, which is how a lengthening seen in the first days after reference dates is carried
-//! to the delays not yet seen. Shape changes other than a stretch are not modelled.
+//! to the delays not yet seen. Shape changes other than a stretch (a shifting mix of fast
+//! and slow reporters) are followed by forgetting instead: each row's split is weighted by
+//! `0.5^(age / half-life)`, the half-life about 1000 cases' worth of reference dates (at
+//! least 14 days), so the baseline describes recent reporting.
 //!
 //! Incidence model: `log lambda_t` has a second-order random-walk penalty (linear trends are
 //! free), its strength chosen by Laplace marginal likelihood over a grid unless given.
@@ -28,7 +31,9 @@
 //! Predictive draws: delay parameters from their Gaussian posterior; log incidence from its
 //! Gaussian posterior, shifted to first order for the drawn completeness
 //! (`d eta / d ln F = -H^-1 diag(mu)`); the cases still to be reported from a Poisson
-//! (negative binomial when overdispersed) with mean `lambda_t (1 - F_t(k_t))`. Each draw of
+//! with mean `lambda_t (1 - F_t(k_t))`, or when overdispersed from a gamma-Poisson whose
+//! day rate is first updated by the count reported so far (a nearly complete date keeps
+//! little extra-Poisson spread). Each draw of
 //! the eventual count is the count known so far plus those. The intervals are model-based:
 //! they assume smooth log incidence, a delay distribution that changes by stretching, and
 //! independent (or quasi-Poisson) counts; they do not cover reporting changes of other kinds.
@@ -89,6 +94,16 @@ pub struct SmoothParams {
     /// keeping the sparsely reported tail from swinging: it matters only where delays have
     /// few reports.
     pub delay_shape_penalty: f64,
+    /// How fast old reference dates lose weight in the delay fit, in cases: a row's weight
+    /// halves with each half-life of age, the half-life in days being this divided by the
+    /// window's mean daily count, and at least
+    /// `MIN_DELAY_HALF_LIFE_DAYS` (default 1000 cases: 14 days at 70 or more cases a day,
+    /// 100 days at 10 a day). The delay distribution then describes recent reporting when
+    /// there are data enough to see it change, which the stretch alone cannot follow when
+    /// the mix of reporters shifts (in the calibration suite's class of strata with
+    /// different delays, 90% coverage rose from 0.73 to 0.86). `None`: every row weighs
+    /// the same.
+    pub delay_half_life_cases: Option<f64>,
     /// Estimate extra-Poisson variation of the daily totals and widen the intervals by it
     /// (default true; it is 1, i.e. no widening, for Poisson data).
     pub overdispersion: bool,
@@ -112,6 +127,7 @@ impl Default for SmoothParams {
             delay_change_dof: 2.0,
             delay_trend_knots: 1,
             delay_shape_penalty: 1.0,
+            delay_half_life_cases: Some(1000.0),
             overdispersion: true,
             report_day_effects: true,
             draws: 1000,
@@ -127,6 +143,9 @@ const RIDGE: f64 = 1e-4;
 const INCIDENCE_RIDGE: f64 = 1e-6;
 /// Log incidence above this is clamped in draws (e^40 cases is no count).
 const MAX_LOG_RATE: f64 = 40.0;
+/// Shortest half-life of the delay fit's row weights (`SmoothParams::delay_half_life_cases`):
+/// two weeks of reference dates always weigh at least half as much as the latest.
+pub const MIN_DELAY_HALF_LIFE_DAYS: f64 = 14.0;
 /// Largest quasi-Poisson dispersion used (a larger estimate is capped).
 const MAX_DISPERSION: f64 = 50.0;
 

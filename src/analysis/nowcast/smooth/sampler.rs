@@ -62,8 +62,9 @@ impl<'a> Sampler<'a> {
                 self.rows.iter().map(|&r| self.delay_model.log_completeness(&baseline, &theta, r)).collect();
             let eta = self.draw_eta(&mut rng, &log_f);
             for (i, &r) in self.rows.iter().enumerate() {
-                let unreported = eta[i].min(MAX_LOG_RATE).exp() * -log_f[i].exp_m1();
-                out[i].push(latest[r] + self.draw_count(&mut rng, unreported));
+                let rate = eta[i].min(MAX_LOG_RATE).exp();
+                let unreported = draw_unreported(&mut rng, rate, log_f[i].exp(), latest[r], self.dispersion);
+                out[i].push(latest[r] + unreported);
             }
         }
         let rows = self
@@ -90,19 +91,36 @@ impl<'a> Sampler<'a> {
         let change: Vec<f64> = log_f.iter().zip(&self.log_completeness).map(|(a, b)| a - b).collect();
         (0..self.rows.len()).map(|i| self.eta[i] + dot(&self.response[i], &change) + noise[i]).collect()
     }
+}
 
-    /// Cases still to be reported: Poisson with the given mean, or negative binomial with
-    /// variance `dispersion * mean` when overdispersed.
-    pub(super) fn draw_count(&self, rng: &mut impl Rng, mean: f64) -> f64 {
-        if !(mean.is_finite() && mean > 0.0) {
-            return 0.0;
-        }
-        let rate = if self.dispersion > 1.0 {
-            let shape = mean / (self.dispersion - 1.0);
-            Gamma::new(shape, self.dispersion - 1.0).map_or(mean, |g| g.sample(rng))
-        } else {
-            mean
-        };
-        Poisson::new(rate.min(Poisson::<f64>::MAX_LAMBDA)).map_or(0.0, |p| p.sample(rng))
+/// Cases of one reference date still to be reported, given its expected count `rate`,
+/// its completeness and the count reported so far. Poisson with mean
+/// `rate (1 - completeness)` when the counts are Poisson. When overdispersed, the date's
+/// own rate is gamma about `rate` (variance `(dispersion - 1) rate`, so the eventual
+/// count has variance `dispersion * rate`), and the reports so far say how high it is:
+/// the rate is drawn from its conjugate posterior given `reported ~ Poisson(rate
+/// completeness)`, and the unreported cases are Poisson with that rate times
+/// `1 - completeness`. A nearly complete date so has nearly no extra-Poisson spread
+/// left, however overdispersed the series (the conjugate gamma-Poisson update, a textbook
+/// result; the test checks it against the generative model by simulation).
+pub(super) fn draw_unreported(
+    rng: &mut impl Rng,
+    rate: f64,
+    completeness: f64,
+    reported: f64,
+    dispersion: f64,
+) -> f64 {
+    let missing = 1.0 - completeness.clamp(0.0, 1.0);
+    if !(rate.is_finite() && rate > 0.0 && missing > 0.0) {
+        return 0.0;
     }
+    let day_rate = if dispersion > 1.0 {
+        let scale = dispersion - 1.0;
+        let (shape, scale) = (rate / scale + reported, scale / (1.0 + scale * (1.0 - missing)));
+        Gamma::new(shape, scale).map_or(rate, |g| g.sample(rng))
+    } else {
+        rate
+    };
+    let mean = day_rate * missing;
+    Poisson::new(mean.min(Poisson::<f64>::MAX_LAMBDA)).map_or(0.0, |p| p.sample(rng))
 }

@@ -308,3 +308,57 @@ fn timing_120_days_60_delays_2000_draws() {
     assert_sane(&result);
     assert!(elapsed.as_secs_f64() < 2.0, "{elapsed:?}");
 }
+
+#[test]
+fn unreported_cases_follow_the_reports_so_far() {
+    // Check: simulation with known truth. The generative model the sampler assumes: a
+    // day's rate is gamma with mean 60 and variance 9 * 60 (dispersion 10), its eventual
+    // count Poisson with that rate, and each case reported by now with probability 0.8.
+    // Among simulated days with 30 reported (a low day) the cases still to come have the
+    // mean and variance that the conjugate draws give for `reported = 30`; the old
+    // unconditional draw (mean 12, variance 120) would be far off.
+    let (rate, dispersion, completeness, reported) = (60.0, 10.0, 0.8, 30.0);
+    let mut rng = StdRng::seed_from_u64(5);
+    let day_rate = Gamma::new(rate / (dispersion - 1.0), dispersion - 1.0).unwrap();
+    let mut still_to_come = Vec::new();
+    while still_to_come.len() < 4000 {
+        let eventual = Poisson::new(day_rate.sample(&mut rng)).unwrap().sample(&mut rng) as u64;
+        let known = rand_distr::Binomial::new(eventual, completeness).unwrap().sample(&mut rng);
+        if known as f64 == reported {
+            still_to_come.push((eventual - known) as f64);
+        }
+    }
+    let drawn: Vec<f64> =
+        (0..4000).map(|_| draw_unreported(&mut rng, rate, completeness, reported, dispersion)).collect();
+    let moments = |xs: &[f64]| {
+        let mean = xs.iter().sum::<f64>() / xs.len() as f64;
+        (mean, xs.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / xs.len() as f64)
+    };
+    let ((m_true, v_true), (m_drawn, v_drawn)) = (moments(&still_to_come), moments(&drawn));
+    assert!((m_drawn - m_true).abs() < 0.05 * m_true, "mean {m_drawn} vs {m_true}");
+    assert!((v_drawn - v_true).abs() < 0.15 * v_true, "variance {v_drawn} vs {v_true}");
+    assert!(m_true < 9.0, "a low day predicts fewer still to come: {m_true}");
+    // Complete: nothing left; Poisson counts: Poisson with the missing share of the rate.
+    assert_eq!(draw_unreported(&mut rng, rate, 1.0, reported, dispersion), 0.0);
+    let poisson: Vec<f64> =
+        (0..4000).map(|_| draw_unreported(&mut rng, rate, completeness, reported, 1.0)).collect();
+    assert!((moments(&poisson).0 - 12.0).abs() < 0.4);
+}
+
+#[test]
+fn old_rows_weigh_less_in_the_delay_fit() {
+    // 100 cases a day over 120 days: a half-life of 1000 cases is 10 days, raised to the
+    // 14-day minimum; at 5 a day it is 200 days; without forgetting every row weighs 1.
+    let tri = |daily: f64| triangle(120, 10, move |_, d| daily * (d + 1) as f64 / 11.0);
+    for (daily, half_life) in [(100.0, 14.0), (5.0, 200.0)] {
+        let tri = tri(daily);
+        let window = Window::new(&tri, &SmoothParams::default(), &mut Vec::new());
+        let found = delay_half_life(&window, Some(1000.0));
+        // The last rows are incomplete, so the mean daily count is a little under `daily`.
+        assert!((found - half_life).abs() < 0.1 * half_life, "{daily}: {found}");
+        let model = DelayModel::new(&window, &SmoothParams::default(), 100.0);
+        let back = (window.len() - 1) as f64 - model.half_life;
+        assert!(back < 0.0 || (model.row_weight(back.round() as usize) - 0.5).abs() < 0.05);
+        assert_eq!(delay_half_life(&window, None), f64::INFINITY);
+    }
+}
