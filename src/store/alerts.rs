@@ -149,6 +149,27 @@ pub struct DigestFacts {
 }
 
 impl DigestFacts {
+    /// The facts of a digest for `channel` not yet written (no event id, nothing filed as
+    /// opened or resolved).
+    fn new(
+        channel: &str,
+        reason: &'static str,
+        at: &str,
+        still_open: Vec<DigestItem>,
+        held_messages: usize,
+    ) -> DigestFacts {
+        DigestFacts {
+            event_id: 0,
+            channel: channel.to_string(),
+            reason,
+            at: at.to_string(),
+            opened: Vec::new(),
+            resolved: Vec::new(),
+            still_open,
+            held_messages,
+        }
+    }
+
     /// Files each waiting alert under `opened` (opened while its messages waited) or
     /// `resolved` (opened earlier, resolved while they waited).
     fn add_waiting(&mut self, waiting: impl IntoIterator<Item = (DigestItem, bool)>) {
@@ -302,25 +323,10 @@ impl Store {
         let mut first_digest = None;
         for channel in &channels {
             let routed = |item: &DigestItem| route(item.severity).contains(channel);
-            tx.execute("INSERT INTO alert_event (kind, at) VALUES ('digest', ?1)", [&at])?;
-            let event_id = tx.last_insert_rowid();
-            first_digest.get_or_insert(event_id);
-            let mut facts = DigestFacts {
-                event_id,
-                channel: channel.to_string(),
-                reason: "catch_up",
-                at: at.clone(),
-                opened: Vec::new(),
-                resolved: Vec::new(),
-                still_open: live.iter().filter(|i| routed(i)).cloned().collect(),
-                held_messages,
-            };
-            facts.add_waiting(held.iter().filter(|(item, _)| routed(item)).cloned());
-            tx.execute(
-                "UPDATE alert_event SET payload = ?2 WHERE event_id = ?1",
-                params![event_id, payload(&facts)],
-            )?;
-            enqueue(&tx, event_id, channel, &at)?;
+            let still_open = live.iter().filter(|i| routed(i)).cloned().collect();
+            let facts = DigestFacts::new(channel, "catch_up", &at, still_open, held_messages);
+            let waiting = held.iter().filter(|(item, _)| routed(item)).cloned();
+            first_digest.get_or_insert(queue_digest(&tx, facts, waiting, payload)?);
         }
         tx.execute(
             "UPDATE alert_event SET digest_event_id = ?1 WHERE held = 1 AND digest_event_id IS NULL",
@@ -365,25 +371,10 @@ impl Store {
             |r| r.get::<_, i64>(0),
         )? as usize;
         let at = time_text(now);
-        tx.execute("INSERT INTO alert_event (kind, at) VALUES ('digest', ?1)", [&at])?;
-        let event_id = tx.last_insert_rowid();
         let live = digest_items(&tx, "WHERE a.state <> 'resolved'")?;
-        let mut facts = DigestFacts {
-            event_id,
-            channel: channel.to_string(),
-            reason: "scheduled",
-            at: at.clone(),
-            opened: Vec::new(),
-            resolved: Vec::new(),
-            still_open: live.into_iter().filter(|i| takes(i.severity)).collect(),
-            held_messages,
-        };
-        facts.add_waiting(waiting);
-        tx.execute(
-            "UPDATE alert_event SET payload = ?2 WHERE event_id = ?1",
-            params![event_id, payload(&facts)],
-        )?;
-        enqueue(&tx, event_id, channel, &at)?;
+        let still_open = live.into_iter().filter(|i| takes(i.severity)).collect();
+        let facts = DigestFacts::new(channel, "scheduled", &at, still_open, held_messages);
+        let event_id = queue_digest(&tx, facts, waiting, payload)?;
         tx.execute(
             "UPDATE digest_wait SET digest_event_id = ?2 WHERE channel = ?1 AND digest_event_id IS NULL",
             params![channel, event_id],
@@ -855,6 +846,25 @@ fn notify(
         )?;
     }
     Ok(())
+}
+
+/// Writes one digest: its event (kind `digest`, at `facts.at`), the waiting alerts filed into
+/// its facts, its payload, and its outbox row for `facts.channel`. Returns the event id.
+fn queue_digest(
+    tx: &Transaction<'_>,
+    mut facts: DigestFacts,
+    waiting: impl IntoIterator<Item = (DigestItem, bool)>,
+    payload: &dyn Fn(&DigestFacts) -> String,
+) -> Result<i64, StoreError> {
+    tx.execute("INSERT INTO alert_event (kind, at) VALUES ('digest', ?1)", [&facts.at])?;
+    facts.event_id = tx.last_insert_rowid();
+    facts.add_waiting(waiting);
+    tx.execute(
+        "UPDATE alert_event SET payload = ?2 WHERE event_id = ?1",
+        params![facts.event_id, payload(&facts)],
+    )?;
+    enqueue(tx, facts.event_id, &facts.channel, &facts.at)?;
+    Ok(facts.event_id)
 }
 
 fn enqueue(tx: &Transaction<'_>, event_id: i64, channel: &str, at: &str) -> Result<(), StoreError> {

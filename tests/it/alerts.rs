@@ -498,13 +498,7 @@ async fn email_arrives_once_after_the_smtp_server_comes_up() {
     let client = delivery_client(&config);
     assert_eq!(deliver_due(&writer, &config, &client).await.unwrap(), (0, 1), "server down: failed, kept");
 
-    let mailbox = Mailbox::default();
-    let listener = StdListener::bind(("127.0.0.1", port)).unwrap();
-    let mut server = mailin_embedded::Server::new(mailbox.clone());
-    server.with_name("it.invalid").with_tcp_listener(listener);
-    std::thread::spawn(move || {
-        let _ = server.serve();
-    });
+    let mailbox = Mailbox::serve(StdListener::bind(("127.0.0.1", port)).unwrap());
     let deadline = std::time::Instant::now() + Duration::from_secs(20);
     while mailbox.messages.lock().unwrap().is_empty() && std::time::Instant::now() < deadline {
         deliver_due(&writer, &config, &client).await.unwrap();
@@ -562,13 +556,7 @@ async fn scheduled_digest_takes_warnings_and_lets_critical_through() {
     assert_eq!(flush_scheduled_digests(&mut store, &config, at("2026-03-02T07:30:00Z")).unwrap(), 0, "once");
     drop(store);
 
-    let mailbox = Mailbox::default();
-    let listener = StdListener::bind(("127.0.0.1", port)).unwrap();
-    let mut server = mailin_embedded::Server::new(mailbox.clone());
-    server.with_name("it.invalid").with_tcp_listener(listener);
-    std::thread::spawn(move || {
-        let _ = server.serve();
-    });
+    let mailbox = Mailbox::serve(StdListener::bind(("127.0.0.1", port)).unwrap());
     let config = Arc::new(config);
     let (writer, thread) = writer::start(open_store(&config.store.path)).unwrap();
     let client = delivery_client(&config);

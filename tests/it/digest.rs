@@ -52,14 +52,9 @@ async fn a_thirty_day_backlog_sends_one_digest_per_channel() {
         fs::write(inbox.join(format!("county-{date}.csv")), extract(rows, date)).unwrap();
     }
 
-    let mailbox = Mailbox::default();
     let smtp = StdListener::bind("127.0.0.1:0").unwrap();
     let smtp_port = smtp.local_addr().unwrap().port();
-    let mut server = mailin_embedded::Server::new(mailbox.clone());
-    server.with_name("it.invalid").with_tcp_listener(smtp);
-    std::thread::spawn(move || {
-        let _ = server.serve();
-    });
+    let mailbox = Mailbox::serve(smtp);
     let hooks_received = Arc::new(Mutex::new(Vec::new()));
     let router =
         axum::Router::new().route("/hook", axum::routing::post(receive)).with_state(hooks_received.clone());

@@ -247,6 +247,19 @@ pub struct Mailbox {
     pub messages: std::sync::Arc<std::sync::Mutex<Vec<String>>>,
 }
 
+impl Mailbox {
+    /// Serves SMTP on `listener` in a thread of its own; the mailbox keeps what arrives.
+    pub fn serve(listener: std::net::TcpListener) -> Mailbox {
+        let mailbox = Mailbox::default();
+        let mut server = mailin_embedded::Server::new(mailbox.clone());
+        server.with_name("it.invalid").with_tcp_listener(listener);
+        std::thread::spawn(move || {
+            let _ = server.serve();
+        });
+        mailbox
+    }
+}
+
 impl mailin_embedded::Handler for Mailbox {
     fn data(&mut self, buf: &[u8]) -> std::io::Result<()> {
         self.current.lock().unwrap().extend_from_slice(buf);
